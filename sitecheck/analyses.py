@@ -1,0 +1,22 @@
+"""The registry of analyses run by a scan, in order.
+
+Each entry names a ``report.json`` section, says when it applies, runs the
+analysis (a pure function of :class:`~sitecheck.prepare.Prepared`, the scan
+options and earlier results) and maps its result to report sections. To add
+an analysis, write its module, then add an :class:`Analysis` here.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any, Callable, Dict, List
+
+
+@dataclass(frozen=True)
+class Analysis:
+    name: str
+    run: Callable[..., Any]
+    applies: Callable[..., bool] = lambda prep: True
+    sections: Callable[[Any], Dict[str, Any]] = lambda result: {}
+
+
+REGISTRY: List[Analysis] = []

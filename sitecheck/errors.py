@@ -1,0 +1,13 @@
+"""Exceptions raised by sitecheck."""
+
+
+class InputError(ValueError):
+    """A problem with the user's data or options that the user can fix.
+
+    The message is one line and names the offending file, column or option.
+    The command-line interface turns it into exit code 2.
+    """
+
+
+class ParameterError(InputError):
+    """An invalid parameter passed to a library function."""

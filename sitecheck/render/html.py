@@ -1,0 +1,111 @@
+"""Self-contained HTML report. Every string from the data is escaped."""
+from __future__ import annotations
+
+import html
+from typing import Any, Dict, List
+
+from .safety import suppress_count
+
+DISCLAIMER = ("sitecheck is decision support for data work, not a clinical device. Its findings "
+              "describe the data, not patients; act on them under your local data-governance "
+              "rules and licensed clinical and statistical practice.")
+
+_CSS = """
+body{font-family:system-ui,-apple-system,Segoe UI,Roboto,sans-serif;max-width:1100px;margin:2em auto;padding:0 1em;color:#1a1a1a;line-height:1.45}
+h1{font-size:1.6em}h2{border-bottom:2px solid #ddd;padding-bottom:.2em;margin-top:2em}
+table{border-collapse:collapse;margin:.8em 0;font-size:.92em}th,td{border:1px solid #ccc;padding:.25em .6em;text-align:left}
+th{background:#f3f3f3;cursor:pointer}td.n{text-align:right;font-variant-numeric:tabular-nums}
+.note{background:#fff8e1;border-left:4px solid #f0b400;padding:.6em 1em}.verdict{font-size:1.3em;font-weight:600}
+.muted{color:#666}img{max-width:100%}
+"""
+
+_SORT_JS = """
+document.querySelectorAll('table.sortable th').forEach(function(th,i){th.addEventListener('click',function(){
+var t=th.closest('table'),b=t.tBodies[0],r=Array.from(b.rows),d=th.dataset.d==='a'?-1:1;th.dataset.d=d>0?'a':'d';
+r.sort(function(x,y){var a=x.cells[i].dataset.v||x.cells[i].textContent,c=y.cells[i].dataset.v||y.cells[i].textContent;
+var fa=parseFloat(a),fc=parseFloat(c);if(!isNaN(fa)&&!isNaN(fc))return d*(fa-fc);return d*a.localeCompare(c);});
+r.forEach(function(x){b.appendChild(x);});});});
+"""
+
+
+def esc(value: Any) -> str:
+    return html.escape("" if value is None else str(value), quote=True)
+
+
+def fmt(value: Any, digits: int = 3) -> str:
+    if value is None:
+        return "–"
+    if isinstance(value, float):
+        return f"{value:.{digits}f}"
+    return str(value)
+
+
+def ci(pair: Any, digits: int = 3) -> str:
+    if not pair or pair[0] is None:
+        return "–"
+    return f"{pair[0]:.{digits}f} to {pair[1]:.{digits}f}"
+
+
+def table_html(headers: List[str], rows: List[List[Any]], *, numeric: tuple = ()) -> str:
+    out = ['<table class="sortable"><thead><tr>']
+    out += [f"<th>{esc(h)}</th>" for h in headers]
+    out.append("</tr></thead><tbody>")
+    for row in rows:
+        out.append("<tr>")
+        for j, cell in enumerate(row):
+            cls = ' class="n"' if j in numeric else ""
+            out.append(f"<td{cls}>{esc(cell)}</td>")
+        out.append("</tr>")
+    out.append("</tbody></table>")
+    return "".join(out)
+
+
+def _hygiene(doc: Dict[str, Any], min_cell: int) -> str:
+    parts = ["<h2>Data hygiene</h2>"]
+    rows = [[c["name"], c["role"], c["kind"], c["reason"], suppress_count(c.get("n_missing", 0), min_cell),
+             ", ".join(f"{k} ({suppress_count(v, min_cell)})" for k, v in c.get("missing_codes", {}).items())]
+            for c in doc.get("columns", [])]
+    parts.append(table_html(["column", "role", "kind", "reason", "missing", "missing codes"], rows, numeric=(4,)))
+    if doc.get("hygiene"):
+        parts.append("<h3>Findings before modelling</h3>")
+        parts.append(table_html(["column", "finding", "site", "detail"],
+                                [[f["column"], f["kind"], f.get("site", ""), f["detail"]] for f in doc["hygiene"]]))
+    if doc.get("warnings"):
+        parts.append("<h3>Warnings</h3><ul>" + "".join(f"<li>{esc(w)}</li>" for w in doc["warnings"]) + "</ul>")
+    return "".join(parts)
+
+
+def _methods(doc: Dict[str, Any]) -> str:
+    run = doc.get("run", {})
+    inp = doc.get("input", {})
+    rows = [["input file", inp.get("path")], ["SHA-256", inp.get("sha256")], ["seed", run.get("seed")],
+            ["schema", doc.get("schema")]]
+    rows += [[f"version: {k}", v] for k, v in run.get("versions", {}).items()]
+    rows += [[f"seconds: {k}", v] for k, v in run.get("seconds", {}).items()]
+    rows += [[f"option: {k}", v] for k, v in run.get("options", {}).items()]
+    return "<h2>Methods, caveats and reproducibility</h2>" + table_html(["item", "value"], rows)
+
+
+#: Section renderers, in the order a decision is made. Each takes (doc, min_cell)
+#: and returns HTML, or "" when its section is absent.
+SECTIONS: List = []
+
+
+def render_html(doc: Dict[str, Any], *, min_cell: int = 10) -> str:
+    """Render the report document (``ScanResult.to_dict()``) as one HTML page."""
+    inp = doc.get("input", {})
+    sites = inp.get("sites", {})
+    head = (f"<h1>sitecheck report: {esc(inp.get('path'))}</h1>"
+            f"<p class='note'>{esc(DISCLAIMER)}</p>"
+            f"<p>{esc(inp.get('rows_used'))} rows from {len(sites)} sites "
+            f"(site column <code>{esc(inp.get('site_column'))}</code>): "
+            + ", ".join(f"{esc(k)} ({esc(suppress_count(v, min_cell))})" for k, v in sites.items()) + "</p>")
+    body = [head]
+    for fn in SECTIONS:
+        body.append(fn(doc, min_cell))
+    body.append(_hygiene(doc, min_cell))
+    body.append(_methods(doc))
+    return ("<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
+            "<meta http-equiv='Content-Security-Policy' content=\"default-src 'none'; img-src data:; style-src 'unsafe-inline'; script-src 'unsafe-inline'\">"
+            f"<title>sitecheck report</title><style>{_CSS}</style></head><body>"
+            + "".join(body) + f"<script>{_SORT_JS}</script></body></html>\n")

@@ -1,0 +1,64 @@
+"""Output safety: atomic writes confined to one directory, safe file names,
+CSV formula neutralisation and small-cell suppression (in one place)."""
+from __future__ import annotations
+
+import os
+import re
+import tempfile
+from typing import Any
+
+_FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+
+
+def safe_name(text: str, *, max_len: int = 60) -> str:
+    """A file-name fragment from data text: no separators, no dots at the start."""
+    s = re.sub(r"[^0-9A-Za-z_-]+", "_", str(text)).strip("_.")
+    return (s or "x")[:max_len]
+
+
+def confined(out_dir: str, rel: str) -> str:
+    """Absolute path of ``rel`` inside ``out_dir``; refuses anything outside."""
+    base = os.path.realpath(out_dir)
+    path = os.path.realpath(os.path.join(base, rel))
+    if os.path.commonpath([base, path]) != base:
+        raise ValueError(f"refusing to write outside the output directory: {rel!r}")
+    return path
+
+
+def atomic_write(out_dir: str, rel: str, data: Any) -> str:
+    """Write text or bytes to ``out_dir/rel`` via a temporary file and rename."""
+    path = confined(out_dir, rel)
+    os.makedirs(os.path.dirname(path), exist_ok=True)
+    mode = "wb" if isinstance(data, (bytes, bytearray)) else "w"
+    fd, tmp = tempfile.mkstemp(prefix=".tmp-", dir=os.path.dirname(path))
+    try:
+        with os.fdopen(fd, mode, **({} if mode == "wb" else {"encoding": "utf-8", "newline": ""})) as fh:
+            fh.write(data)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+    return path
+
+
+def csv_cell(value: Any) -> Any:
+    """Neutralise spreadsheet formulas: prefix text that starts with = + - @ with a quote."""
+    if isinstance(value, str) and value.startswith(_FORMULA_START):
+        try:
+            float(value)
+            return value  # a plain negative number is not a formula
+        except ValueError:
+            return "'" + value
+    return value
+
+
+def suppress_count(n: Any, min_cell: int) -> Any:
+    """A count as shown in shared outputs: ``"<min_cell"`` when below the threshold."""
+    try:
+        k = int(n)
+    except (TypeError, ValueError):
+        return n
+    if 0 < k < min_cell:
+        return f"<{min_cell}"
+    return k

@@ -1,0 +1,192 @@
+"""Run every analysis on a table: the library's main entry point.
+
+>>> from sitecheck.scan import scan_file                      # doctest: +SKIP
+>>> result = scan_file("pooled.csv", site="hospital", outcome="died")  # doctest: +SKIP
+>>> result["probe"].auc                                         # doctest: +SKIP
+"""
+from __future__ import annotations
+
+import platform
+import time
+from dataclasses import dataclass, field
+from typing import Any, Callable, Dict, Optional, Sequence
+
+import numpy as np
+import pandas as pd
+
+from . import __version__
+from .config import load_config
+from .errors import InputError
+from .intake import RawTable, frame_to_raw, read_table
+from .prepare import Prepared, prepare
+from .result import ScanResult
+from .roles import RoleSpec, Table, assign_roles
+
+Progress = Callable[[str], None]
+
+
+@dataclass(frozen=True)
+class ScanOptions:
+    """Options of a scan (everything but the roles).
+
+    Parameters
+    ----------
+    seed : int, default 0
+    folds : int, default 5
+    max_rows : int, default 50000
+        Cap on the site-stratified subsample used for modelling.
+    map_rows : int, default 10000
+        Cap on the subsample drawn for the 2-D maps.
+    min_site_rows : int, default 20
+    min_cell : int, default 10
+        Small-cell threshold for shared outputs.
+    include_datetime : bool, default False
+    cluster_threshold : float, default 0.7
+        Spearman |rho| above which features are permuted together.
+    threshold : float or None
+        Decision threshold of the outcome model for equalized odds (None: Youden).
+    analyses : tuple of str or None
+        Limit the analyses run (None: all that apply).
+    """
+
+    seed: int = 0
+    folds: int = 5
+    max_rows: int = 50_000
+    map_rows: int = 10_000
+    min_site_rows: int = 20
+    min_cell: int = 10
+    include_datetime: bool = False
+    cluster_threshold: float = 0.7
+    threshold: Optional[float] = None
+    analyses: Optional[tuple] = None
+
+    def wants(self, name: str) -> bool:
+        return self.analyses is None or name in self.analyses
+
+
+def _versions() -> Dict[str, str]:
+    import importlib.metadata as md
+
+    out = {"sitecheck": __version__, "python": platform.python_version()}
+    for pkg in ("numpy", "pandas", "scikit-learn", "scipy", "umap-learn", "matplotlib", "pyarrow"):
+        try:
+            out[pkg] = md.version(pkg)
+        except md.PackageNotFoundError:  # pragma: no cover
+            out[pkg] = "not installed"
+    return out
+
+
+def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Progress] = None,
+                 timings: Optional[Dict[str, float]] = None) -> Dict[str, Any]:
+    """Run the analysis modules on a prepared table; return {section: result}."""
+    say = progress or (lambda msg: None)
+    timings = timings if timings is not None else {}
+    sections: Dict[str, Any] = {}
+    objects: Dict[str, Any] = {}
+
+    def stage(name: str, fn):
+        say(f"{name}...")
+        t0 = time.perf_counter()
+        out = fn()
+        timings[name] = round(time.perf_counter() - t0, 3)
+        return out
+
+    # Analyses register here as they are implemented.
+    from . import analyses
+
+    for spec in analyses.REGISTRY:
+        if not options.wants(spec.name) or not spec.applies(prep):
+            continue
+        result = stage(spec.name, lambda spec=spec: spec.run(prep, options, objects))
+        if result is None:
+            continue
+        objects[spec.name] = result
+        for key, value in spec.sections(result).items():
+            sections[key] = value
+    return {"sections": sections, "objects": objects}
+
+
+def scan_table(table: Table, options: ScanOptions = ScanOptions(), *,
+               progress: Optional[Progress] = None, config: Optional[dict] = None) -> ScanResult:
+    """Run the scan on a validated table."""
+    t_start = time.perf_counter()
+    timings: Dict[str, float] = {}
+    say = progress or (lambda msg: None)
+    say("preparing")
+    t0 = time.perf_counter()
+    prep = prepare(table, n_splits=options.folds, max_rows=options.max_rows, random_state=options.seed)
+    timings["prepare"] = round(time.perf_counter() - t0, 3)
+    out = run_analyses(prep, options, progress=progress, timings=timings)
+    raw = table.source
+    input_doc = {
+        "path": raw.path,
+        "format": raw.format,
+        "rows": int(len(raw.frame)),
+        "rows_used": int(len(table.frame)),
+        "columns": int(raw.frame.shape[1]),
+        "sha256": raw.sha256,
+        "site_column": table.site,
+        "sites": table.site_counts(),
+        "dropped_sites": dict(table.dropped_sites),
+        "outcome": table.outcome,
+    }
+    timings["total"] = round(time.perf_counter() - t_start, 3)
+    run = {
+        "seed": int(options.seed),
+        "options": {k: (list(v) if isinstance(v, tuple) else v) for k, v in options.__dict__.items()},
+        "config": config or {},
+        "versions": _versions(),
+        "seconds": timings,
+    }
+    return ScanResult(
+        input=input_doc,
+        columns=tuple(c.to_dict() for c in table.columns),
+        findings=tuple(f.to_dict() for f in table.findings),
+        warnings=tuple(table.warnings),
+        run=run,
+        sections=out["sections"],
+        objects={"table": table, "prepared": prep, **out["objects"]},
+    )
+
+
+def build_table(raw: RawTable, roles: RoleSpec, *, config_path: Optional[str] = None,
+                min_site_rows: Optional[int] = None, include_datetime: Optional[bool] = None):
+    """Merge roles over a config file and validate; return (Table, file options)."""
+    cfg = load_config(config_path)
+    merged = roles.merged_over(cfg.roles)
+    msr = min_site_rows if min_site_rows is not None else int(cfg.options.get("min_site_rows", 20))
+    inc = include_datetime if include_datetime is not None else bool(cfg.options.get("include_datetime", False))
+    table = assign_roles(raw, merged, min_site_rows=msr, include_datetime=inc)
+    return table, cfg.options
+
+
+def scan_file(path: str, *, site: Optional[str] = None, outcome: Optional[str] = None,
+              covariates: Optional[Sequence[str]] = None, groups: Optional[Sequence[str]] = None,
+              identifiers: Optional[Sequence[str]] = None, excluded: Optional[Sequence[str]] = None,
+              config: Optional[str] = None, sep: Optional[str] = None, encoding: str = "utf-8",
+              options: Optional[ScanOptions] = None, progress: Optional[Progress] = None) -> ScanResult:
+    """Read a file and scan it. Role arguments override the config file's."""
+    raw = read_table(path, sep=sep, encoding=encoding)
+    roles = _spec(site, outcome, covariates, groups, identifiers, excluded)
+    opts = options or ScanOptions()
+    table, _ = build_table(raw, roles, config_path=config, min_site_rows=opts.min_site_rows,
+                           include_datetime=opts.include_datetime)
+    return scan_table(table, opts, progress=progress)
+
+
+def scan_frame(frame: pd.DataFrame, *, site: str, outcome: Optional[str] = None,
+               covariates: Optional[Sequence[str]] = None, groups: Optional[Sequence[str]] = None,
+               identifiers: Optional[Sequence[str]] = None, excluded: Optional[Sequence[str]] = None,
+               options: Optional[ScanOptions] = None, progress: Optional[Progress] = None) -> ScanResult:
+    """Scan an in-memory DataFrame (intake's missing-code rules apply to text columns)."""
+    raw = frame_to_raw(frame)
+    opts = options or ScanOptions()
+    table = assign_roles(raw, _spec(site, outcome, covariates, groups, identifiers, excluded),
+                         min_site_rows=opts.min_site_rows, include_datetime=opts.include_datetime)
+    return scan_table(table, opts, progress=progress)
+
+
+def _spec(site, outcome, covariates, groups, identifiers, excluded) -> RoleSpec:
+    t = lambda v: None if v is None else tuple(v)  # noqa: E731
+    return RoleSpec(site=site, outcome=outcome, covariates=t(covariates), groups=t(groups),
+                    identifiers=t(identifiers), excluded=t(excluded))
