@@ -86,11 +86,6 @@ def _methods(doc: Dict[str, Any]) -> str:
     return "<h2>Methods, caveats and reproducibility</h2>" + table_html(["item", "value"], rows)
 
 
-#: Section renderers, in the order a decision is made. Each takes (doc, min_cell)
-#: and returns HTML, or "" when its section is absent.
-SECTIONS: List = []
-
-
 def render_html(doc: Dict[str, Any], *, min_cell: int = 10) -> str:
     """Render the report document (``ScanResult.to_dict()``) as one HTML page."""
     inp = doc.get("input", {})
@@ -101,8 +96,10 @@ def render_html(doc: Dict[str, Any], *, min_cell: int = 10) -> str:
             f"(site column <code>{esc(inp.get('site_column'))}</code>): "
             + ", ".join(f"{esc(k)} ({esc(suppress_count(v, min_cell))})" for k, v in sites.items()) + "</p>")
     body = [head]
-    for fn in SECTIONS:
-        body.append(fn(doc, min_cell))
+    from .sections import modules
+
+    for mod in modules():
+        body.append(mod.html(doc, min_cell))
     body.append(_hygiene(doc, min_cell))
     body.append(_methods(doc))
     return ("<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"

@@ -22,10 +22,6 @@ def md_table(headers: List[str], rows: List[List[Any]]) -> str:
     return "\n".join(out)
 
 
-#: Paragraph renderers for analyses, in report order; each takes (doc, min_cell).
-SECTIONS: List = []
-
-
 def render_markdown(doc: Dict[str, Any], *, min_cell: int = 10) -> str:
     inp = doc.get("input", {})
     sites = inp.get("sites", {})
@@ -35,8 +31,10 @@ def render_markdown(doc: Dict[str, Any], *, min_cell: int = 10) -> str:
              f"checked with sitecheck {doc.get('run', {}).get('versions', {}).get('sitecheck')} "
              f"(seed {doc.get('run', {}).get('seed')}).", "",
              md_table(["site", "rows"], [[k, suppress_count(v, min_cell)] for k, v in sites.items()]), ""]
-    for fn in SECTIONS:
-        text = fn(doc, min_cell)
+    from .sections import modules
+
+    for mod in modules():
+        text = mod.markdown(doc, min_cell)
         if text:
             parts += [text, ""]
     hyg = doc.get("hygiene", [])
