@@ -86,8 +86,28 @@ def _methods(doc: Dict[str, Any]) -> str:
     return "<h2>Methods, caveats and reproducibility</h2>" + table_html(["item", "value"], rows)
 
 
-def render_html(doc: Dict[str, Any], *, min_cell: int = 10) -> str:
-    """Render the report document (``ScanResult.to_dict()``) as one HTML page."""
+def embed_image(out_dir, rel: str, alt: str = "") -> str:
+    """An <img> with the PNG at ``out_dir/rel`` embedded as a data URI (self-contained page)."""
+    import base64
+    import os
+
+    if not out_dir:
+        return ""
+    path = os.path.join(out_dir, rel)
+    if not os.path.exists(path):
+        return ""
+    with open(path, "rb") as fh:
+        data = base64.b64encode(fh.read()).decode("ascii")
+    return f'<img alt="{esc(alt)}" src="data:image/png;base64,{data}">'
+
+
+def render_html(doc: Dict[str, Any], *, min_cell: int = 10, out_dir=None) -> str:
+    """Render the report document (``ScanResult.to_dict()``) as one HTML page.
+
+    Section renderers receive ``doc["_out_dir"]`` (not part of report.json) so they can
+    embed figures with :func:`embed_image`."""
+    doc = dict(doc)
+    doc["_out_dir"] = out_dir
     inp = doc.get("input", {})
     sites = inp.get("sites", {})
     head = (f"<h1>sitecheck report: {esc(inp.get('path'))}</h1>"

@@ -3,22 +3,45 @@ from __future__ import annotations
 
 import json
 import os
-from typing import Dict, Optional
+from typing import Callable, Dict, List
 
 from ..result import ScanResult
 from .html import render_html
 from .markdown import render_markdown
 from .safety import atomic_write
 
+#: Figure writers: ``fn(result, out_dir, *, min_cell, shareable) -> {section: [relative paths]}``.
+#: They draw from the result objects (never compute statistics) and write inside
+#: ``out_dir/figures`` with :func:`atomic_write`. The returned paths are added to the
+#: report document as ``doc[section]["figures"]``.
+FIGURE_WRITERS: List[Callable] = []
 
-def write_report(result: ScanResult, out_dir: str, *, min_cell: int = 10,
-                 figures: bool = True) -> Dict[str, str]:
+
+def _figure_writers() -> List[Callable]:
+    writers = list(FIGURE_WRITERS)
+    try:
+        from .figures import write_figures  # provided by the figures module when present
+        writers.append(write_figures)
+    except ImportError:
+        pass
+    return writers
+
+
+def write_report(result: ScanResult, out_dir: str, *, min_cell: int = 10, figures: bool = True,
+                 shareable: bool = False) -> Dict[str, str]:
     """Write ``report.json``, ``report.html`` and ``findings.md`` (and figures, CSVs)
     into ``out_dir``, atomically. Returns {name: path}."""
     os.makedirs(out_dir, exist_ok=True)
     doc = result.to_dict()
     paths: Dict[str, str] = {}
+    if figures:
+        for writer in _figure_writers():
+            for section, rels in writer(result, out_dir, min_cell=min_cell, shareable=shareable).items():
+                if section in doc and isinstance(doc[section], dict):
+                    doc[section]["figures"] = list(rels)
+                for rel in rels:
+                    paths[rel] = os.path.join(out_dir, rel)
     paths["report.json"] = atomic_write(out_dir, "report.json", json.dumps(doc, indent=2, sort_keys=False, allow_nan=False) + "\n")
-    paths["report.html"] = atomic_write(out_dir, "report.html", render_html(doc, min_cell=min_cell))
+    paths["report.html"] = atomic_write(out_dir, "report.html", render_html(doc, min_cell=min_cell, out_dir=out_dir))
     paths["findings.md"] = atomic_write(out_dir, "findings.md", render_markdown(doc, min_cell=min_cell))
     return paths
