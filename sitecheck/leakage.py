@@ -1,0 +1,269 @@
+"""Leak ranking: which features carry the site signature.
+
+The score of a feature (or a group of features) is the drop in the probe's
+macro one-vs-rest ROC AUC when its values are permuted in the held-out rows of
+each cross-validation fold, scored with that fold's fitted probe model
+(permutation importance computed out of sample, never in-sample). Features
+that are strongly correlated (Spearman) are clustered and permuted together,
+as are user-declared panels, so that redundancy cannot hide a leaking group.
+
+References
+----------
+Breiman, L. (2001). Random forests. Machine Learning 45, 5-32 (permutation importance).
+Strobl, C. et al. (2008). Conditional variable importance for random forests.
+BMC Bioinformatics 9, 307 (correlated predictors share importance).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Dict, List, Optional, Sequence, Tuple
+
+import numpy as np
+from scipy import stats as sps
+from scipy.cluster import hierarchy
+from scipy.spatial.distance import squareform
+from sklearn.metrics import roc_auc_score
+
+from .errors import InputError
+from .prepare import Prepared
+from .univariate import covariate_design, missing_by_site, univariate_gaps
+
+
+def macro_auc_scorer(estimator, X, y) -> float:
+    """Macro one-vs-rest ROC AUC of ``estimator`` on (X, y) (binary: plain AUC)."""
+    proba = estimator.predict_proba(X)
+    classes = getattr(estimator, "classes_", np.arange(proba.shape[1]))
+    if proba.shape[1] == 2:
+        return float(roc_auc_score(y, proba[:, 1]))
+    return float(roc_auc_score(y, proba, multi_class="ovr", average="macro", labels=classes))
+
+
+def grouped_permutation_importance(estimator, X: np.ndarray, y: np.ndarray, groups: Sequence[Sequence[int]], *,
+                                   scoring=macro_auc_scorer, n_repeats: int = 5, random_state: int = 0):
+    """Permutation importance of column groups, each group's columns shuffled jointly.
+
+    Follows the permutation scheme of :func:`sklearn.inspection.permutation_importance`
+    (one seed drawn from ``random_state``, the same shuffle sequence for every group,
+    cumulative in-place shuffles across repeats), so that for singleton groups the
+    result equals scikit-learn's on the same rows.
+
+    Returns
+    -------
+    baseline : float
+    drops : ndarray (n_groups, n_repeats)
+        Baseline score minus permuted score.
+    """
+    rs = np.random.RandomState(random_state) if not isinstance(random_state, np.random.RandomState) else random_state
+    seed = rs.randint(np.iinfo(np.int32).max + 1)
+    baseline = scoring(estimator, X, y)
+    drops = np.empty((len(groups), n_repeats))
+    for g, cols in enumerate(groups):
+        cols = np.asarray(cols, dtype=int)
+        r = np.random.RandomState(seed)
+        Xp = X.copy()
+        idx = np.arange(X.shape[0])
+        for rep in range(n_repeats):
+            r.shuffle(idx)
+            Xp[:, cols] = Xp[idx][:, cols]
+            drops[g, rep] = baseline - scoring(estimator, Xp, y)
+    return baseline, drops
+
+
+def correlation_clusters(X: np.ndarray, categorical: np.ndarray, *, threshold: float = 0.7) -> np.ndarray:
+    """Cluster ids of columns by hierarchical (average-linkage) clustering on
+    1 - |Spearman rho| cut at 1 - ``threshold``; categorical columns stay single."""
+    p = X.shape[1]
+    labels = np.arange(p)
+    num = np.flatnonzero(~np.asarray(categorical, dtype=bool))
+    if len(num) < 2:
+        return labels
+    import pandas as pd
+
+    rho = pd.DataFrame(X[:, num]).corr(method="spearman", min_periods=10).to_numpy()
+    rho = np.nan_to_num(rho, nan=0.0)
+    dist = 1.0 - np.abs(rho)
+    np.fill_diagonal(dist, 0.0)
+    dist = np.clip((dist + dist.T) / 2, 0, None)
+    Z = hierarchy.linkage(squareform(dist, checks=False), method="average")
+    cl = hierarchy.fcluster(Z, t=1.0 - threshold, criterion="distance")
+    out = labels.copy()
+    base = p
+    for c in np.unique(cl):
+        members = num[cl == c]
+        if len(members) > 1:
+            out[members] = base + c
+    # renumber 0..m-1 in order of first appearance
+    _, first = np.unique(out, return_index=True)
+    order = {v: i for i, v in enumerate(out[np.sort(first)])}
+    return np.array([order[v] for v in out])
+
+
+def _t_interval(values: np.ndarray, alpha: float = 0.05) -> Tuple[float, float]:
+    v = np.asarray(values, dtype=float)
+    if len(v) < 2:
+        return float(v.mean()), float(v.mean())
+    m, s = v.mean(), v.std(ddof=1)
+    h = sps.t.ppf(1 - alpha / 2, len(v) - 1) * s / np.sqrt(len(v))
+    return float(m - h), float(m + h)
+
+
+@dataclass(frozen=True)
+class LeakEntry:
+    feature: str
+    score: float
+    score_ci: Tuple[float, float]
+    rank: int
+    cluster: int
+    univariate: dict
+    missing_by_site: dict
+
+    def to_dict(self) -> dict:
+        return {"feature": self.feature, "score": self.score, "score_ci": list(self.score_ci), "rank": self.rank,
+                "cluster": self.cluster, "univariate": self.univariate, "missing_by_site": self.missing_by_site}
+
+
+@dataclass(frozen=True)
+class ClusterEntry:
+    id: int
+    members: Tuple[str, ...]
+    score: float
+    score_ci: Tuple[float, float]
+    source: str
+
+    def to_dict(self) -> dict:
+        return {"id": self.id, "members": list(self.members), "score": self.score, "score_ci": list(self.score_ci),
+                "source": self.source}
+
+
+@dataclass(frozen=True)
+class LeakageResult:
+    """The leak ranking.
+
+    ``entries`` are sorted by score (largest drop in AUC first). ``clusters`` holds
+    every group permuted together (correlation clusters of two or more features
+    and declared panels). ``missingness`` is the probe on missing-value indicators
+    alone. Scores are means over folds of the mean drop over repeats; intervals are
+    t intervals over the fold means.
+    """
+
+    entries: Tuple[LeakEntry, ...]
+    clusters: Tuple[ClusterEntry, ...]
+    missingness: Optional[dict]
+    baseline_auc: float
+    n_folds: int
+    n_repeats: int
+    n_rows_per_fold: int
+    threshold: float
+
+    def top(self, k: int = 8) -> List[str]:
+        return [e.feature for e in self.entries[:k]]
+
+    def score_of(self, feature: str) -> float:
+        for e in self.entries:
+            if e.feature == feature:
+                return e.score
+        raise KeyError(feature)
+
+    def to_dict(self) -> dict:
+        return {
+            "features": [e.to_dict() for e in self.entries],
+            "clusters": [c.to_dict() for c in self.clusters],
+            "missingness_probe": self.missingness,
+            "baseline_auc": self.baseline_auc,
+            "score": "drop in held-out macro one-vs-rest ROC AUC when permuted",
+            "n_folds": self.n_folds,
+            "n_repeats": self.n_repeats,
+            "n_rows_per_fold": self.n_rows_per_fold,
+            "cluster_threshold": self.threshold,
+        }
+
+
+def rank_leakage(prep: Prepared, crossfit, *, n_repeats: int = 5, max_rows_per_fold: int = 4000,
+                 cluster_threshold: float = 0.7, panels: Optional[Dict[str, Sequence[str]]] = None,
+                 missingness_probe=None, random_state: Optional[int] = None) -> LeakageResult:
+    """Rank features by held-out permutation importance of the site probe.
+
+    Parameters
+    ----------
+    prep : Prepared
+    crossfit : CrossFit
+        The probe's cross-fit (fitted model per fold and the folds), reused: no refit.
+    n_repeats : int, default 5
+    max_rows_per_fold : int, default 4000
+        Held-out rows scored per fold (a site-stratified subset when there are more).
+    cluster_threshold : float, default 0.7
+        |Spearman rho| above which features are clustered and permuted together.
+    panels : dict, optional
+        Declared panels (name -> feature names), permuted together.
+    missingness_probe : callable, optional
+        ``f(M, y) -> dict`` probing site from the missing-value indicator matrix ``M``.
+    random_state : int, optional (default: prep.seed)
+
+    Returns
+    -------
+    LeakageResult
+    """
+    if not 0 < cluster_threshold <= 1:
+        raise InputError(f"cluster_threshold must be in (0, 1], got {cluster_threshold!r}")
+    if n_repeats < 1:
+        raise InputError(f"n_repeats must be at least 1, got {n_repeats!r}")
+    seed = prep.seed if random_state is None else int(random_state)
+    enc = prep.features
+    X, names = enc.X, list(enc.names)
+    y = prep.site
+    p = X.shape[1]
+    cl = correlation_clusters(X, enc.categorical, threshold=cluster_threshold)
+    groups: List[Tuple[str, List[int]]] = [(f"feature:{n}", [j]) for j, n in enumerate(names)]
+    for c in np.unique(cl):
+        members = np.flatnonzero(cl == c)
+        if len(members) > 1:
+            groups.append((f"cluster:{int(c)}", members.tolist()))
+    for pname, members in (panels or {}).items():
+        idx = [names.index(m) for m in members if m in names]
+        if idx:
+            groups.append((f"panel:{pname}", idx))
+    rng = np.random.default_rng([seed, 4242])
+    fold_drops = np.zeros((len(crossfit.models), len(groups)))
+    base_scores = []
+    n_rows = 0
+    for f, ((tr, te), model) in enumerate(zip(crossfit.folds, crossfit.models)):
+        te = np.asarray(te)
+        if len(te) > max_rows_per_fold:
+            from .prepare import stratified_subsample
+            te = te[stratified_subsample(y[te], max_rows_per_fold, rng)]
+        n_rows = max(n_rows, len(te))
+        base, drops = grouped_permutation_importance(model, X[te], y[te], [g[1] for g in groups],
+                                                     n_repeats=n_repeats, random_state=seed + f)
+        base_scores.append(base)
+        fold_drops[f] = drops.mean(axis=1)
+    score = fold_drops.mean(axis=0)
+    cis = [_t_interval(fold_drops[:, g]) for g in range(len(groups))]
+
+    C = None
+    if prep.covariates is not None:
+        C = covariate_design(prep.covariates.X, prep.covariates.categorical)
+    uni = {g.feature: g.to_dict() for g in univariate_gaps(X, names, enc.kinds, y, prep.site_labels, covariates=C)}
+    miss = {m.feature: m.to_dict() for m in missing_by_site(X, names, y, prep.site_labels)}
+
+    order = np.argsort(-score[:p], kind="stable")
+    entries = tuple(LeakEntry(feature=names[j], score=float(score[j]), score_ci=cis[j], rank=r + 1,
+                              cluster=int(cl[j]), univariate=uni[names[j]], missing_by_site=miss[names[j]])
+                    for r, j in enumerate(order))
+    clusters = []
+    for g in range(p, len(groups)):
+        label, idx = groups[g]
+        kind, _, key = label.partition(":")
+        clusters.append(ClusterEntry(id=int(key) if kind == "cluster" else -1, members=tuple(names[i] for i in idx),
+                                     score=float(score[g]), score_ci=cis[g],
+                                     source="correlation" if kind == "cluster" else f"panel {key}"))
+    clusters.sort(key=lambda c: -c.score)
+
+    missing_doc = None
+    M = np.isnan(X)
+    has = M.any(axis=0) & ~M.all(axis=0)
+    if missingness_probe is not None and has.any():
+        missing_doc = dict(missingness_probe(M[:, has].astype(float), y))
+        missing_doc["features"] = [n for n, h in zip(names, has) if h]
+    return LeakageResult(entries=entries, clusters=tuple(clusters), missingness=missing_doc,
+                         baseline_auc=float(np.mean(base_scores)), n_folds=len(crossfit.models),
+                         n_repeats=int(n_repeats), n_rows_per_fold=int(n_rows), threshold=float(cluster_threshold))
