@@ -164,6 +164,13 @@ class LeakageResult:
                 return e.score
         raise KeyError(feature)
 
+    def sections(self) -> dict:
+        """The report.json sections: ``leakage`` (sorted list), ``clusters`` (list),
+        ``missingness`` (probe on missing-value indicators) and ``leakage_method``."""
+        d = self.to_dict()
+        return {"leakage": d["features"], "clusters": d["clusters"], "missingness": d["missingness_probe"],
+                "leakage_method": {k: v for k, v in d.items() if k not in ("features", "clusters", "missingness_probe")}}
+
     def to_dict(self) -> dict:
         return {
             "features": [e.to_dict() for e in self.entries],

@@ -62,3 +62,42 @@ def suppress_count(n: Any, min_cell: int) -> Any:
     if 0 < k < min_cell:
         return f"<{min_cell}"
     return k
+
+
+#: Keys whose integer values are counts of patients or rows.
+COUNT_KEYS = frozenset({"n", "count", "rows", "n_missing", "unparsed_count", "n_rows", "n_pos", "n_neg",
+                        "positives", "negatives", "tp", "fp", "tn", "fn", "k", "cases", "n_events"})
+
+
+def shareable_document(doc: Any, *, min_cell: int, small_sites: frozenset = frozenset()) -> Any:
+    """A copy of the report document safe to share outside the data enclave.
+
+    Counts (values under :data:`COUNT_KEYS`, per-site row counts, missing-code
+    counts and confusion-matrix cells) below ``min_cell`` become ``"<min_cell"``;
+    any per-site entry of a site in ``small_sites`` is replaced by
+    ``"withheld"``. This is the single place where small-cell suppression is applied.
+    """
+
+    def walk(obj: Any, key: str = "", counts: bool = False) -> Any:
+        if isinstance(obj, dict):
+            out = {}
+            for k, v in obj.items():
+                if k in small_sites and k not in ("site",):
+                    out[k] = "withheld"
+                    continue
+                child_counts = counts or k in ("sites", "missing_codes", "dropped_sites", "confusion_matrix",
+                                               "site_counts", "counts", "legend_counts")
+                out[k] = walk(v, k, child_counts and not isinstance(v, str))
+            return out
+        if isinstance(obj, list):
+            return [walk(v, key, counts or key == "confusion_matrix") for v in obj]
+        if isinstance(obj, bool) or obj is None:
+            return obj
+        if isinstance(obj, int) and (counts or key in COUNT_KEYS):
+            return suppress_count(obj, min_cell)
+        return obj
+
+    out = walk(doc)
+    if isinstance(out, dict):
+        out["shareable"] = {"min_cell": int(min_cell), "withheld_sites": sorted(small_sites)}
+    return out

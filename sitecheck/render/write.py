@@ -8,7 +8,8 @@ from typing import Callable, Dict, List
 from ..result import ScanResult
 from .html import render_html
 from .markdown import render_markdown
-from .safety import atomic_write
+from .safety import atomic_write, shareable_document
+from .tables import fingerprints_csv, leakage_csv
 
 #: Figure writers: ``fn(result, out_dir, *, min_cell, shareable) -> {section: [relative paths]}``.
 #: They draw from the result objects (never compute statistics) and write inside
@@ -41,7 +42,15 @@ def write_report(result: ScanResult, out_dir: str, *, min_cell: int = 10, figure
                     doc[section]["figures"] = list(rels)
                 for rel in rels:
                     paths[rel] = os.path.join(out_dir, rel)
-    paths["report.json"] = atomic_write(out_dir, "report.json", json.dumps(doc, indent=2, sort_keys=False, allow_nan=False) + "\n")
-    paths["report.html"] = atomic_write(out_dir, "report.html", render_html(doc, min_cell=min_cell, out_dir=out_dir))
-    paths["findings.md"] = atomic_write(out_dir, "findings.md", render_markdown(doc, min_cell=min_cell))
+    small = frozenset(k for k, v in doc.get("input", {}).get("sites", {}).items() if int(v) < min_cell)
+    shared = shareable_document(doc, min_cell=min_cell, small_sites=small)
+    full = shared if shareable else doc
+    paths["report.json"] = atomic_write(out_dir, "report.json", json.dumps(full, indent=2, sort_keys=False, allow_nan=False) + "\n")
+    # HTML, Markdown and CSV are always shared outputs: rendered from the suppressed document.
+    paths["report.html"] = atomic_write(out_dir, "report.html", render_html(shared, min_cell=min_cell, out_dir=out_dir))
+    paths["findings.md"] = atomic_write(out_dir, "findings.md", render_markdown(shared, min_cell=min_cell))
+    if shared.get("leakage"):
+        paths["leakage.csv"] = atomic_write(out_dir, "leakage.csv", leakage_csv(shared, min_cell=min_cell))
+    if "fingerprints" in shared:
+        paths["fingerprints.csv"] = atomic_write(out_dir, "fingerprints.csv", fingerprints_csv(shared, min_cell=min_cell))
     return paths
