@@ -84,6 +84,11 @@ def _common_scan_options(f):
         click.option("--min-site-rows", type=click.IntRange(1), default=None, help="Sites with fewer rows are left out (default 20)."),
         click.option("--min-cell", type=click.IntRange(1), default=None, help="Small-cell threshold for shared outputs (default 10)."),
         click.option("--include-datetime", is_flag=True, default=None, help="Use datetime columns as features."),
+        click.option("--shareable", is_flag=True, help="Suppress small cells in report.json too and draw maps as densities, for reports that leave the data enclave."),
+        click.option("--fail-above", type=click.FloatRange(0.5, 1.0), default=None, metavar="AUC",
+                     help="Gate: exit 1 when the probe AUC's lower 95% bound exceeds AUC."),
+        click.option("--fail-on", "fail_on", multiple=True, metavar="KIND",
+                     help="Gate: exit 1 when a fingerprint of this kind is found (repeatable; e.g. unit_ratio, missing_code)."),
         click.option("--quiet", "-q", is_flag=True, help="No progress messages on stderr."),
     ]
     for o in reversed(opts):
@@ -106,7 +111,7 @@ def _options_from(cfg_options: dict, **flags):
 
 
 def _run_scan(data, *, site, outcome, covariates, groups, identifiers, excluded, config, sep, encoding,
-              out_dir, quiet, **flags):
+              out_dir, quiet, shareable=False, fail_above=None, fail_on=(), **flags):
     from .intake import read_table
     from .render import write_report
     from .roles import RoleSpec
@@ -118,6 +123,7 @@ def _run_scan(data, *, site, outcome, covariates, groups, identifiers, excluded,
     spec = RoleSpec(site=site, outcome=outcome, covariates=t(covariates), groups=t(groups),
                     identifiers=t(identifiers), excluded=t(excluded))
     cfg = load_config(config)
+    _check_gate_kinds(tuple(fail_on) or tuple(cfg.options.get("fail_on", ())))
     progress(f"reading {data}")
     raw = read_table(data, sep=sep if sep is not None else cfg.options.get("sep"),
                      encoding=encoding if encoding != "utf-8" else cfg.options.get("encoding", "utf-8"))
@@ -128,9 +134,42 @@ def _run_scan(data, *, site, outcome, covariates, groups, identifiers, excluded,
     result = scan_table(table, options, progress=progress, config={"file": config} if config else {})
     _check_out_dir(out_dir, data)
     progress(f"writing report to {out_dir}")
-    paths = write_report(result, out_dir, min_cell=options.min_cell)
-    click.echo(summary_text(result, paths))
+    fail_above = fail_above if fail_above is not None else cfg.options.get("fail_above")
+    fail_on = tuple(fail_on) or tuple(cfg.options.get("fail_on", ()))
+    paths = write_report(result, out_dir, min_cell=options.min_cell, shareable=shareable)
+    failed = evaluate_gates(result.to_dict(), fail_above=fail_above, fail_on=fail_on)
+    click.echo(summary_text(result, paths, failed))
+    if failed:
+        sys.exit(EXIT_GATE)
     return result
+
+
+FINGERPRINT_KINDS = ("unit_ratio", "precision", "heaping", "floor", "ceiling", "missing_code", "site_missing",
+                     "exclusive_level", "shift", "scale")
+
+
+def _check_gate_kinds(kinds) -> None:
+    for k in kinds:
+        if k not in FINGERPRINT_KINDS:
+            raise InputError(f"--fail-on {k!r}: unknown fingerprint kind; choose from {', '.join(FINGERPRINT_KINDS)}")
+
+
+def evaluate_gates(doc: dict, *, fail_above=None, fail_on=()) -> list:
+    """Return one message per failed gate (empty when all pass)."""
+    failed = []
+    probe = doc.get("probe")
+    if fail_above is not None and probe and probe.get("auc_ci"):
+        lo = probe["auc_ci"][0]
+        if lo is not None and lo > fail_above:
+            failed.append(f"gate --fail-above {fail_above}: probe AUC lower bound {lo:.3f} exceeds it")
+    if fail_on:
+        found = [f for f in doc.get("fingerprints", []) or [] if f.get("kind") in fail_on]
+        for kind in fail_on:
+            hits = [f for f in found if f["kind"] == kind]
+            if hits:
+                where = ", ".join(f"{h['feature']} at {h['site']}" for h in hits[:5])
+                failed.append(f"gate --fail-on {kind}: {len(hits)} finding(s) ({where})")
+    return failed
 
 
 def _check_out_dir(out_dir: str, data: str) -> None:
@@ -140,7 +179,7 @@ def _check_out_dir(out_dir: str, data: str) -> None:
         raise InputError("--out must not be the input file")
 
 
-def summary_text(result, paths) -> str:
+def summary_text(result, paths, failed=()) -> str:
     """The one-screen summary printed on stdout at the end of a scan."""
     doc = result.to_dict()
     lines = [f"sitecheck {__version__}: {doc['input']['rows_used']} rows, {len(doc['input']['sites'])} sites"]
@@ -151,6 +190,8 @@ def summary_text(result, paths) -> str:
     for w in doc.get("warnings", [])[:5]:
         lines.append(f"warning: {w}")
     lines.append("report: " + ", ".join(paths[k] for k in ("report.html", "report.json", "findings.md") if k in paths))
+    for msg in failed:
+        lines.append(f"FAILED {msg}")
     return "\n".join(lines)
 
 
@@ -180,6 +221,16 @@ def demo_cmd(out_dir, rows, seed, quiet):
               config=None, sep=None, encoding="utf-8", out_dir=os.path.join(out_dir, "report"), quiet=quiet,
               seed=None, folds=None, max_rows=None, map_rows=None, min_site_rows=None, min_cell=None,
               include_datetime=None)
+
+
+@main.command("schema", epilog="Example:\n\n  sitecheck schema > report.schema.json")
+def schema_cmd():
+    """Print the JSON Schema of report.json (versioned)."""
+    import json
+
+    from .schema import report_schema
+
+    click.echo(json.dumps(report_schema(), indent=2))
 
 
 if __name__ == "__main__":  # pragma: no cover
