@@ -20,3 +20,15 @@ class Analysis:
 
 
 REGISTRY: List[Analysis] = []
+
+
+def _run_outcome(prep, options, objects):
+    from .outcome import outcome_risk
+
+    return outcome_risk(prep, leakage=objects.get("leakage"), threshold=options.threshold,
+                        random_state=options.seed)
+
+
+# Order: probe, leakage, fingerprints, maps, harmonise, outcome (outcome stays last).
+REGISTRY.append(Analysis("outcome", _run_outcome, applies=lambda prep: prep.outcome is not None,
+                         sections=lambda result: {"outcome": result}))
