@@ -39,7 +39,7 @@ Chapman & Hall (percentile intervals).
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any, Dict, List, Optional, Sequence, Tuple
 
 import numpy as np
@@ -308,7 +308,13 @@ class EqualizedOdds:
 
 @dataclass(frozen=True)
 class OutcomeRisk:
-    """Result of :func:`outcome_risk` (the ``report.json`` ``outcome`` section)."""
+    """Result of :func:`outcome_risk` (the ``report.json`` ``outcome`` section).
+
+    ``rows`` (indices into ``prep.rows`` of the rows with an outcome),
+    ``pooled_scores`` (out-of-fold probabilities) and ``loso_scores``
+    (leave-one-site-out probabilities) are kept for figures; they are not part
+    of ``to_dict()``.
+    """
 
     outcome: str
     n: int
@@ -337,6 +343,9 @@ class OutcomeRisk:
     n_repeats: int
     importance_rows: int
     seed: int
+    rows: np.ndarray = field(default=None, compare=False, repr=False)
+    pooled_scores: np.ndarray = field(default=None, compare=False, repr=False)
+    loso_scores: np.ndarray = field(default=None, compare=False, repr=False)
 
     @property
     def shortcut_candidates(self) -> Tuple[FeatureRisk, ...]:
@@ -766,5 +775,5 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
         features=tuple(risks), leak_source=source, top_k=K, min_importance=float(min_importance),
         equalized_odds=eo,
         equalized_odds_by_group=eo_groups, n_splits=k, n_boot=int(n_boot), n_repeats=int(n_repeats),
-        importance_rows=int(importance_rows), seed=seed,
+        importance_rows=int(importance_rows), seed=seed, rows=idx, pooled_scores=oof, loso_scores=loso_pred,
     )

@@ -1,0 +1,279 @@
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+from sklearn.metrics import confusion_matrix, roc_auc_score, roc_curve
+
+from sitecheck.errors import InputError
+from sitecheck.intake import frame_to_raw
+from sitecheck.outcome import (outcome_folds, outcome_risk, prevalence_by_site, rates_at, site_association,
+                               site_only_scores, tie_groups, weighted_auc, youden_threshold)
+from sitecheck.prepare import prepare
+from sitecheck.roles import RoleSpec, assign_roles
+
+SITES = np.array(["Alpha", "Beta", "Gamma", "Delta"])
+
+
+def synth(n=1000, *, shortcut=True, seed=0, missing_outcome=0):
+    """Invented four-site table. With ``shortcut`` the outcome depends only on f0, whose
+    mean is shifted by site; f1 is site-shifted but unrelated to the outcome. Without it
+    nothing depends on the site and the outcome depends on f2 alone."""
+    rng = np.random.default_rng(seed)
+    site = rng.integers(0, 4, n)
+    mu = np.array([-2.0, -0.7, 0.7, 2.0]) if shortcut else np.zeros(4)
+    f0 = mu[site] + rng.normal(0, 0.4, n)
+    f1 = 1.5 * mu[site] + rng.normal(0, 1, n)
+    f2 = rng.normal(0, 1, n)
+    f3 = rng.normal(0, 1, n)
+    logit = 1.6 * f0 if shortcut else 1.2 * f2
+    y = (rng.random(n) < 1 / (1 + np.exp(-logit))).astype(float)
+    if missing_outcome:
+        y[rng.choice(n, missing_outcome, replace=False)] = np.nan
+    return pd.DataFrame({"site": SITES[site], "f0": f0, "f1": f1, "f2": f2, "f3": f3,
+                         "ward": rng.choice(["east", "west"], n), "y": y})
+
+
+def prep_of(frame, groups=("ward",), seed=0):
+    table = assign_roles(frame_to_raw(frame), RoleSpec(site="site", outcome="y", groups=tuple(groups)))
+    return prepare(table, random_state=seed)
+
+
+@pytest.fixture(scope="module")
+def shortcut_result():
+    prep = prep_of(synth(1000, shortcut=True, seed=0))
+    return prep, outcome_risk(prep, n_boot=200, n_repeats=2)
+
+
+@pytest.fixture(scope="module")
+def null_result():
+    prep = prep_of(synth(1000, shortcut=False, seed=1))
+    return prep, outcome_risk(prep, n_boot=200, n_repeats=2)
+
+
+# ---------------------------------------------------------------- reference checks
+
+def test_prevalence_wilson_and_chi2_match_statsmodels():
+    from statsmodels.stats.proportion import proportion_confint, proportions_chisquare
+
+    y = np.r_[np.ones(7), np.zeros(43), np.ones(30), np.zeros(20), np.zeros(12)]
+    site = np.r_[np.zeros(50, int), np.ones(50, int), np.full(12, 2)]
+    prev, chi2, df, p = prevalence_by_site(y, site, ["A", "B", "C"])
+    assert [s.n for s in prev] == [50, 50, 12] and [s.k for s in prev] == [7, 30, 0]
+    for s in prev:
+        # Reference: statsmodels.stats.proportion.proportion_confint(method="wilson").
+        lo, hi = proportion_confint(s.k, s.n, alpha=0.05, method="wilson")
+        assert s.ci[0] == pytest.approx(lo, abs=1e-10) and s.ci[1] == pytest.approx(hi, abs=1e-10)
+        assert s.p == pytest.approx(s.k / s.n)
+    # Reference: statsmodels.stats.proportion.proportions_chisquare (k-sample test of equal proportions).
+    ref_chi2, ref_p, _ = proportions_chisquare([7, 30, 0], [50, 50, 12])
+    assert chi2 == pytest.approx(ref_chi2, rel=1e-10) and p == pytest.approx(ref_p, rel=1e-8) and df == 2
+
+
+def test_weighted_auc_matches_sklearn_with_sample_weight():
+    rng = np.random.default_rng(3)
+    score = np.round(rng.normal(size=400), 1)  # many ties
+    y = (rng.random(400) < 1 / (1 + np.exp(-2 * score))).astype(float)
+    w = rng.integers(0, 4, 400).astype(float)
+    # Reference: sklearn.metrics.roc_auc_score with sample_weight (ties count one half).
+    assert weighted_auc(tie_groups(score), y, w) == pytest.approx(roc_auc_score(y, score, sample_weight=w), abs=1e-12)
+    assert weighted_auc(tie_groups(score), y, np.ones(400)) == pytest.approx(roc_auc_score(y, score), abs=1e-12)
+
+
+def test_youden_threshold_maximises_tpr_minus_fpr():
+    rng = np.random.default_rng(4)
+    s = rng.random(300)
+    y = (rng.random(300) < s).astype(int)
+    t = youden_threshold(y, s)
+    pred = s >= t
+    tn, fp, fn, tp = confusion_matrix(y, pred).ravel()
+    # Reference: Youden (1950) J = sensitivity + specificity - 1, maximised over sklearn's roc_curve points.
+    fpr, tpr, _ = roc_curve(y, s)
+    assert tp / (tp + fn) - fp / (fp + tn) == pytest.approx(np.max(tpr - fpr), abs=1e-12)
+
+
+def test_rates_match_sklearn_confusion_matrix():
+    rng = np.random.default_rng(5)
+    n = 500
+    unit = rng.integers(0, 3, n)
+    y = (rng.random(n) < 0.3 + 0.1 * unit).astype(float)
+    pred = (rng.random(n) < 0.2 + 0.5 * y).astype(float)
+    eo = rates_at(y, pred, unit, ["u0", "u1", "u2"], threshold=0.5, rule="given")
+    tprs, fprs = [], []
+    for i, r in enumerate(eo.per_unit):
+        # Reference: sklearn.metrics.confusion_matrix on the same 0/1 predictions.
+        tn, fp, fn, tp = confusion_matrix(y[unit == i], pred[unit == i], labels=[0, 1]).ravel()
+        assert r.tpr == pytest.approx(tp / (tp + fn)) and r.fpr == pytest.approx(fp / (fp + tn))
+        assert (r.n_pos, r.n_neg, r.n) == (tp + fn, fp + tn, int(np.sum(unit == i)))
+        tprs.append(r.tpr)
+        fprs.append(r.fpr)
+    # Equalized-odds gaps (Hardt, Price & Srebro 2016): spread of TPR and FPR across units.
+    assert eo.tpr_spread == pytest.approx(max(tprs) - min(tprs))
+    assert eo.fpr_spread == pytest.approx(max(fprs) - min(fprs))
+
+
+def test_full_result_rates_match_confusion_matrix(shortcut_result):
+    prep, res = shortcut_result
+    d = res.to_dict()
+    eo = d["equalized_odds"]
+    pred = (res.pooled_scores >= eo["threshold"]).astype(int)
+    y = prep.outcome[res.rows].astype(int)
+    site = prep.site[res.rows]
+    for i, lab in enumerate(prep.site_labels):
+        m = site == i
+        # Reference: sklearn.metrics.confusion_matrix on the same predictions.
+        tn, fp, fn, tp = confusion_matrix(y[m], pred[m], labels=[0, 1]).ravel()
+        got = eo["per_site"][lab]
+        if tp + fn:
+            assert got["tpr"] == pytest.approx(tp / (tp + fn))
+        if fp + tn:
+            assert got["fpr"] == pytest.approx(fp / (fp + tn))
+        assert got["n"] == m.sum()
+    ward = prep.groups["ward"][res.rows]
+    lv = prep.table.binary_levels.get("ward")  # two-level text columns are recoded to 0/1 by roles
+    if lv is not None:
+        ward = np.array([lv[int(v)] for v in ward], dtype=object)
+    for lab, got in d["equalized_odds_by_group"]["ward"]["per_group"].items():
+        m = ward == lab
+        tn, fp, fn, tp = confusion_matrix(y[m], pred[m], labels=[0, 1]).ravel()
+        assert got["tpr"] == pytest.approx(tp / (tp + fn)) and got["fpr"] == pytest.approx(fp / (fp + tn))
+    assert set(d["equalized_odds_by_group"]["ward"]["per_group"]) == {"east", "west"}
+    # the pooled AUC is the AUC of the kept out-of-fold scores (reference: sklearn roc_auc_score)
+    assert d["pooled_auc"] == pytest.approx(roc_auc_score(y, res.pooled_scores), abs=1e-12)
+    for i, lab in enumerate(prep.site_labels):
+        m = site == i
+        assert d["loso"][lab]["auc"] == pytest.approx(roc_auc_score(y[m], res.loso_scores[m]), abs=1e-12)
+
+
+def test_site_only_scores_are_training_fold_prevalences():
+    rng = np.random.default_rng(6)
+    site = rng.integers(0, 3, 300)
+    y = (rng.random(300) < np.array([0.1, 0.4, 0.7])[site]).astype(float)
+    folds = outcome_folds(y, site, 3, random_state=0)
+    s = site_only_scores(y, site, folds)
+    for tr, te in folds:
+        ref = pd.Series(y[tr]).groupby(site[tr]).mean()  # reference: pandas groupby mean
+        assert np.allclose(s[te], ref.loc[site[te]].to_numpy())
+    # folds are stratified by site and outcome: each cell spread evenly over folds
+    for tr, te in folds:
+        for c in range(3):
+            cell = (site == c) & (y == 1)
+            assert abs(cell[te].sum() - cell.sum() / 3) <= 1
+
+
+def test_site_association_matches_scipy_kruskal():
+    from scipy.stats import kruskal
+
+    rng = np.random.default_rng(8)
+    site = rng.integers(0, 3, 300)
+    x = rng.normal(size=300) + 0.8 * site
+    X = np.column_stack([x, rng.normal(size=300)])
+    score, p = site_association(X, site, np.zeros(2, bool))
+    h, ref_p = kruskal(*[x[site == s] for s in range(3)])
+    # Reference: scipy.stats.kruskal; epsilon-squared = H / (n - 1) (Tomczak & Tomczak 2014).
+    assert score[0] == pytest.approx(h / 299) and p[0] == pytest.approx(ref_p)
+    assert score[1] < 0.05
+
+
+# ---------------------------------------------------------------- ground-truth injection
+
+def test_shortcut_feature_flagged_and_transport_gap_large(shortcut_result):
+    _, res = shortcut_result
+    d = res.to_dict()
+    names = [c["feature"] for c in d["shortcut_candidates"]]
+    assert names == ["f0"]
+    f0 = d["shortcut_candidates"][0]
+    assert f0["leak_rank"] <= 2 and f0["importance_rank"] == 1 and f0["importance_ci"][0] > 0.1
+    f1 = next(f for f in d["feature_risk"] if f["feature"] == "f1")
+    assert f1["leak_significant"] and not f1["shortcut"]  # a leaker, not an outcome driver
+    assert d["pooled_auc"] > 0.85 and d["site_only_auc"] > 0.85
+    assert all(v["auc"] < 0.75 for v in d["loso"].values())
+    assert d["transport_gap"] > 0.2 and d["transport_gap_ci"][0] > 0.15
+    assert d["transport_gap_ci"][0] <= d["transport_gap"] <= d["transport_gap_ci"][1]
+    assert d["prevalence_test"]["p_value"] < 1e-10
+    assert d["leak_source"] == "site_association"
+
+
+def test_no_site_effect_gap_interval_covers_zero(null_result):
+    _, res = null_result
+    d = res.to_dict()
+    lo, hi = d["transport_gap_ci"]
+    assert lo <= 0 <= hi and hi - lo < 0.1
+    assert d["shortcut_candidates"] == []
+    assert 0.4 < d["site_only_auc"] < 0.6 and d["pooled_auc"] > 0.7
+    f2 = next(f for f in d["feature_risk"] if f["feature"] == "f2")
+    assert f2["importance_rank"] == 1 and not f2["leak_significant"]
+
+
+@pytest.mark.slow
+def test_null_gap_interval_coverage_over_seeds():
+    # Invented null tables: the 95% interval of the transport gap should cover 0 in most seeds.
+    cover = 0
+    for seed in range(10):
+        res = outcome_risk(prep_of(synth(400, shortcut=False, seed=100 + seed), groups=()),
+                           n_boot=100, n_repeats=1, importance_rows=100)
+        lo, hi = res.transport_gap_ci
+        cover += lo <= 0 <= hi
+    assert cover >= 8
+
+
+# ---------------------------------------------------------------- contract and behaviour
+
+def test_report_keys_missing_outcome_and_determinism():
+    frame = synth(500, shortcut=True, seed=2, missing_outcome=37)
+    a = outcome_risk(prep_of(frame), n_boot=60, n_repeats=1).to_dict()
+    b = outcome_risk(prep_of(frame), n_boot=60, n_repeats=1).to_dict()
+    assert json.dumps(a, sort_keys=True) == json.dumps(b, sort_keys=True)
+    assert a["n"] == 463 and a["n_missing_outcome"] == 37
+    assert sum(v["n"] for v in a["prevalence"].values()) == 463
+    for key in ("prevalence", "site_only_auc", "pooled_auc", "loso", "transport_gap", "shortcut_candidates",
+                "equalized_odds"):
+        assert key in a
+    for v in a["prevalence"].values():
+        assert set(v) >= {"p", "ci", "n"}
+    for v in a["loso"].values():
+        assert set(v) >= {"auc", "ci", "n"}
+    assert set(a["equalized_odds"]) >= {"threshold", "per_site", "tpr_spread", "fpr_spread"}
+    assert all(set(v) >= {"tpr", "fpr"} for v in a["equalized_odds"]["per_site"].values())
+    c = outcome_risk(prep_of(frame, seed=1), n_boot=60, n_repeats=1).to_dict()
+    assert c["pooled_auc"] != a["pooled_auc"]  # another seed, other folds
+
+
+def test_given_threshold_and_invalid_options():
+    prep = prep_of(synth(400, seed=3))
+    res = outcome_risk(prep, threshold=0.3, n_boot=50, n_repeats=1)
+    eo = res.to_dict()["equalized_odds"]
+    assert eo["threshold"] == 0.3 and eo["threshold_rule"].startswith("given")
+    pred = res.pooled_scores >= 0.3
+    y = prep.outcome[res.rows]
+    assert sum(r["tpr"] * r["n_pos"] for r in eo["per_site"].values()) == pytest.approx(np.sum(pred & (y == 1)))
+    with pytest.raises(InputError, match="threshold"):
+        outcome_risk(prep, threshold=1.5)
+    with pytest.raises(InputError, match="n_boot"):
+        outcome_risk(prep, n_boot=3)
+
+
+def test_leak_scores_from_leakage_result_are_used():
+    prep = prep_of(synth(600, seed=4))
+
+    class FakeLeakage:  # the leak ranking's to_dict() shape: features [{feature, score, score_ci}]
+        def to_dict(self):
+            return {"features": [{"feature": "f0", "score": 0.30, "score_ci": [0.2, 0.4]},
+                                 {"feature": "f1", "score": 0.10, "score_ci": [0.05, 0.15]},
+                                 {"feature": "f2", "score": 0.0, "score_ci": [-0.01, 0.01]},
+                                 {"feature": "f3", "score": 0.0, "score_ci": [-0.01, 0.01]}]}
+
+    d = outcome_risk(prep, leakage=FakeLeakage(), n_boot=50, n_repeats=1).to_dict()
+    assert d["leak_source"] == "leakage"
+    f = {r["feature"]: r for r in d["feature_risk"]}
+    assert f["f0"]["leak_score"] == 0.30 and f["f0"]["leak_rank"] == 1 and f["f0"]["shortcut"]
+    assert not f["f2"]["leak_significant"]
+
+
+def test_outcome_with_one_class_too_few_is_an_input_error():
+    frame = synth(300, seed=5)
+    frame["y"] = 0.0
+    frame.loc[0, "y"] = 1.0  # a single positive row
+    prep = prep_of(frame)
+    with pytest.raises(InputError, match="'y'"):
+        outcome_risk(prep, n_boot=50)
