@@ -22,11 +22,44 @@ class Analysis:
 REGISTRY: List[Analysis] = []
 
 
+def _run_probe(prep, options, objects):
+    from .probe import site_probe
+
+    return site_probe(prep, random_state=options.seed)
+
+
+def _probe_sections(result):
+    out = {"probe": result}
+    if result.groups.probes or result.groups.skipped:
+        out["groups"] = result.groups
+    return out
+
+
+# The site probe runs first: later analyses reuse its fold models (objects["probe"].crossfit).
+REGISTRY.insert(0, Analysis("probe", _run_probe, sections=_probe_sections))
+
+
 def _run_outcome(prep, options, objects):
     from .outcome import outcome_risk
 
     return outcome_risk(prep, leakage=objects.get("leakage"), threshold=options.threshold,
                         random_state=options.seed)
+
+
+def _run_fingerprints(prep, options, objects):
+    from .fingerprints import find_fingerprints
+
+    return find_fingerprints(prep)
+
+
+def _fingerprint_sections(result):
+    return {"fingerprints": [f.to_dict() for f in result.findings], "fingerprint_tests": result.tests}
+
+
+# fingerprints go after probe/leakage and before maps, harmonise and outcome
+REGISTRY.insert(next((i for i, a in enumerate(REGISTRY) if a.name in ("maps", "harmonise", "outcome")),
+                     len(REGISTRY)),
+                Analysis("fingerprints", _run_fingerprints, sections=_fingerprint_sections))
 
 
 # Order: probe, leakage, fingerprints, maps, harmonise, outcome (outcome stays last).

@@ -104,40 +104,53 @@ def macro_ovr_auc(y, proba) -> float:
 
 
 class _SortedClass:
-    """Pre-sorted scores of one one-vs-rest problem, for weighted AUCs of many resamples."""
+    """Pre-sorted scores of one one-vs-rest problem, for weighted AUCs of many resamples.
+
+    With integer multiplicities ``w`` (a stratified bootstrap keeps each class's total
+    fixed), ``U = sum_{i pos} w_i G_i - n_pos^2 / 2`` where ``G_i`` is the weight of all
+    rows scored below row i plus half the weight of its ties (positives' pairs among
+    themselves contribute exactly ``n_pos^2 / 2``). Everything is computed in integers
+    (twice G), so the result is exact.
+    """
 
     def __init__(self, pos: np.ndarray, score: np.ndarray):
         order = np.argsort(score, kind="mergesort")
         s = score[order]
+        pos = np.asarray(pos, dtype=bool)
         self.order = order
-        self.pos = pos[order].astype(float)
-        self.neg = 1.0 - self.pos
-        # tie groups in sorted order
+        self.pos_rows = np.flatnonzero(pos)
+        where = np.empty(len(order), dtype=np.int64)
+        where[order] = np.arange(len(order))
+        self.pos_sorted = where[self.pos_rows]          # sorted position of each positive
         new = np.r_[True, s[1:] != s[:-1]]
-        self.gid = np.cumsum(new) - 1
-        ends = np.r_[np.flatnonzero(new)[1:] - 1, len(s) - 1]
-        self.ends = ends
+        self.ties = not bool(new.all())
+        if self.ties:
+            gid = np.cumsum(new) - 1
+            self.pos_gid = gid[self.pos_sorted]
+            self.ends = np.r_[np.flatnonzero(new)[1:] - 1, len(s) - 1]
+        self.n_pos = len(self.pos_rows)
+        self.n = len(order)
 
     def aucs(self, W: np.ndarray) -> np.ndarray:
-        """AUC for each row of weights ``W`` (B, n) (weights in the original row order)."""
-        Ws = W[:, self.order]
-        wneg = Ws * self.neg
-        wpos = Ws * self.pos
-        cum = np.cumsum(wneg, axis=1)
-        at_end = cum[:, self.ends]                       # negatives up to and including group g
-        below = np.concatenate([np.zeros((W.shape[0], 1)), at_end[:, :-1]], axis=1)
-        eq = at_end - below
-        credit = below[:, self.gid] + 0.5 * eq[:, self.gid]
-        num = (wpos * credit).sum(axis=1)
-        den = wpos.sum(axis=1) * wneg.sum(axis=1)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            return num / den
+        """AUC for each row of integer weights ``W`` (B, n), original row order; the
+        positives' total weight must be ``n_pos`` in every row (stratified resampling)."""
+        Ws = np.take(W, self.order, axis=1)
+        cum = np.cumsum(Ws, axis=1, dtype=np.int64)
+        if self.ties:
+            at_end = cum[:, self.ends]
+            below = np.concatenate([np.zeros((W.shape[0], 1), dtype=np.int64), at_end[:, :-1]], axis=1)
+            two_g = (below + at_end)[:, self.pos_gid]
+        else:
+            two_g = 2 * cum[:, self.pos_sorted] - Ws[:, self.pos_sorted]
+        num2 = np.einsum("bi,bi->b", W[:, self.pos_rows].astype(np.int64), two_g)
+        n1 = float(self.n_pos)
+        return (num2 / 2.0 - n1 * n1 / 2.0) / (n1 * (self.n - n1))
 
 
 def stratified_bootstrap_weights(y, n_boot: int, rng: np.random.Generator) -> np.ndarray:
-    """Multiplicities (n_boot, n) of a bootstrap that resamples rows within each class."""
+    """Integer multiplicities (n_boot, n) of a bootstrap that resamples rows within each class."""
     y = np.asarray(y)
-    W = np.zeros((n_boot, len(y)))
+    W = np.zeros((n_boot, len(y)), dtype=np.int64)
     for c in np.unique(y):
         idx = np.flatnonzero(y == c)
         W[:, idx] = rng.multinomial(len(idx), np.full(len(idx), 1.0 / len(idx)), size=n_boot)
