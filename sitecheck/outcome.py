@@ -356,8 +356,8 @@ class OutcomeRisk:
         return {
             "outcome": self.outcome,
             "n": self.n,
-            "n_missing_outcome": self.n_missing_outcome,
-            "n_positive": self.n_positive,
+            "n_missing": self.n_missing_outcome,
+            "n_pos": self.n_positive,
             "prevalence": {s.site: s.to_dict() for s in self.prevalence},
             "prevalence_test": {"method": "chi-square test of equal prevalence (sites x outcome)",
                                 "chi2": _f(self.prevalence_chi2), "df": self.prevalence_df,

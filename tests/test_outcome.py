@@ -224,7 +224,7 @@ def test_report_keys_missing_outcome_and_determinism():
     a = outcome_risk(prep_of(frame), n_boot=60, n_repeats=1).to_dict()
     b = outcome_risk(prep_of(frame), n_boot=60, n_repeats=1).to_dict()
     assert json.dumps(a, sort_keys=True) == json.dumps(b, sort_keys=True)
-    assert a["n"] == 463 and a["n_missing_outcome"] == 37
+    assert a["n"] == 463 and a["n_missing"] == 37
     assert sum(v["n"] for v in a["prevalence"].values()) == 463
     for key in ("prevalence", "site_only_auc", "pooled_auc", "loso", "transport_gap", "shortcut_candidates",
                 "equalized_odds"):
@@ -277,3 +277,38 @@ def test_outcome_with_one_class_too_few_is_an_input_error():
     prep = prep_of(frame)
     with pytest.raises(InputError, match="'y'"):
         outcome_risk(prep, n_boot=50)
+
+
+# ---------------------------------------------------------------- rendering
+
+def test_section_escapes_text_and_withholds_small_sites(shortcut_result):
+    from sitecheck.render.safety import shareable_document
+    from sitecheck.render.sections import ORDER
+    from sitecheck.render.sections import outcome as section
+
+    assert ORDER.index("outcome") == len(ORDER) - 1
+    _, res = shortcut_result
+    o = json.loads(json.dumps(res.to_dict()))
+    bad = "<script>alert(1)</script>"
+    o["prevalence"][bad] = {"p": 0.123456, "ci": [0.01, 0.5], "n": 4, "k": 1}
+    o["loso"][bad] = {"auc": 0.987654, "ci": [0.9, 1.0], "n": 4, "n_pos": 1, "n_train": 996}
+    o["equalized_odds"]["per_site"][bad] = {"tpr": 0.876543, "fpr": 0.1, "tpr_ci": [0, 1], "fpr_ci": [0, 1], "n": 4}
+    doc = {"outcome": o}
+    page = section.html(doc, 10)
+    assert bad not in page and "&lt;script&gt;alert(1)&lt;/script&gt;" in page
+    import re
+
+    esc_bad = "&lt;script&gt;alert(1)&lt;/script&gt;"
+    bad_rows = re.findall(r"<tr><td>" + re.escape(esc_bad) + r"</td>(.*?)</tr>", page)
+    assert len(bad_rows) == 3  # prevalence, held-out AUC, equalized odds
+    for row in bad_rows:  # statistics of a site below min_cell are withheld, its count suppressed
+        assert "withheld" in row and "&lt;10" in row
+        assert not any(h in row for h in ("0.123", "0.988", "0.877"))
+    assert "Alpha" in page and f"{o['transport_gap']:.3f}" in page
+    md = section.markdown(doc, 10)
+    assert "<script>" not in md and "0.988" not in md and f"{o['pooled_auc']:.3f}" in md
+    # the shared document marks small sites "withheld"; the section still renders
+    shared = shareable_document({"outcome": res.to_dict()}, min_cell=10, small_sites=frozenset({"Alpha"}))
+    page = section.html(shared, 10)
+    assert "withheld" in page and f"{o['prevalence']['Alpha']['p']:.3f}" not in page
+    assert section.html({}, 10) == "" and section.markdown({}, 10) == ""
