@@ -142,7 +142,7 @@ _UNIT_SUFFIX = re.compile(r"_(mg_?dl|mmol_?l?|umol_?l?|g_?dl|g_?l|mg_?l|ng_?ml|n
 
 def normalise_name(name: str) -> str:
     """Lower-case, ``_``-separated form of a column name."""
-    s = re.sub(r"([a-z0-9])([A-Z])", r"\1_\2", str(name))
+    s = re.sub(r"([a-z0-9])([A-Z][a-z])", r"\1_\2", str(name))
     return re.sub(r"[^0-9a-zA-Z]+", "_", s).strip("_").lower()
 
 

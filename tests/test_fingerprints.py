@@ -1,0 +1,265 @@
+"""Fingerprints: ground-truth injection on the demo, null false-positive rates, reference checks."""
+import math
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+from sitecheck.demo import GLUCOSE_MGDL_PER_MMOLL, generate_demo
+from sitecheck.errors import InputError, ParameterError
+from sitecheck.fingerprints import (KINDS, adjust_for_covariates, detect_exclusive_levels, detect_site_missing,
+                                    find_fingerprints, grid_step, median_ci)
+from sitecheck.intake import frame_to_raw
+from sitecheck.roles import RoleSpec, assign_roles
+
+
+def _demo(n, seed, null=False):
+    d = generate_demo(n, seed=seed, null=null)
+    spec = RoleSpec(site="hospital", outcome="admitted_hdu", covariates=("age", "sex"),
+                    identifiers=("attendance_id",))
+    return d, assign_roles(frame_to_raw(d.frame), spec)
+
+
+def _table(frame, covariates=()):
+    return assign_roles(frame_to_raw(frame), RoleSpec(site="site", covariates=tuple(covariates)))
+
+
+def _keys(result):
+    return {(f.feature, f.site, f.kind) for f in result.findings}
+
+
+@pytest.fixture(scope="module", params=[7, 2031], ids=["seed7", "fresh-seed2031"])
+def demo_run(request):
+    d, table = _demo(6000, request.param)
+    return d, table, find_fingerprints(table)
+
+
+def test_demo_truth_recovered_with_kind_and_site(demo_run):
+    d, _, result = demo_run
+    truth = {(e["feature"], e["site"], e["kind"]) for e in d.truth["effects"]}
+    assert len(truth) == 6
+    # every injected effect is found with the right kind and site, and nothing else is reported
+    assert _keys(result) == truth
+    for f in result.findings:
+        assert f.kind in KINDS
+        assert f.evidence["p_adj"] < 0.01
+        assert f.explanation and f.suggested_fix
+
+
+def test_demo_evidence_numbers(demo_run):
+    d, table, result = demo_run
+    by = {(f.feature, f.kind): f.evidence for f in result.findings}
+    g = by[("glucose", "unit_ratio")]
+    # the demo records glucose in mg/dL at Cindervale: x 18.016 (molar mass 180.16 g/mol)
+    assert g["factor"] == pytest.approx(GLUCOSE_MGDL_PER_MMOLL, rel=1e-3)
+    assert g["ratio_ci"][0] <= GLUCOSE_MGDL_PER_MMOLL * 1.05 and g["ratio_ci"][1] >= GLUCOSE_MGDL_PER_MMOLL * 0.95
+    assert g["name_match"] is True and g["conversion"]["analyte"] == "glucose"
+    s = by[("sodium", "shift")]
+    assert s["smd_ci"][0] > 0.2
+    assert 3.0 < s["difference"] < 5.0  # injected +4 mmol/L
+    t = by[("temperature", "precision")]
+    assert (t["step_site"], t["step_elsewhere"]) == (0.5, 0.1)
+    assert by[("crp", "floor")]["limit"] == 5.0
+    assert by[("lactate", "missing_code")]["value"] == -99.0
+    alb = by[("albumin", "site_missing")]
+    n_dusk = int((table.frame["hospital"] == "Duskwater").sum())
+    assert alb["at_site"]["n"] == n_dusk and alb["at_site"]["count"] == n_dusk
+
+
+def test_creatinine_case_mix_is_not_a_shift_when_age_is_a_covariate(demo_run):
+    _, _, result = demo_run
+    assert not [f for f in result.findings if f.feature == "creatinine"]
+    assert result.covariates == ("age", "sex")
+
+
+def test_case_mix_synthetic_flags_shift_only_without_adjustment():
+    # invented: creatinine rises steeply with age; one site is 15 years older on average
+    rng = np.random.default_rng(5)
+    n = 2400
+    site = np.repeat(["North", "South", "East", "West"], n // 4).astype(object)
+    age = rng.normal(55, 10, n) + np.where(site == "East", 15, 0)
+    creat = np.round(70 + 1.2 * (age - 55) + rng.normal(0, 12, n))
+    frame = pd.DataFrame({"site": site, "age": np.round(age), "creatinine": creat,
+                          "noise": np.round(rng.normal(5, 1, n), 1)})
+    raw_cov = find_fingerprints(_table(frame, ["age"]), covariates=())
+    assert ("creatinine", "East", "shift") in _keys(raw_cov)
+    adjusted = find_fingerprints(_table(frame, ["age"]))
+    assert not [f for f in adjusted.findings if f.kind == "shift"]
+
+
+def _unit_frame(seed=3, name="creatinine"):
+    rng = np.random.default_rng(seed)
+    n = 2000
+    site = np.repeat(["North", "South", "East", "West"], n // 4).astype(object)
+    umol = np.exp(rng.normal(np.log(80), 0.25, n))
+    values = np.where(site == "West", np.round(umol / 88.4, 2), np.round(umol))
+    return pd.DataFrame({"site": site, name: values, "other": np.round(rng.normal(10, 2, n), 1)})
+
+
+def test_unit_detection_creatinine_in_mg_dl_at_one_site():
+    result = find_fingerprints(_table(_unit_frame()))
+    assert _keys(result) == {("creatinine", "West", "unit_ratio")}
+    ev = result.findings[0].evidence
+    # AMA SI table: creatinine mg/dL x 88.4 = umol/L, so West/others = 1/88.4
+    assert ev["factor"] == pytest.approx(1 / 88.4, rel=1e-3)
+    assert ev["conversion"]["from_unit"] == "mg/dL" and ev["name_match"] is True
+    assert ev["ratio_ci"][0] < 1 / 88.4 < ev["ratio_ci"][1]
+
+
+def test_unit_detection_by_ratio_alone_for_an_unnamed_column():
+    result = find_fingerprints(_table(_unit_frame(name="lab_x17")))
+    f = [f for f in result.findings if f.kind == "unit_ratio"]
+    assert [(x.feature, x.site) for x in f] == [("lab_x17", "West")]
+    assert f[0].evidence["name_match"] is False
+
+
+def test_temperature_in_fahrenheit_is_an_affine_unit():
+    rng = np.random.default_rng(11)
+    n = 1600
+    site = np.repeat(["North", "South", "East", "West"], n // 4).astype(object)
+    c = rng.normal(36.9, 0.5, n)
+    temp = np.where(site == "South", np.round(c * 9 / 5 + 32, 1), np.round(c, 1))
+    result = find_fingerprints(_table(pd.DataFrame({"site": site, "temp": temp})))
+    assert _keys(result) == {("temp", "South", "unit_ratio")}
+    assert result.findings[0].evidence["median_site_converted"] == pytest.approx(36.9, abs=0.2)
+
+
+def test_heaping_ceiling_scale_and_exclusive_level_on_a_synthetic():
+    rng = np.random.default_rng(21)
+    n = 3200
+    site = np.repeat(["North", "South", "East", "West"], n // 4).astype(object)
+    sbp = np.round(rng.normal(130, 18, n))
+    heap = (site == "North") & (rng.random(n) < 0.5)
+    sbp[heap] = np.round(sbp[heap] / 10) * 10          # half the values rounded to tens at North
+    sat = np.round(rng.normal(94, 4, n))
+    sat[(site == "South") & (sat > 97)] = 97           # upper reporting limit at South
+    wide = rng.normal(50, 5, n) * np.where(site == "East", 1.8, 1.0)
+    ward = rng.choice(["A", "B", "C"], n).astype(object)
+    ward[(site == "West") & (rng.random(n) < 0.1)] = "Z-local"
+    frame = pd.DataFrame({"site": site, "sbp": sbp, "sat": sat, "wide": np.round(wide, 2), "ward": ward})
+    keys = _keys(find_fingerprints(_table(frame)))
+    assert {("sbp", "North", "heaping"), ("sat", "South", "ceiling"), ("wide", "East", "scale"),
+            ("ward", "West", "exclusive_level")} <= keys
+    assert ("sbp", "North", "precision") not in keys
+
+
+@pytest.mark.slow
+def test_no_kind_fires_on_the_null_demo_more_than_its_rate():
+    # stated rate: each kind fires on a null table with probability <= alpha = 0.01;
+    # over 8 null tables P(a given kind fires twice or more) <= 0.003
+    fired = {k: 0 for k in KINDS}
+    for seed in range(100, 108):
+        _, table = _demo(1500, seed, null=True)
+        result = find_fingerprints(table)
+        n_numeric = sum(table.kind(f) == "numeric" for f in result.features)
+        assert result.tests["shift"]["n_tests"] == 4 * n_numeric
+        assert result.tests["shift"]["per_test_alpha"] == pytest.approx(0.01 / (4 * n_numeric), rel=1e-4)
+        for k in {f.kind for f in result.findings}:
+            fired[k] += 1
+    assert max(fired.values()) <= 1, fired
+    assert sum(fired.values()) <= 2, fired
+
+
+def test_covariate_adjustment_matches_statsmodels_ols():
+    sm = pytest.importorskip("statsmodels.api")
+    rng = np.random.default_rng(0)
+    n, k = 500, 3
+    site = rng.integers(0, k, n)
+    Z = rng.normal(size=(n, 2))
+    y = 1.5 * Z[:, 0] - 0.7 * Z[:, 1] + np.array([0.0, 2.0, -1.0])[site] + rng.normal(0, 1, n)
+    y[:7] = np.nan
+    adj, used = adjust_for_covariates(y, site, Z, k)
+    ok = ~np.isnan(y)
+    D = np.eye(k)[site[ok]]
+    fit = sm.OLS(y[ok], np.hstack([D, Z[ok]])).fit()  # reference: statsmodels OLS with site indicators
+    np.testing.assert_allclose(adj[ok], y[ok] - Z[ok] @ fit.params[k:], atol=1e-8)
+    assert used == n - 7 and np.isnan(adj[:7]).all()
+
+
+def test_site_missing_p_value_is_fishers_exact_probability():
+    site = np.repeat([0, 1, 2], [30, 50, 40])
+    present = np.ones(120, dtype=bool)
+    present[:30] = False            # site 0 never recorded
+    present[30:35] = False          # 5 missing elsewhere
+    (c,) = detect_site_missing(present, site, 3)
+    # Fisher (1935): one-sided p of the extreme table = C(M, n_s) / C(N, n_s), M = all missing
+    expected = math.comb(35, 30) / math.comb(120, 30)
+    assert c.s == 0 and c.p == pytest.approx(expected, rel=1e-6)
+
+
+def test_exclusive_level_p_value_is_hypergeometric():
+    site = np.repeat([0, 1], [40, 60])
+    values = np.array(["a"] * 34 + ["z"] * 6 + ["a"] * 60, dtype=object)
+    (c,) = detect_exclusive_levels(values, site, 2)
+    # all 6 'z' rows fall at the 40-row site: C(40, 6) / C(100, 6)
+    assert c.p == pytest.approx(math.comb(40, 6) / math.comb(100, 6), rel=1e-9)
+    assert c.evidence["level"] == "z" and c.evidence["count"] == 6
+
+
+def test_median_interval_agrees_with_scipy_quantile_test():
+    x = np.sort(np.random.default_rng(4).lognormal(0, 1, 301))
+    lo, hi = median_ci(x)
+    # reference: scipy.stats.quantile_test (exact binomial interval for the median)
+    ref = stats.quantile_test(x, q=np.median(x), p=0.5).confidence_interval(0.95)
+    rank = {v: i for i, v in enumerate(x)}
+    assert abs(rank[lo] - rank[ref.low]) <= 1 and abs(rank[hi] - rank[ref.high]) <= 1
+
+
+def test_grid_step():
+    assert grid_step(np.array([36.5, 37.0, 38.5, 36.0])) == 0.5
+    assert grid_step(np.array([36.7, 37.1, 38.2, 36.0, 36.9])) == 0.1
+    assert grid_step(np.array([120.0, 131.0, 142.0, 97.0])) == 1.0
+    assert grid_step(np.array([0.123456, 0.98765, 3.14159265])) is None
+
+
+def test_deterministic_and_accepts_prepared(demo_table, demo_prepared):
+    a = find_fingerprints(demo_table).to_dict()
+    b = find_fingerprints(demo_prepared).to_dict()
+    assert a == b
+    assert a["n_rows"] == len(demo_table.frame)
+
+
+def test_bad_inputs_name_the_column(demo_table):
+    with pytest.raises(InputError, match="'height_cm'"):
+        find_fingerprints(demo_table, covariates=["height_cm"])
+    with pytest.raises(ParameterError):
+        find_fingerprints(demo_table, alpha=2)
+
+
+def test_scan_fills_the_fingerprints_section_and_renders(demo_table):
+    from sitecheck import analyses
+    from sitecheck.render.sections import ORDER, fingerprints as section
+    from sitecheck.scan import ScanOptions, scan_table
+
+    names = [a.name for a in analyses.REGISTRY]
+    assert "fingerprints" in names and "fingerprints" in ORDER
+    for later in ("maps", "harmonise", "outcome"):
+        if later in names:
+            assert names.index("fingerprints") < names.index(later)
+    doc = scan_table(demo_table, ScanOptions(analyses=("fingerprints",))).to_dict()
+    assert {f["kind"] for f in doc["fingerprints"]} >= {"unit_ratio", "missing_code", "site_missing"}
+    for f in doc["fingerprints"]:
+        assert set(f) >= {"feature", "site", "kind", "detail", "evidence"}
+    md = section.markdown(doc, 10)
+    assert "glucose" in md and "unit\\_ratio" in md
+
+
+def test_render_escapes_data_text_and_withholds_small_cells():
+    from sitecheck.render.sections import fingerprints as section
+
+    doc = {"input": {"sites": {"<b>Big</b>": 500, "Tiny": 4}},
+           "fingerprints": [
+               {"feature": "<script>x</script>", "site": "<b>Big</b>", "kind": "missing_code",
+                "detail": "the value -99 appears 7 times", "evidence": {"p_adj": 1e-5, "at_site": {"n": 500, "count": 7}}},
+               {"feature": "crp", "site": "Tiny", "kind": "floor", "detail": "secret 3 of 4",
+                "evidence": {"p_adj": 0.001, "at_site": {"n": 4, "count": 3}}},
+               {"feature": "sodium", "site": "<b>Big</b>", "kind": "shift", "detail": "mean 142",
+                "evidence": {"p_adj": 0.0, "n": 500}}]}
+    page = section.html(doc, 10)
+    assert "<script>" not in page and "&lt;script&gt;" in page and "&lt;b&gt;Big" in page
+    assert "secret" not in page and "appears 7 times" not in page and "withheld" in page
+    assert "mean 142" in page and "500" in page
+    md = section.markdown(doc, 10)
+    assert "secret" not in md and "mean 142" in md
+    assert section.html({"input": {}}, 10) == ""
