@@ -233,5 +233,10 @@ def schema_cmd():
     click.echo(json.dumps(report_schema(), indent=2))
 
 
+from .commands_harmonise import harmonise_cmd  # noqa: E402  (issue 6: the harmonise command)
+
+main.add_command(harmonise_cmd)
+
+
 if __name__ == "__main__":  # pragma: no cover
     main()
