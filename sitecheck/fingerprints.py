@@ -448,6 +448,8 @@ def detect_limits(vals: Sequence[np.ndarray], active: Sequence[int], *, min_coun
         if not others:
             continue
         rest = np.concatenate(others)
+        if float(v.min()) == float(v.max()):
+            continue  # one value only: a constant, judged by ``scale``
         for kind, m in (("floor", float(v.min())), ("ceiling", float(v.max()))):
             tol = 1e-9 * max(1.0, abs(m))
             k_s = int(np.sum(np.abs(v - m) <= tol))
@@ -632,12 +634,13 @@ def detect_shift_scale(vals: Sequence[np.ndarray], active: Sequence[int], *, min
     """Location and spread gaps of (covariate-adjusted) values at one site.
 
     ``shift``: the standardised mean difference of the site against the median
-    of the other sites' means, over the pooled within-site SD (a robust
-    reference: one shifted site does not make the others look shifted);
+    of all sites' means (of the other site's, with two sites), over the pooled
+    within-site SD (a robust reference: one shifted site does not make the
+    others look shifted);
     p-value from Welch's t-test of the site against the other sites; interval
     from the large-sample SE of the SMD (Hedges & Olkin 1985). Needs
     ``|SMD| >= min_smd`` (0.2, a "small" effect after Cohen 1988).
-    ``scale``: the site's SD over the median of the other sites' SDs; p-value
+    ``scale``: the site's SD over the median of the sites' SDs (same rule); p-value
     from the Brown-Forsythe test (Levene with medians) on within-site
     median-centred values; needs a ratio beyond ``min_sd_ratio`` either way.
     False-positive rate per feature x site test: at most the per-test level
@@ -662,8 +665,11 @@ def detect_shift_scale(vals: Sequence[np.ndarray], active: Sequence[int], *, min
         return out
     for s in act:
         others = [t for t in act if t != s]
+        # reference: median over all sites (robust to one odd site) from three sites on;
+        # with two sites, the other site
+        ref_set = act if len(act) >= 3 else others
         rest = np.concatenate([vals[t] for t in others])
-        ref_mean = float(np.median([means[t] for t in others]))
+        ref_mean = float(np.median([means[t] for t in ref_set]))
         smd = (means[s] - ref_mean) / sd_p
         n_s, n_r = n[s], len(rest)
         se = math.sqrt(1 / n_s + 1 / n_r + smd ** 2 / (2 * (n_s + n_r)))
@@ -672,14 +678,14 @@ def detect_shift_scale(vals: Sequence[np.ndarray], active: Sequence[int], *, min
         ev = {"smd": _r(smd), "smd_ci": [_r(smd - _Z95 * se), _r(smd + _Z95 * se)], "p_value": _r(p),
               "mean_site": _r(means[s]), "mean_reference": _r(ref_mean), "sd_pooled": _r(sd_p),
               "difference": _r(means[s] - ref_mean), "n": int(n_s), "n_reference": int(n_r)}
-        detail = (f"mean {means[s]:.4g} against {ref_mean:.4g} at the other sites (difference "
+        detail = (f"mean {means[s]:.4g} against {ref_mean:.4g} across sites (median of site means; difference "
                   f"{means[s] - ref_mean:+.3g}, SMD {smd:+.2f})")
         sev = "high" if abs(smd) >= 0.8 else "medium" if abs(smd) >= 0.5 else "low"
         out.append(_Cand(-1, s, "shift", p, abs(smd) >= min_smd, detail, ev, sev,
                          "check the analyser, calibration or method at this site; if it is a known offset, "
                          "correct it, else harmonise with care (it may be case mix the covariates miss)"))
         # scale
-        ref_sd = float(np.median([sds[t] for t in others]))
+        ref_sd = float(np.median([sds[t] for t in ref_set]))
         if ref_sd <= 0 or sds[s] <= 0:
             continue
         ratio = sds[s] / ref_sd
@@ -691,7 +697,7 @@ def detect_shift_scale(vals: Sequence[np.ndarray], active: Sequence[int], *, min
                                                        _r(ratio * math.exp(_Z95 * se_l))],
                "p_value": _r(pl), "sd_site": _r(sds[s]), "sd_reference": _r(ref_sd),
                "n": int(n_s), "n_reference": int(n_r)}
-        detail2 = f"spread (SD) {sds[s]:.4g} against {ref_sd:.4g} at the other sites (ratio {ratio:.2f})"
+        detail2 = f"spread (SD) {sds[s]:.4g} against {ref_sd:.4g} across sites (median of site SDs; ratio {ratio:.2f})"
         eff = ratio >= min_sd_ratio or ratio <= 1 / min_sd_ratio
         out.append(_Cand(-1, s, "scale", pl, eff, detail2, ev2, "medium" if eff else "low",
                          "check the assay's range and calibration at this site; a different method or "
@@ -911,7 +917,7 @@ def find_fingerprints(data, *, covariates: Optional[Sequence[str]] = None, alpha
             c.j = j
             cands.append(c)
         # shift / scale on covariate-adjusted values, without the sites whose
-        # values are not comparable (unit, limit)
+        # values are not comparable (a unit change or a reporting limit explains them)
         y = x.copy()
         y[~present] = np.nan
         for s in range(k):
@@ -922,13 +928,10 @@ def find_fingerprints(data, *, covariates: Optional[Sequence[str]] = None, alpha
                 y[(site_code == s) & np.isin(x, codes)] = np.nan
         y_adj, _ = adjust_for_covariates(y, site_code, Z, k)
         adj_vals = [y_adj[(site_code == s) & ~np.isnan(y_adj)] for s in range(k)]
-        act2 = [s for s in active if len(adj_vals[s]) > 0]
+        act2 = [s for s in active if len(adj_vals[s]) > 0 and not found[s] & {"floor", "ceiling"}]
         for c in detect_shift_scale(adj_vals, act2, min_count=min_count, min_smd=min_smd,
                                     min_sd_ratio=min_sd_ratio):
             c.j = j
-            if found[c.s] & {"floor", "ceiling", "unit_ratio"}:
-                c.passes_effect = False
-                c.evidence["explained_by"] = sorted(found[c.s] & {"floor", "ceiling"})
             c.evidence["covariates"] = list(covs)
             cands.append(c)
 

@@ -27,7 +27,7 @@ _KIND_WORDS = {
 }
 
 _HEAD = ["feature", "site", "fingerprint", "severity", "what we found", "what it usually means",
-         "suggested fix", "p (adjusted)", "rows at site"]
+         "suggested fix", "p (adjusted)", "values at site"]
 
 
 def _counts(obj, out: List[Any]) -> None:
