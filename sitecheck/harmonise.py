@@ -775,7 +775,9 @@ class SurvivingGap:
         ``site`` against the other sites.
     detail : str
     site : str
-        The site that differs most (largest one-vs-rest statistic).
+        The site the reason refers to: the site with the largest one-vs-rest
+        statistic among those whose raw values show a specific cause, else
+        the site that differs most.
     statistic : float
         Kolmogorov-Smirnov D of that site against the rest (numeric), the
         difference in missing share (missingness) or Cramer's V (categorical).
@@ -800,11 +802,13 @@ class SurvivingGap:
                 "site": self.site, "statistic": self.statistic, "detail": self.detail, "n": self.n}
 
 
-def _ks_one_vs_rest(v: np.ndarray, site: np.ndarray, k: int, min_rows: int) -> Tuple[float, float, int]:
-    """Largest one-vs-rest two-sample KS D, its site, and a Bonferroni p over sites."""
+def _ks_one_vs_rest(v: np.ndarray, site: np.ndarray, k: int, min_rows: int) -> Tuple[np.ndarray, float]:
+    """One-vs-rest two-sample KS D of every site (NaN when untested) and the
+    smallest p-value, Bonferroni-adjusted over the sites tested."""
     from scipy.stats import ks_2samp
 
-    best_d, best_p, best_i, tested = 0.0, 1.0, -1, 0
+    D = np.full(k, np.nan)
+    best_p, tested = 1.0, 0
     ok = ~np.isnan(v)
     for i in range(k):
         a = v[ok & (site == i)]
@@ -813,12 +817,11 @@ def _ks_one_vs_rest(v: np.ndarray, site: np.ndarray, k: int, min_rows: int) -> T
             continue
         tested += 1
         res = ks_2samp(a, b, method="asymp")
-        if res.statistic > best_d or best_i < 0:
-            best_d, best_i = float(res.statistic), i
+        D[i] = float(res.statistic)
         best_p = min(best_p, float(res.pvalue))
     if tested == 0:
-        return float("nan"), float("nan"), -1
-    return best_d, min(1.0, best_p * tested), best_i
+        return D, float("nan")
+    return D, min(1.0, best_p * tested)
 
 
 def _missing_test(v: np.ndarray, site: np.ndarray, k: int) -> Tuple[float, float, int]:
@@ -946,7 +949,7 @@ def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, n
             rows.append((j, float(res.pvalue), V, "categorical, left unchanged",
                          f"Cramer's V {V:.2f} across sites", worst))
             continue
-        d, p_ks, i_ks = _ks_one_vs_rest(v, site, k, min_rows)
+        D_sites, p_ks = _ks_one_vs_rest(v, site, k, min_rows)
         p_m, diff_m, i_m = _missing_test(X_raw[:, j], site, k)
         if not np.isfinite(p_ks) and i_m < 0:
             continue
@@ -959,10 +962,21 @@ def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, n
             continue
         if not np.isfinite(p_ks):
             continue
-        a = X_raw[site == i_ks, j]
-        b = X_raw[site != i_ks, j]
-        reason, detail = diagnose(a, b)
-        rows.append((j, p_feat, d, reason, detail, i_ks))
+        # The reason: the first site, by KS D, whose raw values show a specific cause
+        # (floor or ceiling, unit mixture, precision); else the worst site's shape.
+        order = [i for i in np.argsort(-np.nan_to_num(D_sites, nan=-1.0), kind="stable") if np.isfinite(D_sites[i])]
+        pick = None
+        for i in order:
+            if D_sites[i] < min_effect:
+                break
+            reason, detail = diagnose(X_raw[site == i, j], X_raw[site != i, j])
+            if reason != "shape difference":
+                pick = (reason, detail, int(i))
+                break
+        if pick is None:
+            i = int(order[0])
+            pick = ("shape difference", "the distributions still differ after harmonisation", i)
+        rows.append((j, p_feat, float(D_sites[pick[2]]), pick[0], pick[1], pick[2]))
     if not rows:
         return (), 0
     padj = bh_adjust(np.array([r[1] for r in rows]))

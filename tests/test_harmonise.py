@@ -1,0 +1,257 @@
+"""Harmonisation methods, surviving gaps, the scan check and the harmonise command."""
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+from click.testing import CliRunner
+
+from sitecheck.cli import main
+from sitecheck.errors import InputError
+from sitecheck.harmonise import (METHODS, HarmonisationFit, apply_harmoniser, check_confounding, diagnose,
+                                 fit_harmoniser, harmonisation_check, harmonise, protected_design, surviving_gaps)
+
+LABELS = ("Ashgrove", "Brindle Cross", "Corran Vale", "Dunmere")  # invented sites
+NAMES = ["crp", "temperature", "glucose", "sodium", "albumin", "potassium"]
+
+
+def _injected(n=2400, seed=0):
+    """Invented four-site table with one documented effect per feature (ground truth)."""
+    rng = np.random.default_rng(seed)
+    site = np.repeat(np.arange(4), n // 4)
+    crp = rng.lognormal(2.0, 1.0, n)
+    crp[site == 3] = np.maximum(crp[site == 3], 5.0)              # detection limit at Dunmere
+    temp = rng.normal(37.0, 0.6, n).round(1)
+    temp[site == 0] = np.round(temp[site == 0] * 2) / 2           # rounding to 0.5 at Ashgrove
+    glucose = rng.lognormal(1.7, 0.3, n)
+    glucose[site == 2] *= 18.016                                  # mg/dL instead of mmol/L at Corran Vale
+    sodium = rng.normal(140, 3, n) + 4 * (site == 1)              # analyser offset at Brindle Cross
+    albumin = rng.normal(40, 4, n)
+    albumin[site == 3] = np.nan                                   # never measured at Dunmere
+    potassium = (rng.normal(4.2, 0.4, n) + np.array([0.0, 0.3, -0.2, 0.1])[site]) \
+        * np.array([1.0, 1.5, 0.8, 1.2])[site]                    # location and scale only
+    return np.column_stack([crp, temp, glucose, sodium, albumin, potassium]), site
+
+
+@pytest.fixture(scope="module")
+def injected():
+    return _injected()
+
+
+@pytest.fixture(scope="module")
+def gaps_by_method(injected):
+    X, site = injected
+    out = {}
+    for m in METHODS:
+        Xh, _ = harmonise(X, site, method=m, site_labels=LABELS, feature_names=NAMES)
+        gaps, n_tested = surviving_gaps(X, Xh, site, names=NAMES, site_labels=LABELS)
+        out[m] = ({g.feature: g for g in gaps}, n_tested)
+    return out
+
+
+@pytest.mark.parametrize("method", METHODS)
+def test_floor_effect_survives_every_method_with_its_reason(gaps_by_method, method):
+    gaps, n_tested = gaps_by_method[method]
+    assert n_tested == len(NAMES)
+    g = gaps["crp"]
+    assert g.reason == "floor or ceiling" and g.site == "Dunmere"
+    assert g.p_adj < 1e-6 and g.statistic > 0.1 and g.n == 2400
+    assert "floor 5" in g.detail
+    # A never-measured column cannot be harmonised away either.
+    assert gaps["albumin"].reason == "missingness" and gaps["albumin"].site == "Dunmere"
+    # Pure location and scale effects are removed by every method but plain centring.
+    if method != "centre":
+        assert "potassium" not in gaps and "sodium" not in gaps
+
+
+def test_reasons_for_precision_and_unit_mixture(gaps_by_method):
+    gaps, _ = gaps_by_method["centre"]
+    assert gaps["glucose"].reason == "unit mixture" and gaps["glucose"].site == "Corran Vale"
+    assert gaps["temperature"].reason == "precision" and gaps["temperature"].site == "Ashgrove"
+    assert "0.5" in gaps["temperature"].detail
+    # A unit factor is a pure scale change: per-site standardisation removes it.
+    assert "glucose" not in gaps_by_method["scale"][0]
+    # Centring leaves the scale difference of potassium in place.
+    assert "potassium" in gaps
+    assert "sodium" not in gaps
+
+
+def test_surviving_gap_pvalues_are_bh_adjusted(injected):
+    # Reference: scipy.stats.ks_2samp one site against the rest, Bonferroni over
+    # sites, then Benjamini-Hochberg (scipy.stats.false_discovery_control).
+    from scipy.stats import false_discovery_control, ks_2samp
+
+    X, site = injected
+    cols = [0, 3]  # crp, sodium: no missing values
+    Xh, _ = harmonise(X[:, cols], site, method="centre", site_labels=LABELS)
+    gaps, _ = surviving_gaps(X[:, cols], Xh, site, names=["crp", "sodium"], site_labels=LABELS, min_effect=0.0,
+                             alpha=1.1)
+    p = []
+    for j in range(2):
+        ps = [ks_2samp(Xh[site == i, j], Xh[site != i, j], method="asymp").pvalue for i in range(4)]
+        p.append(min(1.0, 4 * min(ps)))
+    want = false_discovery_control(p, method="bh")
+    got = {g.feature: g.p_adj for g in gaps}
+    np.testing.assert_allclose([got["crp"], got["sodium"]], want, rtol=1e-10)
+
+
+def test_centre_equalises_site_means_and_quantile_matches_pooled_quantiles():
+    rng = np.random.default_rng(1)
+    n = 4000
+    site = rng.integers(0, 4, n)
+    X = np.column_stack([rng.gamma(2.0, 1.0 + site), rng.normal(site, 1.0 + 0.5 * site)])
+    Xc, _ = harmonise(X, site, method="centre", site_labels=LABELS)
+    for i in range(4):
+        np.testing.assert_allclose(Xc[site == i].mean(axis=0), X.mean(axis=0), rtol=1e-10)
+    Xq, _ = harmonise(X, site, method="quantile", site_labels=LABELS, n_quantiles=401)
+    probs = np.linspace(0.05, 0.95, 19)
+    pooled = np.quantile(X, probs, axis=0)  # reference: numpy quantiles of the pooled raw values
+    spread = np.quantile(X, 0.75, axis=0) - np.quantile(X, 0.25, axis=0)
+    for i in range(4):
+        got = np.quantile(Xq[site == i], probs, axis=0)
+        assert (np.abs(got - pooled) / spread).max() < 0.05
+
+
+def test_categorical_columns_are_left_unchanged_and_said_so(injected):
+    X, site = injected
+    rng = np.random.default_rng(2)
+    codes = rng.integers(0, 3, len(site)).astype(float)
+    Xc = np.column_stack([X, codes])
+    Xh, fit = harmonise(Xc, site, method="combat", site_labels=LABELS, feature_names=NAMES + ["mode"],
+                        categorical=np.array([False] * 6 + [True]))
+    assert np.array_equal(Xh[:, 6], codes)
+    assert fit.unchanged == {"mode": "categorical"} and fit.adjusted[-1] is False
+    assert np.array_equal(np.isnan(Xh), np.isnan(Xc))
+
+
+def test_input_errors_name_the_problem(injected):
+    X, site = injected
+    fit = fit_harmoniser(X, site, method="scale", site_labels=LABELS)
+    with pytest.raises(InputError, match="site code 7"):
+        apply_harmoniser(fit, X[:5], np.array([0, 1, 2, 3, 7]))
+    frame = pd.DataFrame({"ward": np.array(["a", "b", "c", "d"])[site], "age": np.arange(len(site), dtype=float)})
+    D, spec = protected_design(frame, ["ward"])
+    with pytest.raises(InputError, match="'ward' is confounded with site"):
+        check_confounding(site, D, 4, owners=["ward"] * D.shape[1])
+    with pytest.raises(InputError, match="'ward': level 'z'"):
+        protected_design(pd.DataFrame({"ward": ["z"]}), ["ward"], spec=spec)
+    with pytest.raises(InputError, match="'height' is not in the table"):
+        protected_design(frame, ["height"])
+    with pytest.raises(InputError, match="malformed"):
+        HarmonisationFit.from_dict({"format": "sitecheck.harmonise/1", "method": "scale"})
+
+
+def test_diagnose_defaults_to_shape_difference():
+    rng = np.random.default_rng(3)
+    a = rng.exponential(1.0, 500) + 1.0
+    b = rng.normal(2.0, 1.0, 500)
+    assert diagnose(a, b)[0] == "shape difference"
+
+
+def test_scan_check_on_the_demo(demo_prepared, demo_truth):
+    res = harmonisation_check(demo_prepared, methods=("centre", "combat"), n_boot=50, n_permutations=0,
+                              model="linear",
+                              protect=["age", "sex"])
+    doc = res.to_dict()
+    assert list(doc) == ["centre", "combat"]
+    for m, d in doc.items():
+        assert d["n"] == demo_prepared.n_used
+        lo, hi = d["probe_auc_ci"]
+        assert lo <= d["probe_auc"] <= hi and 0.5 < d["probe_auc"] <= 1.0
+        assert d["outcome_auc_before"] is not None and d["outcome_auc_after"] is not None
+        assert d["outcome_auc_before_ci"][0] <= d["outcome_auc_before"] <= d["outcome_auc_before_ci"][1]
+        assert d["outcome_n"] == demo_prepared.n_used
+        assert d["unchanged"].get("arrival_mode") == "categorical"
+        # The demo's outcome prevalence differs by site and the outcome is not protected.
+        assert any("prevalence differs by site" in w for w in d["warnings"])
+        surv = {s["feature"]: s for s in d["surviving"]}
+        # Ground truth (demo_truth.json): floor on crp and no albumin at Duskwater.
+        truth = {(e["feature"], e["kind"]): e["site"] for e in demo_truth["effects"]}
+        assert surv["crp"]["reason"] == "floor or ceiling" and surv["crp"]["site"] == truth[("crp", "floor")]
+        assert surv["albumin"]["reason"] == "missingness"
+        assert surv["albumin"]["site"] == truth[("albumin", "site_missing")]
+        assert all(0 <= s["p_adj"] < 0.05 for s in d["surviving"])
+    assert doc["centre"]["surviving"] and {"glucose"} <= {s["feature"] for s in doc["centre"]["surviving"]}
+    # Same data and seed: the same JSON.
+    again = harmonisation_check(demo_prepared, methods=("combat",), n_boot=50, n_permutations=0,
+                              model="linear",
+                                protect=["age", "sex"])
+    assert json.dumps(again.to_dict()["combat"]) == json.dumps(doc["combat"])
+
+
+# ---------------------------------------------------------------- the command
+
+def _cli(args):
+    return CliRunner().invoke(main, args, catch_exceptions=False)
+
+
+def _one_line_error(res, text):
+    assert res.exit_code == 2, res.output
+    lines = [l for l in res.output.splitlines() if l.strip()]
+    assert len(lines) == 1 and text in lines[0] and "Traceback" not in res.output
+
+
+def test_command_fit_then_apply_gives_the_same_table(tmp_path, demo_small_path):
+    out = tmp_path / "h.csv"
+    r = _cli(["harmonise", demo_small_path, "--site", "hospital", "--method", "combat", "--protect", "age",
+              "--protect", "sex", "--out", str(out), "-q"])
+    assert r.exit_code == 0, r.output
+    params = json.loads((tmp_path / "h.csv.params.json").read_text())
+    assert params["method"] == "combat" and params["site_column"] == "hospital"
+    assert [s["name"] for s in params["protect"]] == ["age", "sex"]
+    assert params["left_unchanged"]["arrival_mode"] == "categorical"
+    raw = pd.read_csv(demo_small_path, dtype=str, keep_default_na=False)
+    h = pd.read_csv(out, dtype=str, keep_default_na=False)
+    assert list(h.columns) == list(raw.columns) and len(h) == len(raw)
+    for col in ("attendance_id", "hospital", "age", "sex", "arrival_mode", "admitted_hdu"):
+        assert h[col].equals(raw[col])  # copied verbatim
+    assert not h["sodium"].equals(raw["sodium"])
+    # Missing stays missing.
+    assert pd.read_csv(out)["albumin"].isna().equals(pd.read_csv(demo_small_path)["albumin"].isna())
+    # Apply the saved parameters to new rows of known sites (here: the first 300 rows).
+    part = tmp_path / "part.csv"
+    raw.iloc[:300].to_csv(part, index=False)
+    out2 = tmp_path / "h2.csv"
+    r = _cli(["harmonise", str(part), "--apply", str(tmp_path / "h.csv.params.json"), "--out", str(out2), "-q"])
+    assert r.exit_code == 0, r.output
+    h2 = pd.read_csv(out2)
+    pd.testing.assert_frame_equal(h2, pd.read_csv(out).iloc[:300], check_exact=False, rtol=1e-12)
+
+
+def test_command_parquet_stays_parquet(tmp_path, demo_small_path):
+    src = tmp_path / "d.parquet"
+    pd.read_csv(demo_small_path).to_parquet(src)
+    out = tmp_path / "h.parquet"
+    r = _cli(["harmonise", str(src), "--site", "hospital", "--method", "quantile", "--out", str(out),
+              "--params", str(tmp_path / "p.json"), "-q"])
+    assert r.exit_code == 0, r.output
+    h = pd.read_parquet(out)
+    assert h.shape == pd.read_parquet(src).shape and (tmp_path / "p.json").exists()
+    _one_line_error(_cli(["harmonise", str(src), "--site", "hospital", "--method", "scale",
+                          "--out", str(tmp_path / "h.csv")]), "input's format")
+
+
+def test_command_errors_exit_2_with_one_line(tmp_path, demo_small_path):
+    _one_line_error(_cli(["harmonise", demo_small_path, "--site", "hospital", "--method", "centre",
+                          "--out", demo_small_path]), "--out must not be the input file")
+    out = tmp_path / "h.csv"
+    assert _cli(["harmonise", demo_small_path, "--site", "hospital", "--method", "scale", "--out", str(out),
+                 "-q"]).exit_code == 0
+    params = str(tmp_path / "h.csv.params.json")
+    raw = pd.read_csv(demo_small_path, dtype=str, keep_default_na=False)
+    new = raw.iloc[:50].copy()
+    new.loc[new.index[3], "hospital"] = "Elmstead"  # an invented site never fitted
+    p1 = tmp_path / "new.csv"
+    new.to_csv(p1, index=False)
+    _one_line_error(_cli(["harmonise", str(p1), "--apply", params, "--out", str(tmp_path / "o1.csv")]),
+                    "site 'Elmstead' is not one of the fitted sites")
+    p2 = tmp_path / "nosodium.csv"
+    raw.iloc[:50].drop(columns=["sodium"]).to_csv(p2, index=False)
+    _one_line_error(_cli(["harmonise", str(p2), "--apply", params, "--out", str(tmp_path / "o2.csv")]),
+                    "column 'sodium' (in the parameters) is not in the table")
+    _one_line_error(_cli(["harmonise", demo_small_path, "--method", "scale", "--out", str(tmp_path / "o3.csv")]),
+                    "no site column")
+    _one_line_error(_cli(["harmonise", demo_small_path, "--site", "hospital", "--method", "combat",
+                          "--protect", "ward", "--out", str(tmp_path / "o4.csv")]), "'ward'")
+    for name in ("o1.csv", "o2.csv", "o3.csv", "o4.csv"):
+        assert not (tmp_path / name).exists()
