@@ -61,6 +61,9 @@ RNG_STREAM = 7
 #: then costs more than it saves, and much more on a loaded machine.
 SINGLE_THREAD_BELOW = 200_000
 
+#: Bootstrap resamples handled per vectorised block (bounds memory at block x n floats).
+BOOT_BLOCK = 32
+
 Interval = Optional[Tuple[float, float]]
 
 
@@ -103,28 +106,33 @@ def _auc_ci(y: np.ndarray, score: np.ndarray, *, n_boot: int, random_state: int)
     return _f(auc), (_f(lo), _f(hi))
 
 
-def tie_groups(score: np.ndarray) -> np.ndarray:
-    """Rank of each score among the distinct scores (ties share a group)."""
-    return np.unique(np.asarray(score, dtype=float), return_inverse=True)[1].ravel()
+class SortedScores:
+    """Scores sorted once, for the weighted AUCs of many bootstrap resamples.
 
-
-def weighted_auc(groups: np.ndarray, y: np.ndarray, weight: np.ndarray) -> float:
-    """Area under the ROC curve with case weights, ties counted one half.
-
-    ``groups`` are tie-group ranks of the scores (:func:`tie_groups`), so that one
-    sort serves every bootstrap replicate: the AUC is the weighted
-    Mann-Whitney probability P(score+ > score-) + P(tie)/2 (Hanley & McNeil
-    1982), O(n) per call.
+    :meth:`aucs` gives, for each row of a weight matrix, the area under the
+    ROC curve with case weights and ties counted one half: the weighted
+    Mann-Whitney probability P(score+ > score-) + P(tie) / 2 (Hanley & McNeil
+    1982), O(n) per resample.
     """
-    g = np.asarray(groups)
-    size = int(g.max()) + 1 if len(g) else 0
-    pos = np.bincount(g, weights=weight * y, minlength=size)
-    neg = np.bincount(g, weights=weight * (1.0 - y), minlength=size)
-    P, N = pos.sum(), neg.sum()
-    if P <= 0 or N <= 0:
-        return float("nan")
-    below = np.cumsum(neg) - neg
-    return float(np.dot(pos, below + 0.5 * neg) / (P * N))
+
+    def __init__(self, score: np.ndarray, y: np.ndarray):
+        score = np.asarray(score, dtype=float)
+        self.order = np.argsort(score, kind="mergesort")
+        s = score[self.order]
+        self.starts = np.flatnonzero(np.r_[True, s[1:] != s[:-1]]) if len(s) else np.zeros(0, int)
+        self.y = np.asarray(y, dtype=float)[self.order]
+
+    def aucs(self, W: np.ndarray) -> np.ndarray:
+        """AUC for each row of ``W`` (B, n), weights in the original row order."""
+        W = np.atleast_2d(np.asarray(W, dtype=float))
+        Ws = W[:, self.order]
+        pos = np.add.reduceat(Ws * self.y, self.starts, axis=1)
+        neg = np.add.reduceat(Ws * (1.0 - self.y), self.starts, axis=1)
+        below = np.cumsum(neg, axis=1) - neg
+        num = np.sum(pos * (below + 0.5 * neg), axis=1)
+        den = pos.sum(axis=1) * neg.sum(axis=1)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where(den > 0, num / np.where(den > 0, den, 1.0), np.nan)
 
 
 def youden_threshold(y: np.ndarray, score: np.ndarray) -> float:
@@ -480,15 +488,23 @@ def rates_at(y: np.ndarray, pred: np.ndarray, unit: np.ndarray, labels: Sequence
                          n=int(len(y)), n_missing=int(n_missing))
 
 
-def _spreads(y, pred, unit, n_units, w) -> Tuple[float, float]:
-    """TPR and FPR spreads (max - min over units) with case weights ``w``."""
-    P = np.bincount(unit, weights=w * y, minlength=n_units)
-    N = np.bincount(unit, weights=w * (1 - y), minlength=n_units)
-    TP = np.bincount(unit, weights=w * y * pred, minlength=n_units)
-    FP = np.bincount(unit, weights=w * (1 - y) * pred, minlength=n_units)
-    t = TP[P > 0] / P[P > 0]
-    f = FP[N > 0] / N[N > 0]
-    return (t.max() - t.min() if len(t) > 1 else np.nan, f.max() - f.min() if len(f) > 1 else np.nan)
+def _spreads(y, pred, unit, n_units, W) -> np.ndarray:
+    """TPR and FPR spreads (max - min over units) for each row of case weights ``W``: (B, 2)."""
+    U = np.zeros((len(unit), n_units))
+    U[np.arange(len(unit)), unit] = 1.0
+    P = (W * y) @ U
+    N = (W * (1.0 - y)) @ U
+    TP = (W * (y * pred)) @ U
+    FP = (W * ((1.0 - y) * pred)) @ U
+    out = np.full((W.shape[0], 2), np.nan)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        t = np.where(P > 0, TP / np.where(P > 0, P, 1.0), np.nan)
+        f = np.where(N > 0, FP / np.where(N > 0, N, 1.0), np.nan)
+    for col, r in ((0, t), (1, f)):
+        ok = np.sum(~np.isnan(r), axis=1) > 1
+        if ok.any():
+            out[ok, col] = np.nanmax(r[ok], axis=1) - np.nanmin(r[ok], axis=1)
+    return out
 
 
 def _pct(v: np.ndarray) -> Interval:
@@ -682,27 +698,30 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
     # joint site-stratified bootstrap of the held-out predictions: gap and rate spreads
     rng = prep.rng(RNG_STREAM)
     members = [np.flatnonzero(site == i) for i in range(len(labels))]
-    sizes = [len(m) for m in members]
-    g_oof = tie_groups(oof)
-    g_site = {i: tie_groups(loso_pred[members[i]]) for i in ok_sites}
+    s_oof = SortedScores(oof, y)
+    s_site = {i: SortedScores(loso_pred[members[i]], y[members[i]]) for i in ok_sites}
     gaps = np.full(n_boot, np.nan)
     sp_site = np.full((n_boot, 2), np.nan)
     sp_group = {g: np.full((n_boot, 2), np.nan) for g in group_units}
-    for b in range(n_boot):
-        draw = np.concatenate([m[rng.integers(0, len(m), len(m))] for m in members if len(m)])
-        w = np.bincount(draw, minlength=n).astype(float)
-        sp_site[b] = _spreads(y, pred, site, len(labels), w)
+    for start in range(0, n_boot, BOOT_BLOCK):
+        nb = min(BOOT_BLOCK, n_boot - start)
+        blk = slice(start, start + nb)
+        W = np.zeros((nb, n))
+        for mem in members:
+            if len(mem):
+                W[:, mem] = rng.multinomial(len(mem), np.full(len(mem), 1.0 / len(mem)), size=nb)
+        sp_site[blk] = _spreads(y, pred, site, len(labels), W)
         for g, (unit, levels) in group_units.items():
             sel = unit >= 0
-            sp_group[g][b] = _spreads(y[sel], pred[sel], unit[sel], len(levels), w[sel])
+            sp_group[g][blk] = _spreads(y[sel], pred[sel], unit[sel], len(levels), W[:, sel])
         if gap is None:
             continue
-        pa = weighted_auc(g_oof, y, w)
-        la = np.array([weighted_auc(g_site[i], y[members[i]], w[members[i]]) for i in ok_sites])
-        ww = np.array([w[members[i]].sum() for i in ok_sites])
-        good = ~np.isnan(la)
-        if good.any():
-            gaps[b] = pa - float(np.dot(ww[good], la[good]) / ww[good].sum())
+        pa = s_oof.aucs(W)
+        la = np.column_stack([s_site[i].aucs(W[:, members[i]]) for i in ok_sites])  # (nb, sites)
+        ww = np.column_stack([W[:, members[i]].sum(axis=1) for i in ok_sites])
+        ww = np.where(np.isnan(la), 0.0, ww)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            gaps[blk] = pa - np.nansum(la * ww, axis=1) / ww.sum(axis=1)
     gap_ci = _pct(gaps) if gap is not None else None
     eo = rates_at(y, pred, site, labels, threshold=thr, rule=rule,
                   spread_ci=(_pct(sp_site[:, 0]), _pct(sp_site[:, 1])))

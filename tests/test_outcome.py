@@ -8,7 +8,7 @@ from sklearn.metrics import confusion_matrix, roc_auc_score, roc_curve
 from sitecheck.errors import InputError
 from sitecheck.intake import frame_to_raw
 from sitecheck.outcome import (outcome_folds, outcome_risk, prevalence_by_site, rates_at, site_association,
-                               site_only_scores, tie_groups, weighted_auc, youden_threshold)
+                               site_only_scores, SortedScores, youden_threshold)
 from sitecheck.prepare import prepare
 from sitecheck.roles import RoleSpec, assign_roles
 
@@ -74,10 +74,13 @@ def test_weighted_auc_matches_sklearn_with_sample_weight():
     rng = np.random.default_rng(3)
     score = np.round(rng.normal(size=400), 1)  # many ties
     y = (rng.random(400) < 1 / (1 + np.exp(-2 * score))).astype(float)
-    w = rng.integers(0, 4, 400).astype(float)
+    W = rng.integers(0, 4, (5, 400)).astype(float)
+    got = SortedScores(score, y).aucs(np.vstack([W, np.ones(400)]))
     # Reference: sklearn.metrics.roc_auc_score with sample_weight (ties count one half).
-    assert weighted_auc(tie_groups(score), y, w) == pytest.approx(roc_auc_score(y, score, sample_weight=w), abs=1e-12)
-    assert weighted_auc(tie_groups(score), y, np.ones(400)) == pytest.approx(roc_auc_score(y, score), abs=1e-12)
+    for b in range(5):
+        assert got[b] == pytest.approx(roc_auc_score(y, score, sample_weight=W[b]), abs=1e-12)
+    assert got[5] == pytest.approx(roc_auc_score(y, score), abs=1e-12)
+    assert np.isnan(SortedScores(score, y).aucs(np.where(y == 1, 0.0, 1.0)[None, :])[0])  # one class left
 
 
 def test_youden_threshold_maximises_tpr_minus_fpr():
