@@ -1,0 +1,208 @@
+"""Maps and mixing: LISI against its published definition, embeddings, figures."""
+import json
+import math
+import os
+from types import SimpleNamespace
+
+import numpy as np
+import pytest
+from scipy.optimize import brentq
+
+from sitecheck.errors import InputError
+from sitecheck.maps import compute_maps, embed, expected_random, kernel_weights, lisi, summarise_lisi
+
+
+# ----------------------------------------------------------------- LISI, published definition
+
+def test_lisi_hand_computed_three_points():
+    # Korsunsky et al. (2019), Nature Methods 16:1289, Methods: for each row, Gaussian kernel weights
+    # p_ij ~ exp(-beta_i d_ij^2) over its k nearest other rows, beta_i set so that the perplexity
+    # exp(H(p_i)) equals the target; LISI_i = 1 / sum_b (sum_{j in b} p_ij)^2 (Simpson 1949, inverse).
+    # Points on a line: x = 0 (site A), 1 (site B), 3 (site A); k = 2 (all other rows); perplexity 1.5.
+    X = np.array([[0.0], [1.0], [3.0]])
+    labels = np.array([0, 1, 0])
+    got = lisi(X, labels, perplexity=1.5, n_neighbors=2)
+
+    # With two neighbours the weights are (w, 1 - w); the perplexity condition is
+    # -w log w - (1 - w) log(1 - w) = log 1.5, with w > 1/2 on the nearer neighbour.
+    def h(w):
+        return -w * math.log(w) - (1 - w) * math.log(1 - w) - math.log(1.5)
+
+    w = brentq(h, 0.5 + 1e-12, 1 - 1e-12)  # about 0.8500 (solved here, not from memory)
+    # Row 0: neighbours x=1 (B, nearer, weight w) and x=3 (A, weight 1-w): labels differ.
+    lisi0 = 1.0 / (w ** 2 + (1 - w) ** 2)
+    # Row 1: neighbours x=0 and x=3 are both A: one label holds all the weight -> exactly 1.
+    lisi1 = 1.0
+    # Row 2: neighbours x=1 (B, d=2, nearer) and x=0 (A, d=3): labels differ, same w.
+    lisi2 = lisi0
+    np.testing.assert_allclose(got, [lisi0, lisi1, lisi2], rtol=1e-4)
+    # and the kernel is Gaussian in distance: w/(1-w) = exp(beta (d2^2 - d1^2)) gives one beta per row
+    beta0 = math.log(w / (1 - w)) / (3 ** 2 - 1 ** 2)
+    assert beta0 > 0
+
+
+def test_lisi_uniform_limit_equals_number_of_labels():
+    # Perplexity equal to k forces uniform weights (maximum entropy log k), so LISI is the inverse
+    # Simpson's index of the neighbour label counts: two neighbours with different labels -> 2.
+    # Row 0 (x=0): neighbours x=1 (B) and x=3 (A).
+    X = np.array([[0.0], [1.0], [3.0]])
+    got = lisi(X, [0, 1, 0], perplexity=2.0 - 1e-9, n_neighbors=2)
+    assert got[0] == pytest.approx(2.0, rel=1e-3)
+    assert got[1] == pytest.approx(1.0, abs=1e-12)
+
+
+def test_lisi_equals_number_of_sites_when_shuffled():
+    # Well-shuffled labels with equal site sizes: every neighbourhood mirrors the table, so LISI
+    # approaches 1 / sum p^2 = 4 sites (Korsunsky et al. 2019). A finite kernel pulls it a little
+    # lower: with labels drawn independently of position, E[sum_b W_b^2] = sum p^2 + (1 - sum p^2) *
+    # sum_j p_ij^2 (variance of a weighted multinomial share; derivation here, not from a source).
+    rng = np.random.default_rng(1)
+    X = rng.normal(size=(2000, 5))
+    labels = np.repeat(np.arange(4), 500)
+    rng.shuffle(labels)
+    assert expected_random([500] * 4) == pytest.approx(4.0)
+    v = lisi(X, labels, perplexity=100)
+    assert v.mean() == pytest.approx(4.0, rel=0.06)
+    assert v.max() <= 4.0 + 1e-9
+    # sharper: the finite-kernel expectation from the actual weights, row by row
+    _, P = kernel_weights(X, perplexity=100)
+    expect = 1.0 / (0.25 + 0.75 * (P ** 2).sum(axis=1))
+    assert v.mean() == pytest.approx(expect.mean(), rel=0.02)
+    v30 = lisi(X, labels, perplexity=30)
+    _, P30 = kernel_weights(X, perplexity=30)
+    assert v30.mean() == pytest.approx((1.0 / (0.25 + 0.75 * (P30 ** 2).sum(axis=1))).mean(), rel=0.03)
+
+
+def test_lisi_equals_one_on_separated_clusters():
+    # Three far-apart clusters of 120 rows each (more than k = 90 rows per cluster): every
+    # neighbourhood holds one site only -> LISI = 1 exactly (by the definition).
+    rng = np.random.default_rng(2)
+    centres = np.array([[0, 0], [100, 0], [0, 100]])
+    X = np.vstack([c + rng.normal(size=(120, 2)) for c in centres])
+    labels = np.repeat([0, 1, 2], 120)
+    v = lisi(X, labels, perplexity=30)
+    np.testing.assert_allclose(v, 1.0, atol=1e-9)
+    s = summarise_lisi(v, labels, ("a", "b", "c"), n_boot=50, random_state=0)
+    assert s.normalised == pytest.approx(1 / 3)
+    assert s.per_site["b"]["n"] == 120
+
+
+def test_expected_random_unequal_sites():
+    # inverse Simpson's index of proportions (Simpson 1949): p = (.5, .3, .2) -> 1/(.25+.09+.04)
+    assert expected_random([50, 30, 20]) == pytest.approx(1 / 0.38)
+
+
+def test_lisi_rejects_bad_input():
+    with pytest.raises(InputError):
+        lisi(np.zeros((5, 2)), [0, 1], perplexity=3)
+    with pytest.raises(InputError):
+        lisi(np.zeros((5, 2)), [0, 1, 0, 1, 0], perplexity=1)
+
+
+# ----------------------------------------------------------------- embeddings and the analysis
+
+@pytest.fixture(scope="module")
+def maps_demo(demo_prepared):
+    # 240 rows of the demo (site-stratified), cheap settings
+    return compute_maps(demo_prepared, max_rows=240, n_boot=50, tsne_max_iter=250, umap_n_epochs=50)
+
+
+def test_embeddings_same_seed_identical():
+    rng = np.random.default_rng(3)
+    Z = rng.normal(size=(150, 6))
+    a, _ = embed(Z, random_state=4, tsne_max_iter=250, umap_n_epochs=30)
+    b, _ = embed(Z, random_state=4, tsne_max_iter=250, umap_n_epochs=30)
+    for m in ("pca", "tsne", "umap"):
+        assert a[m].shape == (150, 2)
+        np.testing.assert_array_equal(a[m], b[m])
+
+
+def test_compute_maps_contract_and_determinism(maps_demo, demo_prepared):
+    d = maps_demo.to_dict()
+    assert d["n_used"] == maps_demo.coords["pca"].shape[0]
+    assert 200 <= d["n_used"] <= 240
+    assert d["methods"] == ["pca", "tsne", "umap"]
+    assert set(d["mixing"]) == {"features", "pca", "tsne", "umap"}
+    for space, m in d["mixing"].items():
+        o = m["overall"]
+        assert 1.0 <= o["lisi_mean"] <= o["expected_random"] + 1e-9
+        assert o["lisi_ci"][0] <= o["lisi_mean"] <= o["lisi_ci"][1]
+        assert set(m["per_site"]) == set(demo_prepared.site_labels)
+        assert d["silhouette"][space]["n"] == d["n_used"]
+    # the demo injects strong site effects (a unit error, an offset, a site never measuring albumin):
+    # the feature space is far from random mixing
+    assert d["mixing"]["features"]["overall"]["normalised"] < 0.8
+    # sklearn's silhouette_score on the same design and labels gives the same mean (reference library)
+    from sklearn.metrics import silhouette_score
+    from sitecheck.maps import preprocess
+
+    idx = np.searchsorted(demo_prepared.rows, maps_demo.rows)
+    Z = preprocess(demo_prepared.X[idx], demo_prepared.features.categorical)
+    assert d["silhouette"]["features"]["value"] == pytest.approx(silhouette_score(Z, maps_demo.site), abs=1e-6)
+    again = compute_maps(demo_prepared, max_rows=240, n_boot=50, tsne_max_iter=250, umap_n_epochs=50)
+    assert json.dumps(again.to_dict(), sort_keys=True) == json.dumps(d, sort_keys=True)
+    assert "coords" not in d
+
+
+def test_compute_maps_validates_cap(demo_prepared):
+    with pytest.raises(InputError, match="map_rows"):
+        compute_maps(demo_prepared, max_rows=3)
+
+
+# ----------------------------------------------------------------- figures and section
+
+def _fake_result(maps):
+    return SimpleNamespace(objects={"maps": maps})
+
+
+@pytest.mark.parametrize("shareable", [False, True])
+def test_figures_written_and_non_empty(maps_demo, tmp_path, shareable):
+    from sitecheck.render.figures import write_figures
+
+    out = write_figures(_fake_result(maps_demo), str(tmp_path), min_cell=10, shareable=shareable)
+    rels = out["embedding"]
+    # site and outcome colourings, each PNG + SVG
+    assert len(rels) == 4
+    assert any(r.endswith(".svg") for r in rels) and any(r.endswith(".png") for r in rels)
+    for rel in rels:
+        assert rel.startswith("figures/")
+        path = tmp_path / rel
+        assert path.stat().st_size > 2000
+    png = (tmp_path / rels[0]).read_bytes()
+    assert png[:8] == b"\x89PNG\r\n\x1a\n"
+    svg = (tmp_path / [r for r in rels if r.endswith(".svg")][0]).read_text()
+    assert "<svg" in svg
+    if shareable:
+        # density mode draws no individual points: no scatter collections of one marker per row
+        assert "density" in rels[0]
+
+
+def test_site_labels_never_become_paths(maps_demo, tmp_path):
+    import dataclasses
+
+    from sitecheck.render.figures import write_figures
+
+    evil = dataclasses.replace(maps_demo, site_labels=("../x", "/etc/y", "<b>z</b>", "w"))
+    rels = write_figures(_fake_result(evil), str(tmp_path), min_cell=10, shareable=False)["embedding"]
+    for rel in rels:
+        assert ".." not in rel and "etc" not in rel
+        assert os.path.realpath(tmp_path / rel).startswith(os.path.realpath(tmp_path))
+    assert not (tmp_path.parent / "x").exists()
+
+
+def test_section_renders_escaped(maps_demo, tmp_path):
+    from sitecheck.render.figures import write_figures
+    from sitecheck.render.sections import maps as section
+
+    d = maps_demo.to_dict()
+    d["figures"] = write_figures(_fake_result(maps_demo), str(tmp_path), min_cell=10, shareable=False)["embedding"]
+    key = next(iter(d["mixing"]["features"]["per_site"]))
+    for m in d["mixing"].values():
+        m["per_site"]["<script>x</script>"] = dict(m["per_site"][key], n=3)
+    doc = {"embedding": d, "_out_dir": str(tmp_path)}
+    page = section.html(doc, 10)
+    assert "<script>x" not in page and "&lt;script&gt;" in page
+    assert "data:image/png;base64," in page
+    assert "withheld" in page  # the 3-row site's statistics are withheld at min_cell 10
+    md = section.markdown(doc, 10)
+    assert "LISI" in md and "<10" in md.replace("\\<", "<")
