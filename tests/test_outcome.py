@@ -315,3 +315,40 @@ def test_section_escapes_text_and_withholds_small_sites(shortcut_result):
     page = section.html(shared, 10)
     assert "withheld" in page and f"{o['prevalence']['Alpha']['p']:.3f}" not in page
     assert section.html({}, 10) == "" and section.markdown({}, 10) == ""
+
+
+def test_leak_scores_switch_to_the_real_leak_ranking():
+    from sitecheck.leakage import rank_leakage
+    from sitecheck.probe import cross_fit
+
+    prep = prep_of(synth(600, seed=6), groups=())
+    cf = cross_fit(prep.X, prep.site, prep.features.categorical, prep.folds, random_state=0)
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1):  # small table: OpenMP start-up would dominate the predictions
+        ranking = rank_leakage(prep, cf, n_repeats=2, max_rows_per_fold=200)
+    d = outcome_risk(prep, leakage=ranking, n_boot=50, n_repeats=1).to_dict()
+    assert d["leak_source"] == "leakage"
+    f = {r["feature"]: r for r in d["feature_risk"]}
+    for name in ("f0", "f1", "f2", "f3"):
+        assert f[name]["leak_score"] == pytest.approx(ranking.score_of(name))
+    assert [c["feature"] for c in d["shortcut_candidates"]] == ["f0"]
+
+
+def test_scan_fills_outcome_section_on_the_demo(demo_table, demo_truth):
+    from sitecheck.render.html import render_html
+    from sitecheck.render.markdown import render_markdown
+    from sitecheck.scan import ScanOptions, scan_table
+
+    res = scan_table(demo_table, ScanOptions(analyses=("outcome",)))
+    doc = res.to_dict()
+    o = doc["outcome"]
+    # Ground truth of the invented demo: baseline outcome logits differ by site.
+    assert demo_truth["outcome_prevalence"]["varies_by_site"]
+    assert o["prevalence_test"]["p_value"] < 0.01
+    for site, observed in demo_truth["outcome_prevalence"]["observed"].items():
+        assert o["prevalence"][site]["ci"][0] <= observed <= o["prevalence"][site]["ci"][1]
+    assert set(o["loso"]) == set(demo_truth["outcome_prevalence"]["observed"])
+    assert 0.6 < o["pooled_auc"] < 0.95 and o["n"] + o["n_missing"] == res.objects["prepared"].n_used
+    assert "Could a model use the site as a shortcut" in render_html(doc)
+    assert "Outcome shortcut and transport risk" in render_markdown(doc)
