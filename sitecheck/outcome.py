@@ -350,6 +350,7 @@ class OutcomeRisk:
     n_boot: int
     n_repeats: int
     importance_rows: int
+    importance_n: int
     seed: int
     rows: np.ndarray = field(default=None, compare=False, repr=False)
     pooled_scores: np.ndarray = field(default=None, compare=False, repr=False)
@@ -398,7 +399,8 @@ class OutcomeRisk:
             "n_boot": self.n_boot,
             "importance": {"method": "held-out permutation importance (AUC drop), mean over folds, "
                                      "t interval over folds",
-                           "n_repeats": self.n_repeats, "rows_per_fold": self.importance_rows},
+                           "n_repeats": self.n_repeats, "rows_per_fold": self.importance_rows,
+                           "n": self.importance_n, "n_folds": self.n_splits},
             "seed": self.seed,
         }
 
@@ -734,6 +736,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
 
     # outcome drivers: held-out permutation importance per fold
     imp = np.zeros((len(folds), X.shape[1]))
+    n_imp = 0
     sub_rng = np.random.default_rng([seed, RNG_STREAM, 1])
     for f, ((tr, te), m) in enumerate(zip(folds, fold_models)):
         rows = te
@@ -744,6 +747,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
         r = permutation_importance(m, X[rows], y[rows], scoring="roc_auc", n_repeats=n_repeats,
                                    random_state=seed + f, n_jobs=1)
         imp[f] = r.importances_mean
+        n_imp += int(len(rows))
     mean_imp = imp.mean(axis=0)
     if len(folds) > 1:
         half = sps.t.ppf(0.975, len(folds) - 1) * imp.std(axis=0, ddof=1) / np.sqrt(len(folds))
@@ -794,5 +798,5 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
         features=tuple(risks), leak_source=source, top_k=K, min_importance=float(min_importance),
         equalized_odds=eo,
         equalized_odds_by_group=eo_groups, n_splits=k, n_boot=int(n_boot), n_repeats=int(n_repeats),
-        importance_rows=int(importance_rows), seed=seed, rows=idx, pooled_scores=oof, loso_scores=loso_pred,
+        importance_rows=int(importance_rows), importance_n=n_imp, seed=seed, rows=idx, pooled_scores=oof, loso_scores=loso_pred,
     )
