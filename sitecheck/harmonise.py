@@ -1010,7 +1010,8 @@ class MethodCheck:
     probe_auc_ci : (float, float)
     probe_p_value : float or None
     n : int
-        Rows used for the re-probe (the scan's modelling rows).
+        Rows used for the re-probe (the scan's modelling rows, or a
+        site-stratified subsample of them).
     surviving : tuple of SurvivingGap
     n_tested : int
         Features tested for a surviving gap.
@@ -1042,6 +1043,8 @@ class MethodCheck:
     unchanged: Dict[str, str]
     warnings: Tuple[str, ...]
     model: str = "boosting"
+    n_splits: int = 3
+    outcome_protected: bool = False
 
     def to_dict(self) -> dict:
         return {
@@ -1050,6 +1053,7 @@ class MethodCheck:
             "probe_p_value": self.probe_p_value,
             "n": self.n,
             "model": self.model,
+            "folds": self.n_splits,
             "surviving": [g.to_dict() for g in self.surviving],
             "n_tested": self.n_tested,
             "outcome_auc_before": self.outcome_auc_before,
@@ -1057,6 +1061,7 @@ class MethodCheck:
             "outcome_auc_after": self.outcome_auc_after,
             "outcome_auc_after_ci": None if self.outcome_auc_after_ci is None else list(self.outcome_auc_after_ci),
             "outcome_n": self.outcome_n,
+            "outcome_protected": self.outcome_protected,
             "protected": list(self.protected),
             "unchanged": dict(self.unchanged),
             "warnings": list(self.warnings),
@@ -1110,7 +1115,8 @@ def _prevalence_warning(outcome: np.ndarray, site: np.ndarray, labels: Sequence[
 
 def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Optional[Sequence[str]] = None,
                         random_state: Optional[int] = None, n_boot: int = 200, n_permutations: int = 199,
-                        model: str = "boosting", alpha: float = 0.05, min_effect: float = 0.05,
+                        model: str = "boosting", n_splits: int = 3, probe_rows: int = 50_000,
+                        alpha: float = 0.05, min_effect: float = 0.05,
                         outcome_before=None) -> HarmonisationCheck:
     """Harmonise the scan's features with each method and check what is left.
 
@@ -1131,6 +1137,13 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
     n_boot, n_permutations : int
         Bootstrap and permutation sizes of the re-probe.
     model : {"boosting", "linear"}
+    n_splits : int, default 3
+        Folds (stratified by site, shuffled with the seed) shared by every
+        re-probe and by the outcome AUCs before and after; fewer than the
+        scan's own folds keep the eight to nine cross-fits affordable.
+    probe_rows : int, default 50000
+        The re-probes and outcome AUCs use a site-stratified subsample of at
+        most this many rows (harmonisation is fitted on all rows).
     alpha, min_effect : float
         See :func:`surviving_gaps`.
     outcome_before : ProbeScore, optional
@@ -1152,8 +1165,13 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
     ----------
     Johnson, W. E., Li, C. and Rabinovic, A. (2007). Biostatistics 8(1), 118-127.
     """
-    from .probe import probe_matrix
+    from .prepare import stratified_subsample
+    from .probe import make_folds, probe_matrix
 
+    if not isinstance(n_splits, (int, np.integer)) or n_splits < 2:
+        raise ParameterError(f"n_splits must be an integer of at least 2, got {n_splits!r}")
+    if not isinstance(probe_rows, (int, np.integer)) or probe_rows < 100:
+        raise ParameterError(f"probe_rows must be an integer of at least 100, got {probe_rows!r}")
     for m in methods:
         if m not in METHODS:
             raise ParameterError(f"method must be one of {', '.join(METHODS)}, got {m!r}")
@@ -1182,7 +1200,13 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
             warnings.append(f"protected column {bad!r} is confounded with site and was not protected")
     X = prep.X
     y_out = prep.outcome
-    out_ok = None if y_out is None else ~np.isnan(y_out)
+    # Rows and folds of the re-probes (harmonisation itself uses every row).
+    sub = stratified_subsample(prep.site, int(probe_rows), np.random.default_rng([seed, RNG_STREAM]))
+    site_sub = prep.site[sub]
+    folds = make_folds(site_sub, int(n_splits), random_state=seed)
+    y_sub = None if y_out is None else y_out[sub]
+    out_ok = None if y_out is None else ~np.isnan(y_sub)
+    out_folds = None if y_out is None else _sub_folds(folds, out_ok)
     before = outcome_before
     if y_out is not None and table.outcome not in protect:
         w = _prevalence_warning(y_out, prep.site, prep.site_labels)
@@ -1191,20 +1215,21 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
     if y_out is not None and table.outcome in protect:
         warnings.append("the outcome is protected: the harmonisation saw every row's outcome, so the outcome "
                         "AUC after harmonisation is optimistic")
-    if y_out is not None and before is None and out_ok.sum() >= 20 and len(np.unique(y_out[out_ok])) == 2:
-        before = probe_matrix(X[out_ok], y_out[out_ok].astype(np.int64), cat, _sub_folds(prep.folds, out_ok),
+    if y_out is not None and before is None and out_ok.sum() >= 20 and len(np.unique(y_sub[out_ok])) == 2:
+        before = probe_matrix(X[sub][out_ok], y_sub[out_ok].astype(np.int64), cat, out_folds,
                               random_state=seed, n_boot=n_boot, n_permutations=0, model=model)
     results = []
     for method in methods:
         Xh, fit = harmonise(X, prep.site, method=method, site_labels=prep.site_labels, feature_names=names,
                             design=D, protect_spec=spec, categorical=leave, unchanged_reason=reasons)
-        score = probe_matrix(Xh, prep.site, cat, prep.folds, random_state=seed, n_boot=n_boot,
+        Xs = Xh[sub]
+        score = probe_matrix(Xs, site_sub, cat, folds, random_state=seed, n_boot=n_boot,
                              n_permutations=n_permutations, model=model)
         gaps, n_tested = surviving_gaps(X, Xh, prep.site, names=names, site_labels=prep.site_labels,
                                         categorical=leave, alpha=alpha, min_effect=min_effect)
         after = None
         if before is not None:
-            after = probe_matrix(Xh[out_ok], y_out[out_ok].astype(np.int64), cat, _sub_folds(prep.folds, out_ok),
+            after = probe_matrix(Xs[out_ok], y_sub[out_ok].astype(np.int64), cat, out_folds,
                                  random_state=seed, n_boot=n_boot, n_permutations=0, model=model)
         results.append(MethodCheck(
             method=method, probe_auc=float(score.auc), probe_auc_ci=tuple(float(c) for c in score.auc_ci),
@@ -1214,6 +1239,7 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
             outcome_auc_before_ci=None if before is None else tuple(float(c) for c in before.auc_ci),
             outcome_auc_after=None if after is None else float(after.auc),
             outcome_auc_after_ci=None if after is None else tuple(float(c) for c in after.auc_ci),
-            outcome_n=0 if out_ok is None else int(out_ok.sum()), protected=tuple(protect),
-            unchanged=dict(fit.unchanged), warnings=tuple(warnings), model=model))
+            outcome_n=0 if out_ok is None or before is None else int(out_ok.sum()), protected=tuple(protect),
+            unchanged=dict(fit.unchanged), warnings=tuple(warnings), model=model, n_splits=len(folds),
+            outcome_protected=bool(table.outcome and table.outcome in protect)))
     return HarmonisationCheck(methods=tuple(results))
