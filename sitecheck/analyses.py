@@ -62,6 +62,22 @@ REGISTRY.insert(next((i for i, a in enumerate(REGISTRY) if a.name in ("maps", "h
                 Analysis("fingerprints", _run_fingerprints, sections=_fingerprint_sections))
 
 
+def _run_harmonise(prep, options, objects):
+    from .harmonise import harmonisation_check
+
+    return harmonisation_check(prep, random_state=options.seed)
+
+
+def _harmonise_applies(prep) -> bool:
+    return any(k == "numeric" for k in prep.features.kinds) and prep.n_used >= 50
+
+
+# harmonise goes after probe, leakage, fingerprints and maps and before outcome
+REGISTRY.insert(next((i for i, a in enumerate(REGISTRY) if a.name == "outcome"), len(REGISTRY)),
+                Analysis("harmonise", _run_harmonise, applies=_harmonise_applies,
+                         sections=lambda result: {"harmonisation": result}))
+
+
 # Order: probe, leakage, fingerprints, maps, harmonise, outcome (outcome stays last).
 REGISTRY.append(Analysis("outcome", _run_outcome, applies=lambda prep: prep.outcome is not None,
                          sections=lambda result: {"outcome": result}))
