@@ -759,8 +759,8 @@ def harmonise(X: np.ndarray, site: np.ndarray, *, method: str, site_labels: Sequ
 # what survives: a between-site test per feature after harmonisation
 # ---------------------------------------------------------------------------
 
-REASONS = ("missingness", "floor or ceiling", "unit mixture", "precision", "shape difference",
-           "categorical, left unchanged")
+REASONS = ("missingness", "case mix (protected)", "floor or ceiling", "unit mixture", "precision",
+           "shape difference", "categorical, left unchanged")
 
 
 @dataclass(frozen=True)
@@ -901,8 +901,8 @@ def diagnose(a: np.ndarray, b: np.ndarray) -> Tuple[str, str]:
 
 def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, names: Sequence[str],
                    site_labels: Sequence[str], categorical: Optional[np.ndarray] = None,
-                   alpha: float = 0.05, min_effect: float = 0.05, min_rows: int = 10) -> Tuple[
-                       Tuple[SurvivingGap, ...], int]:
+                   alpha: float = 0.05, min_effect: float = 0.05, min_rows: int = 10,
+                   case_mix: Optional[np.ndarray] = None) -> Tuple[Tuple[SurvivingGap, ...], int]:
     """Features whose site gap survives harmonisation, with a reason.
 
     Numeric features: the two-sample Kolmogorov-Smirnov test of each site
@@ -914,6 +914,12 @@ def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, n
     when ``p_adj < alpha`` and its effect reaches ``min_effect`` (KS D,
     difference in missing share, or Cramer's V), so that trivial differences
     in very large tables are not listed.
+
+    ``case_mix`` (rows x features), the protected covariates' part of each
+    harmonised value (``D beta``), lets a gap be attributed to case mix: when
+    the test on ``X_harm - case_mix`` finds no gap (Bonferroni p >= alpha or
+    D below ``min_effect``), the reason is "case mix (protected)", a real
+    difference kept on purpose.
 
     Returns
     -------
@@ -962,6 +968,14 @@ def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, n
             continue
         if not np.isfinite(p_ks):
             continue
+        if case_mix is not None and case_mix[:, j].any():
+            D_res, p_res = _ks_one_vs_rest(v - case_mix[:, j], site, k, min_rows)
+            if np.isfinite(p_res) and (p_res >= alpha or np.nanmax(D_res) < min_effect):
+                i = int(np.nanargmax(D_sites))
+                rows.append((j, p_feat, float(D_sites[i]), "case mix (protected)",
+                             "the gap disappears once the protected columns' effect is removed: "
+                             "a difference in case mix, kept on purpose", i))
+                continue
         # The reason: the first site, by KS D, whose raw values show a specific cause
         # (floor or ceiling, unit mixture, precision); else the worst site's shape.
         order = [i for i in np.argsort(-np.nan_to_num(D_sites, nan=-1.0), kind="stable") if np.isfinite(D_sites[i])]
@@ -1225,8 +1239,11 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
         Xs = Xh[sub]
         score = probe_matrix(Xs, site_sub, cat, folds, random_state=seed, n_boot=n_boot,
                              n_permutations=n_permutations, model=model)
+        case_mix = (D @ fit.beta) if D.shape[1] else None
+        if case_mix is not None:
+            case_mix[:, ~np.asarray(fit.adjusted, dtype=bool)] = 0.0
         gaps, n_tested = surviving_gaps(X, Xh, prep.site, names=names, site_labels=prep.site_labels,
-                                        categorical=leave, alpha=alpha, min_effect=min_effect)
+                                        categorical=leave, alpha=alpha, min_effect=min_effect, case_mix=case_mix)
         after = None
         if before is not None:
             after = probe_matrix(Xs[out_ok], y_sub[out_ok].astype(np.int64), cat, out_folds,

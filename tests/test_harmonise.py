@@ -255,3 +255,36 @@ def test_command_errors_exit_2_with_one_line(tmp_path, demo_small_path):
                           "--protect", "ward", "--out", str(tmp_path / "o4.csv")]), "'ward'")
     for name in ("o1.csv", "o2.csv", "o3.csv", "o4.csv"):
         assert not (tmp_path / name).exists()
+
+
+def test_gap_explained_by_protected_case_mix_is_named_so():
+    # Ground truth: the feature depends on age only, and age differs by site.
+    rng = np.random.default_rng(8)
+    n = 3000
+    site = rng.integers(0, 3, n)
+    age = rng.normal(50, 8, n) + 10 * site
+    X = (0.1 * age + rng.normal(0, 1, n))[:, None]
+    D, spec = protected_design(pd.DataFrame({"age": age}), ["age"])
+    for method in METHODS:
+        Xh, fit = harmonise(X, site, method=method, site_labels=LABELS[:3], design=D, protect_spec=spec)
+        gaps, _ = surviving_gaps(X, Xh, site, names=["lab"], site_labels=LABELS[:3], case_mix=D @ fit.beta)
+        assert [g.reason for g in gaps] == ["case mix (protected)"], method
+        assert gaps[0].statistic > 0.3
+
+
+def test_report_section_escapes_data_text_and_suppresses_small_counts():
+    from sitecheck.render.sections import harmonisation as sec
+
+    bad = "<script>alert(1)</script>"
+    doc = {"harmonisation": {"combat": {
+        "probe_auc": 0.55, "probe_auc_ci": [0.52, 0.58], "n": 7, "outcome_auc_before": 0.7,
+        "outcome_auc_before_ci": [0.65, 0.75], "outcome_auc_after": 0.69, "outcome_auc_after_ci": [0.64, 0.74],
+        "protected": ["age"], "unchanged": {bad: "categorical"}, "warnings": [bad], "n_tested": 3,
+        "surviving": [{"feature": bad, "reason": "floor or ceiling", "site": "Dunmere|x", "statistic": 0.4,
+                       "p_adj": 1e-9, "detail": "31% at its floor 5"}]}}}
+    html = sec.html(doc, 10)
+    assert bad not in html and "&lt;script&gt;" in html
+    assert "ComBat" in html and "&lt;10" in html and "floor or ceiling" in html
+    md = sec.markdown(doc, 10)
+    assert "<script>" not in md and "\\<script\\>" in md and "Dunmere\\|x" in md and "< 0.001" in md
+    assert sec.html({}, 10) == "" and sec.markdown({}, 10) == ""
