@@ -1127,11 +1127,62 @@ def _prevalence_warning(outcome: np.ndarray, site: np.ndarray, labels: Sequence[
             "protected: harmonisation may remove real outcome signal along with the site effect")
 
 
+def _outcome_design_columns(spec: Sequence[dict], outcome: Optional[str]) -> List[int]:
+    """Design columns that encode the outcome (value and missing indicator)."""
+    if not outcome:
+        return []
+    owners = _design_owner(spec)
+    return [j for j, o in enumerate(owners) if o == outcome]
+
+
+def outcome_auc_cv(X: np.ndarray, y: np.ndarray, site: np.ndarray, cat: np.ndarray, folds, *, seed: int,
+                   n_boot: int, model: str = "boosting", method: Optional[str] = None,
+                   site_labels: Sequence[str] = (), design: Optional[np.ndarray] = None,
+                   protect_spec: Sequence[dict] = (), outcome_cols: Sequence[int] = (),
+                   leave: Optional[np.ndarray] = None, reasons: Optional[Dict[str, str]] = None,
+                   names: Optional[Sequence[str]] = None) -> Tuple[float, Tuple[float, float], int]:
+    """Cross-validated outcome AUC from the features, optionally harmonised inside each fold.
+
+    With ``method``, the harmonisation is fitted on each training fold and
+    applied to its held-out rows, whose outcome columns in the protected
+    design are set to the training mean (a deployed model does not know the
+    outcome), so the AUC is not inflated by protecting the outcome. The model
+    is the probe's (:mod:`sitecheck.probe`), fitted per fold with the same
+    seeds. Returns ``(auc, (lo, hi), n)`` with a stratified-bootstrap interval.
+    """
+    from threadpoolctl import threadpool_limits
+
+    from . import stats
+    from .probe import _estimator, _threads
+
+    y = np.asarray(y).astype(np.int64)
+    score = np.full(len(y), np.nan)
+    D = np.zeros((len(y), 0)) if design is None else design
+    with threadpool_limits(limits=_threads(len(y))):
+        for f, (tr, te) in enumerate(folds):
+            Xtr, Xte = X[tr], X[te]
+            if method is not None:
+                fit = fit_harmoniser(Xtr, site[tr], method=method, site_labels=site_labels, feature_names=names,
+                                     design=D[tr], protect_spec=protect_spec, categorical=leave,
+                                     unchanged_reason=reasons)
+                Dte = D[te].copy()
+                for c in outcome_cols:
+                    Dte[:, c] = D[tr, c].mean()
+                Xtr = apply_harmoniser(fit, Xtr, site[tr], design=D[tr])
+                Xte = apply_harmoniser(fit, Xte, site[te], design=Dte)
+            est = _estimator(model, cat, 2, len(tr), random_state=seed + 1000 * f)
+            est.fit(Xtr, y[tr])
+            proba = est.predict_proba(Xte)
+            cls = list(np.asarray(est.classes_))
+            score[te] = proba[:, cls.index(1)] if 1 in cls else 0.0
+    auc, ci = stats.binary_auc_ci(y, score, n_boot=n_boot, random_state=np.random.default_rng([seed, 78]))
+    return float(auc), (float(ci[0]), float(ci[1])), int(len(y))
+
+
 def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Optional[Sequence[str]] = None,
                         random_state: Optional[int] = None, n_boot: int = 200, n_permutations: int = 199,
                         model: str = "boosting", n_splits: int = 3, probe_rows: int = 50_000,
-                        alpha: float = 0.05, min_effect: float = 0.05,
-                        outcome_before=None) -> HarmonisationCheck:
+                        alpha: float = 0.05, min_effect: float = 0.05) -> HarmonisationCheck:
     """Harmonise the scan's features with each method and check what is left.
 
     For each method, on the scan's modelling rows: the site probe again
@@ -1160,8 +1211,6 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
         most this many rows (harmonisation is fitted on all rows).
     alpha, min_effect : float
         See :func:`surviving_gaps`.
-    outcome_before : ProbeScore, optional
-        A precomputed outcome score before harmonisation (saves one fit).
 
     Returns
     -------
@@ -1169,9 +1218,11 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
 
     Notes
     -----
-    When the outcome is protected, the harmonisation was fitted with every
-    row's outcome, so the outcome AUC after harmonisation is optimistic; the
-    result says so in its warnings. Binary and categorical features are left
+    The outcome AUC after harmonisation is leak-free: the harmonisation is
+    fitted within each training fold and the held-out rows are harmonised
+    without their outcome (see :func:`outcome_auc_cv`), so protecting the
+    outcome cannot inflate it. The site re-probe uses the harmonisation
+    fitted on every row, as the user would apply it. Binary and categorical features are left
     unchanged. A protected column that is confounded with site is dropped
     from the protection, with a warning.
 
@@ -1221,17 +1272,23 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
     y_sub = None if y_out is None else y_out[sub]
     out_ok = None if y_out is None else ~np.isnan(y_sub)
     out_folds = None if y_out is None else _sub_folds(folds, out_ok)
-    before = outcome_before
+    before = None
     if y_out is not None and table.outcome not in protect:
         w = _prevalence_warning(y_out, prep.site, prep.site_labels)
         if w:
             warnings.append(w)
     if y_out is not None and table.outcome in protect:
-        warnings.append("the outcome is protected: the harmonisation saw every row's outcome, so the outcome "
-                        "AUC after harmonisation is optimistic")
-    if y_out is not None and before is None and out_ok.sum() >= 20 and len(np.unique(y_sub[out_ok])) == 2:
-        before = probe_matrix(X[sub][out_ok], y_sub[out_ok].astype(np.int64), cat, out_folds,
-                              random_state=seed, n_boot=n_boot, n_permutations=0, model=model)
+        warnings.append("the outcome is protected: for the outcome AUC after harmonisation, held-out rows were "
+                        "harmonised without their outcome (set to the training mean), as for new patients; "
+                        "the harmonised table itself needs every row's outcome")
+    D_sub = D[sub]
+    out_cols = _outcome_design_columns(spec, table.outcome)
+    has_outcome = (y_out is not None and out_ok.sum() >= 20 and len(np.unique(y_sub[out_ok])) == 2
+                   and all(len(np.unique(y_sub[te][out_ok[te]])) == 2 for _, te in folds))
+    if has_outcome:
+        o = out_ok
+        before = outcome_auc_cv(X[sub][o], y_sub[o], site_sub[o], cat, out_folds, seed=seed, n_boot=n_boot,
+                                model=model)
     results = []
     for method in methods:
         Xh, fit = harmonise(X, prep.site, method=method, site_labels=prep.site_labels, feature_names=names,
@@ -1246,16 +1303,19 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
                                         categorical=leave, alpha=alpha, min_effect=min_effect, case_mix=case_mix)
         after = None
         if before is not None:
-            after = probe_matrix(Xs[out_ok], y_sub[out_ok].astype(np.int64), cat, out_folds,
-                                 random_state=seed, n_boot=n_boot, n_permutations=0, model=model)
+            o = out_ok
+            after = outcome_auc_cv(X[sub][o], y_sub[o], site_sub[o], cat, out_folds, seed=seed, n_boot=n_boot,
+                                   model=model, method=method, site_labels=prep.site_labels, design=D_sub[o],
+                                   protect_spec=spec, outcome_cols=out_cols, leave=leave, reasons=reasons,
+                                   names=names)
         results.append(MethodCheck(
             method=method, probe_auc=float(score.auc), probe_auc_ci=tuple(float(c) for c in score.auc_ci),
             probe_p_value=None if score.p_value is None else float(score.p_value), n=int(score.n),
             surviving=gaps, n_tested=int(n_tested),
-            outcome_auc_before=None if before is None else float(before.auc),
-            outcome_auc_before_ci=None if before is None else tuple(float(c) for c in before.auc_ci),
-            outcome_auc_after=None if after is None else float(after.auc),
-            outcome_auc_after_ci=None if after is None else tuple(float(c) for c in after.auc_ci),
+            outcome_auc_before=None if before is None else before[0],
+            outcome_auc_before_ci=None if before is None else before[1],
+            outcome_auc_after=None if after is None else after[0],
+            outcome_auc_after_ci=None if after is None else after[1],
             outcome_n=0 if out_ok is None or before is None else int(out_ok.sum()), protected=tuple(protect),
             unchanged=dict(fit.unchanged), warnings=tuple(warnings), model=model, n_splits=len(folds),
             outcome_protected=bool(table.outcome and table.outcome in protect)))

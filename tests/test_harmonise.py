@@ -288,3 +288,56 @@ def test_report_section_escapes_data_text_and_suppresses_small_counts():
     md = sec.markdown(doc, 10)
     assert "<script>" not in md and "\\<script\\>" in md and "Dunmere\\|x" in md and "< 0.001" in md
     assert sec.html({}, 10) == "" and sec.markdown({}, 10) == ""
+
+
+def _prepared(frame, **roles):
+    from sitecheck.intake import frame_to_raw
+    from sitecheck.prepare import prepare
+    from sitecheck.roles import RoleSpec, assign_roles
+
+    return prepare(assign_roles(frame_to_raw(frame), RoleSpec(**roles)), random_state=0)
+
+
+def test_over_correction_shows_in_the_outcome_auc():
+    # Ground truth: the outcome is far more common at one site and the marker tracks the
+    # outcome only (no measurement effect). Removing the site gap without protecting the
+    # outcome erases real signal; protecting it keeps the held-out AUC.
+    rng = np.random.default_rng(9)
+    n = 1600
+    site = np.repeat(np.array(["Ashgrove", "Brindle Cross"], dtype=object), n // 2)
+    y = (rng.random(n) < np.where(site == "Ashgrove", 0.15, 0.6)).astype(float)
+    frame = pd.DataFrame({"hospital": site, "marker": 2.0 * y + rng.normal(0, 1, n),
+                          "noise": rng.normal(0, 1, n), "died": y})
+    prep = _prepared(frame, site="hospital", outcome="died")
+    plain = harmonisation_check(prep, methods=("centre",), protect=[], n_boot=100, n_permutations=0,
+                                model="linear")["centre"]
+    kept = harmonisation_check(prep, methods=("centre",), n_boot=100, n_permutations=0, model="linear")["centre"]
+    assert plain.outcome_auc_before == kept.outcome_auc_before > 0.8
+    assert plain.outcome_auc_after < plain.outcome_auc_before - 0.03
+    assert any("prevalence differs by site" in w for w in plain.warnings)
+    assert kept.outcome_protected and kept.protected == ("died",)
+    assert abs(kept.outcome_auc_after - kept.outcome_auc_before) < 0.02
+    assert not any("prevalence differs" in w for w in kept.warnings)
+
+
+def test_outcome_auc_cv_matches_sklearn_on_out_of_fold_scores():
+    # Reference: sklearn.metrics.roc_auc_score of the same out-of-fold predictions,
+    # refitted here with sklearn's LogisticRegression pipeline from sitecheck.models.
+    from sklearn.metrics import roc_auc_score
+    from sklearn.model_selection import StratifiedKFold
+
+    from sitecheck.harmonise import outcome_auc_cv
+    from sitecheck.models import make_linear
+
+    rng = np.random.default_rng(10)
+    n = 600
+    X = rng.normal(size=(n, 3))
+    y = (rng.random(n) < 1 / (1 + np.exp(-X[:, 0]))).astype(int)
+    site = rng.integers(0, 2, n)
+    folds = tuple(StratifiedKFold(3, shuffle=True, random_state=0).split(X, site))
+    auc, ci, m = outcome_auc_cv(X, y, site, np.zeros(3, bool), folds, seed=0, n_boot=200, model="linear")
+    oof = np.empty(n)
+    for f, (tr, te) in enumerate(folds):
+        oof[te] = make_linear(np.zeros(3, bool), random_state=1000 * f).fit(X[tr], y[tr]).predict_proba(X[te])[:, 1]
+    assert auc == pytest.approx(roc_auc_score(y, oof), abs=1e-9)
+    assert ci[0] <= auc <= ci[1] and m == n
