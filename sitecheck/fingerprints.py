@@ -199,6 +199,57 @@ def grid_step(values: np.ndarray, *, share: float = 0.98) -> Optional[float]:
     return None
 
 
+def _sorted_median(a: np.ndarray) -> float:
+    """Median of an already sorted array."""
+    n = len(a)
+    h = n // 2
+    return float(a[h]) if n % 2 else float(0.5 * (a[h - 1] + a[h]))
+
+
+def welch_test(m1: float, v1: float, n1: int, m2: float, v2: float, n2: int) -> float:
+    """Two-sided p-value of Welch's unequal-variance t-test from summary statistics.
+
+    References
+    ----------
+    Welch BL. The generalization of Student's problem when several different
+    population variances are involved. Biometrika 1947;34:28-35.
+    """
+    a, b = v1 / n1, v2 / n2
+    se2 = a + b
+    if se2 <= 0 or n1 < 2 or n2 < 2:
+        return 1.0
+    t = (m1 - m2) / math.sqrt(se2)
+    df = se2 ** 2 / (a ** 2 / (n1 - 1) + b ** 2 / (n2 - 1)) if (a > 0 or b > 0) else n1 + n2 - 2
+    return float(min(1.0, 2 * _st.t.sf(abs(t), df)))
+
+
+def brown_forsythe(a: np.ndarray, b: np.ndarray) -> float:
+    """p-value of the Brown-Forsythe test (Levene's test about medians) for two groups.
+
+    One-way ANOVA F on absolute deviations from each group's median.
+
+    References
+    ----------
+    Brown MB, Forsythe AB. Robust tests for the equality of variances. JASA 1974;69:364-367.
+    """
+    return _abs_dev_anova(np.abs(a - np.median(a)), np.abs(b - np.median(b)))
+
+
+def _abs_dev_anova(za: np.ndarray, zb: np.ndarray) -> float:
+    """One-way ANOVA p-value on two groups of absolute deviations."""
+    na, nb = len(za), len(zb)
+    if na < 2 or nb < 2:
+        return 1.0
+    ma, mb = float(za.mean()), float(zb.mean())
+    m = (na * ma + nb * mb) / (na + nb)
+    between = na * (ma - m) ** 2 + nb * (mb - m) ** 2
+    within = float(((za - ma) ** 2).sum() + ((zb - mb) ** 2).sum())
+    if within <= 0:
+        return 0.0 if between > 0 else 1.0
+    F = between / (within / (na + nb - 2))
+    return float(_st.f.sf(F, 1, na + nb - 2))
+
+
 def _fisher_greater(a: int, b: int, c: int, d: int) -> float:
     """One-sided Fisher exact p-value that row 1 has the higher share of column 1."""
     return float(_st.fisher_exact([[a, b], [c, d]], alternative="greater").pvalue)
@@ -328,7 +379,7 @@ def detect_unit_ratio(vals: Sequence[np.ndarray], name: Optional[str] = None, *,
     """
     out: List[_Cand] = []
     k = len(vals)
-    meds = {t: float(np.median(vals[t])) for t in range(k) if len(vals[t]) >= min_count}
+    meds = {t: _sorted_median(vals[t]) for t in range(k) if len(vals[t]) >= min_count}
     named = conversions_for(name) if name is not None else []
     temp_named = name is not None and is_temperature(name)
     for s in meds:
@@ -372,6 +423,10 @@ def detect_unit_ratio(vals: Sequence[np.ndarray], name: Optional[str] = None, *,
         # -- multiplicative factors ------------------------------------
         ref_ids = _ref_sites(meds, s)
         if not ref_ids or m_s <= 0:
+            continue
+        # cheap pre-check on the median of the reference sites' medians
+        pre = float(np.median([meds[t] for t in ref_ids]))
+        if pre <= 0 or abs(math.log(m_s / pre)) < math.log(1.6):
             continue
         ref = np.concatenate([vals[t] for t in ref_ids])
         if np.mean(v > 0) < 0.9 or np.mean(ref > 0) < 0.9:
@@ -608,7 +663,16 @@ def _design(frame: pd.DataFrame, covs: Sequence[str], kinds: Sequence[str]) -> n
     return np.column_stack(cols)
 
 
-def adjust_for_covariates(y: np.ndarray, site_code: np.ndarray, Z: np.ndarray, k: int) -> Tuple[np.ndarray, int]:
+def _full_gram(site_code: np.ndarray, Z: np.ndarray, k: int):
+    """The Gram matrix of [site indicators, Z] over all rows (reused across features)."""
+    if Z.shape[1] == 0:
+        return None
+    A = np.hstack([np.eye(k)[site_code], Z])
+    return A, A.T @ A
+
+
+def adjust_for_covariates(y: np.ndarray, site_code: np.ndarray, Z: np.ndarray, k: int, *,
+                          _gram=None) -> Tuple[np.ndarray, int]:
     """Remove the covariates' within-site linear effect from ``y``.
 
     Fits ``y ~ site indicators + Z`` by least squares on the rows where ``y``
@@ -619,11 +683,15 @@ def adjust_for_covariates(y: np.ndarray, site_code: np.ndarray, Z: np.ndarray, k
     ok = ~np.isnan(y)
     if Z.shape[1] == 0 or ok.sum() <= Z.shape[1] + k:
         return y.copy(), int(ok.sum())
-    D = np.zeros((int(ok.sum()), k))
-    D[np.arange(int(ok.sum())), site_code[ok]] = 1.0
-    A = np.hstack([D, Z[ok]])
-    # normal equations (small Gram matrix; lstsq on it handles collinear columns)
-    beta, *_ = np.linalg.lstsq(A.T @ A, A.T @ y[ok], rcond=None)
+    if _gram is None:
+        _gram = _full_gram(site_code, Z, k)
+    A_all, G_all = _gram
+    miss = ~ok
+    # normal equations: the full Gram matrix minus the rows where y is missing
+    # (small matrix; lstsq on it handles collinear columns)
+    G = G_all - A_all[miss].T @ A_all[miss] if miss.any() else G_all
+    yz = np.where(ok, y, 0.0)
+    beta, *_ = np.linalg.lstsq(G, A_all.T @ yz, rcond=None)
     out = np.full_like(y, np.nan)
     out[ok] = y[ok] - Z[ok] @ beta[k:]
     return out, int(ok.sum())
@@ -641,8 +709,8 @@ def detect_shift_scale(vals: Sequence[np.ndarray], active: Sequence[int], *, min
     from the large-sample SE of the SMD (Hedges & Olkin 1985). Needs
     ``|SMD| >= min_smd`` (0.2, a "small" effect after Cohen 1988).
     ``scale``: the site's SD over the median of the sites' SDs (same rule); p-value
-    from the Brown-Forsythe test (Levene with medians) on within-site
-    median-centred values; needs a ratio beyond ``min_sd_ratio`` either way.
+    from the Brown-Forsythe test (ANOVA of absolute deviations from the
+    median, each site about its own median); needs a ratio beyond ``min_sd_ratio`` either way.
     False-positive rate per feature x site test: at most the per-test level
     (the effect floors make it far smaller in large tables).
 
@@ -659,6 +727,8 @@ def detect_shift_scale(vals: Sequence[np.ndarray], active: Sequence[int], *, min
     sds = {s: float(np.std(vals[s], ddof=1)) for s in act}
     meds = {s: float(np.median(vals[s])) for s in act}
     n = {s: len(vals[s]) for s in act}
+    # sums of squares about each site's mean, to get the rest's variance without pooling arrays
+    ss = {s: (n[s] - 1) * sds[s] ** 2 for s in act}
     pooled_var = sum((n[s] - 1) * sds[s] ** 2 for s in act) / max(sum(n[s] - 1 for s in act), 1)
     sd_p = math.sqrt(pooled_var)
     if sd_p <= 0:
@@ -668,13 +738,14 @@ def detect_shift_scale(vals: Sequence[np.ndarray], active: Sequence[int], *, min
         # reference: median over all sites (robust to one odd site) from three sites on;
         # with two sites, the other site
         ref_set = act if len(act) >= 3 else others
-        rest = np.concatenate([vals[t] for t in others])
         ref_mean = float(np.median([means[t] for t in ref_set]))
         smd = (means[s] - ref_mean) / sd_p
-        n_s, n_r = n[s], len(rest)
+        n_s = n[s]
+        n_r = sum(n[t] for t in others)
+        m_r = sum(n[t] * means[t] for t in others) / n_r
+        v_r = (sum(ss[t] + n[t] * (means[t] - m_r) ** 2 for t in others)) / max(n_r - 1, 1)
         se = math.sqrt(1 / n_s + 1 / n_r + smd ** 2 / (2 * (n_s + n_r)))
-        t = _st.ttest_ind(vals[s], rest, equal_var=False)
-        p = float(t.pvalue) if np.isfinite(t.pvalue) else 1.0
+        p = welch_test(means[s], sds[s] ** 2, n_s, m_r, v_r, n_r)
         ev = {"smd": _r(smd), "smd_ci": [_r(smd - _Z95 * se), _r(smd + _Z95 * se)], "p_value": _r(p),
               "mean_site": _r(means[s]), "mean_reference": _r(ref_mean), "sd_pooled": _r(sd_p),
               "difference": _r(means[s] - ref_mean), "n": int(n_s), "n_reference": int(n_r)}
@@ -689,9 +760,9 @@ def detect_shift_scale(vals: Sequence[np.ndarray], active: Sequence[int], *, min
         if ref_sd <= 0 or sds[s] <= 0:
             continue
         ratio = sds[s] / ref_sd
-        rest_c = np.concatenate([vals[t] - meds[t] for t in others])
-        lev = _st.levene(vals[s] - meds[s], rest_c, center="median")
-        pl = float(lev.pvalue) if np.isfinite(lev.pvalue) else 1.0
+        # Brown-Forsythe on absolute deviations, each site about its own median
+        zr = np.concatenate([np.abs(vals[t] - meds[t]) for t in others])
+        pl = _abs_dev_anova(np.abs(vals[s] - meds[s]), zr)
         se_l = math.sqrt(1 / (2 * (n_s - 1)) + 1 / (2 * max(n_r - 1, 1)))
         ev2 = {"sd_ratio": _r(ratio), "sd_ratio_ci": [_r(ratio * math.exp(-_Z95 * se_l)),
                                                        _r(ratio * math.exp(_Z95 * se_l))],
@@ -857,6 +928,8 @@ def find_fingerprints(data, *, covariates: Optional[Sequence[str]] = None, alpha
         except KeyError:
             cov_kinds.append("numeric" if pd.api.types.is_numeric_dtype(frame[c]) else "categorical")
     Z = _design(frame, covs, cov_kinds)
+    site_rows = [np.flatnonzero(site_code == s) for s in range(k)]
+    gram = _full_gram(site_code, Z, k)
 
     cands: List[_Cand] = []
     n_tests = {kd: 0 for kd in KINDS}
@@ -881,7 +954,10 @@ def find_fingerprints(data, *, covariates: Optional[Sequence[str]] = None, alpha
         if kinds[f] != "numeric":
             continue
         x = pd.to_numeric(col, errors="coerce").to_numpy(dtype=float)
-        vals = [x[(site_code == s) & present] for s in range(k)]
+        vals = []
+        for s in range(k):
+            v = x[site_rows[s]]
+            vals.append(np.sort(v[~np.isnan(v)]))
         per_test = alpha / max(n_tests["missing_code"], 1)
         found: Dict[int, set] = {s: set() for s in range(k)}
 
@@ -926,8 +1002,11 @@ def find_fingerprints(data, *, covariates: Optional[Sequence[str]] = None, alpha
             elif "missing_code" in found[s]:
                 codes = [c.payload for c in mc if c.s == s and c.p < per_test and c.passes_effect]
                 y[(site_code == s) & np.isin(x, codes)] = np.nan
-        y_adj, _ = adjust_for_covariates(y, site_code, Z, k)
-        adj_vals = [y_adj[(site_code == s) & ~np.isnan(y_adj)] for s in range(k)]
+        y_adj, _ = adjust_for_covariates(y, site_code, Z, k, _gram=gram)
+        adj_vals = []
+        for s in range(k):
+            v = y_adj[site_rows[s]]
+            adj_vals.append(v[~np.isnan(v)])
         act2 = [s for s in active if len(adj_vals[s]) > 0 and not found[s] & {"floor", "ceiling"}]
         for c in detect_shift_scale(adj_vals, act2, min_count=min_count, min_smd=min_smd,
                                     min_sd_ratio=min_sd_ratio):

@@ -263,3 +263,15 @@ def test_render_escapes_data_text_and_withholds_small_cells():
     md = section.markdown(doc, 10)
     assert "secret" not in md and "mean 142" in md
     assert section.html({"input": {}}, 10) == ""
+
+
+def test_welch_and_brown_forsythe_match_scipy():
+    from sitecheck.fingerprints import brown_forsythe, welch_test
+
+    rng = np.random.default_rng(8)
+    a, b = rng.normal(0.3, 1.0, 140), rng.normal(0.0, 2.0, 260)
+    # reference: scipy.stats.ttest_ind(equal_var=False) and scipy.stats.levene(center="median")
+    ref_t = stats.ttest_ind(a, b, equal_var=False).pvalue
+    got_t = welch_test(a.mean(), a.var(ddof=1), len(a), b.mean(), b.var(ddof=1), len(b))
+    assert got_t == pytest.approx(ref_t, rel=1e-9)
+    assert brown_forsythe(a, b) == pytest.approx(stats.levene(a, b, center="median").pvalue, rel=1e-9)
