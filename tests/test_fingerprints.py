@@ -241,6 +241,9 @@ def test_scan_fills_the_fingerprints_section_and_renders(demo_table):
     assert {f["kind"] for f in doc["fingerprints"]} >= {"unit_ratio", "missing_code", "site_missing"}
     for f in doc["fingerprints"]:
         assert set(f) >= {"feature", "site", "kind", "detail", "evidence"}
+    from sitecheck.schema import report_schema, validate
+
+    assert validate(doc, report_schema()) == []
     md = section.markdown(doc, 10)
     assert "glucose" in md and "unit\\_ratio" in md
 
