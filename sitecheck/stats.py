@@ -367,3 +367,72 @@ def fold_permutation_pvalue(y, proba, folds, *, n_permutations: int = 999,
     if not per_fold:
         return float("nan"), ()
     return merge_pvalues_geometric(per_fold), tuple(float(p) for p in per_fold)
+
+
+def fold_class_aucs(y, proba, folds) -> np.ndarray:
+    """Per-fold one-vs-rest AUCs (K, k) on each test fold alone (NaN where a class is absent)."""
+    y, proba = _check_y_proba(y, proba)
+    k = proba.shape[1]
+    out = np.full((len(folds), k), np.nan)
+    for f, (_, te) in enumerate(folds):
+        yt = y[te]
+        for c in range(k):
+            pos = yt == c
+            if 0 < pos.sum() < len(yt):
+                out[f, c] = binary_auc(pos, proba[te, c])
+    return out
+
+
+def fold_macro(fold_aucs: np.ndarray) -> np.ndarray:
+    """Macro average of per-fold class AUCs (k = 2: class 1), ignoring absent classes."""
+    k = fold_aucs.shape[-1]
+    with np.errstate(invalid="ignore"):
+        return np.nanmean(fold_aucs[..., _scored_columns(k)], axis=-1)
+
+
+def cv_corrected_sd(fold_values, test_train_ratio: float) -> float:
+    """Standard deviation of a K-fold estimate with the Nadeau-Bengio correction.
+
+    ``sqrt((1/K + n_test/n_train) * s^2)`` where ``s^2`` is the sample variance of
+    the K fold-wise estimates. The correction accounts for the overlap of the
+    training sets, which makes fold estimates positively correlated.
+
+    References
+    ----------
+    Nadeau, C. & Bengio, Y. (2003). Inference for the generalization error.
+    Machine Learning 52(3), 239-281.
+    """
+    v = np.asarray(fold_values, dtype=float)
+    v = v[np.isfinite(v)]
+    if len(v) < 2:
+        return float("nan")
+    return float(np.sqrt((1.0 / len(v) + float(test_train_ratio)) * np.var(v, ddof=1)))
+
+
+def widened_ci(point: float, ci: Tuple[float, float], boot_samples, fold_values, test_train_ratio: float,
+               *, bounds: Tuple[float, float] = (0.0, 1.0)) -> Tuple[Tuple[float, float], float]:
+    """Widen a bootstrap interval when the fold-to-fold spread says it is too narrow.
+
+    The bootstrap of out-of-fold predictions holds the fitted models fixed and so
+    misses the variability (and positive correlation) that cross-fitting adds.
+    The interval is stretched about ``point`` by
+    ``max(1, cv_corrected_sd / bootstrap_sd)`` and clipped to ``bounds``; it
+    is never narrowed.
+
+    Returns
+    -------
+    ((lo, hi), factor)
+    """
+    s = np.asarray(boot_samples, dtype=float)
+    s = s[np.isfinite(s)]
+    sd_b = float(np.std(s, ddof=1)) if len(s) > 1 else float("nan")
+    sd_cv = cv_corrected_sd(fold_values, test_train_ratio)
+    r = 1.0
+    if np.isfinite(sd_cv) and np.isfinite(sd_b) and sd_b > 0:
+        r = max(1.0, sd_cv / sd_b)
+    lo, hi = ci
+    if not (np.isfinite(lo) and np.isfinite(hi)):
+        return ci, r
+    lo2 = max(bounds[0], point - r * (point - lo))
+    hi2 = min(bounds[1], point + r * (hi - point))
+    return (float(lo2), float(hi2)), float(r)

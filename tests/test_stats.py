@@ -1,0 +1,139 @@
+"""Tests of sitecheck.stats against reference libraries and published definitions."""
+import numpy as np
+import pytest
+from scipy import stats as st
+from sklearn.metrics import roc_auc_score
+
+from sitecheck import stats
+from sitecheck.errors import InputError
+
+
+def _scores(n=400, k=4, seed=0, ties=True):
+    rng = np.random.default_rng(seed)
+    y = rng.integers(0, k, n)
+    P = rng.dirichlet(np.ones(k), n)
+    P[np.arange(n), y] += 0.25
+    if ties:
+        P = np.round(P, 1) + 1e-3  # many ties
+    return y, P / P.sum(axis=1, keepdims=True)
+
+
+@pytest.mark.parametrize("k", [2, 3, 5])
+def test_macro_ovr_auc_matches_sklearn(k):
+    y, P = _scores(k=k)
+    # reference: scikit-learn roc_auc_score (multi_class="ovr", average="macro"; binary: column 1)
+    ref = roc_auc_score(y, P, multi_class="ovr", average="macro") if k > 2 else roc_auc_score(y, P[:, 1])
+    assert stats.macro_ovr_auc(y, P) == pytest.approx(ref, abs=1e-12)
+    per = stats.ovr_aucs(y, P)
+    for c in range(k):
+        assert per[c] == pytest.approx(roc_auc_score(y == c, P[:, c]), abs=1e-12)
+
+
+def test_bootstrap_weights_give_exact_resample_aucs():
+    # Each weighted resample AUC equals scikit-learn's AUC on the rows repeated by their weights.
+    y, P = _scores(n=150, k=3, seed=1)
+    rng = np.random.default_rng(5)
+    W = stats.stratified_bootstrap_weights(y, 4, rng)
+    assert np.array_equal(W[:, y == 0].sum(axis=1), np.full(4, (y == 0).sum()))  # stratified: class totals kept
+    for c in range(3):
+        for tie_free in (P[:, c], P[:, c] + np.linspace(0, 1e-6, len(y))):
+            got = stats._SortedClass(y == c, tie_free).aucs(W)
+            ref = [roc_auc_score(np.repeat(y == c, w), np.repeat(tie_free, w)) for w in W]
+            np.testing.assert_allclose(got, ref, atol=1e-12)
+
+
+def test_bootstrap_auc_ci_brackets_estimate_and_is_deterministic():
+    y, P = _scores(n=300, k=3, seed=2, ties=False)
+    auc = stats.macro_ovr_auc(y, P)
+    lo, hi = stats.bootstrap_auc_ci(y, P, n_boot=400, random_state=3)
+    assert lo < auc < hi
+    assert 0.02 < hi - lo < 0.2
+    assert (lo, hi) == stats.bootstrap_auc_ci(y, P, n_boot=400, random_state=3)
+    # the bootstrap SD agrees with the Hanley-McNeil (1982) standard error of one class's AUC
+    # (formula: Radiology 143, 29-36), to within 25%
+    (cls,) = stats.bootstrap_class_aucs(y, [P], n_boot=400, random_state=4)
+    a = roc_auc_score(y == 0, P[:, 0])
+    n1, n0 = (y == 0).sum(), (y != 0).sum()
+    q1, q2 = a / (2 - a), 2 * a * a / (1 + a)
+    se = np.sqrt((a * (1 - a) + (n1 - 1) * (q1 - a * a) + (n0 - 1) * (q2 - a * a)) / (n1 * n0))
+    assert np.std(cls[:, 0]) == pytest.approx(se, rel=0.25)
+
+
+def test_binary_auc_ci():
+    rng = np.random.default_rng(7)
+    y = rng.integers(0, 2, 200)
+    s = y + rng.normal(0, 1.2, 200)
+    auc, (lo, hi) = stats.binary_auc_ci(y, s, n_boot=300, random_state=0)
+    assert auc == pytest.approx(roc_auc_score(y, s), abs=1e-12)  # reference: scikit-learn
+    assert lo < auc < hi
+
+
+def test_wilson_matches_statsmodels():
+    from statsmodels.stats.proportion import proportion_confint
+
+    for k, n in [(0, 10), (3, 17), (50, 100), (99, 100)]:
+        # reference: statsmodels proportion_confint(method="wilson")
+        ref = proportion_confint(k, n, alpha=0.05, method="wilson")
+        np.testing.assert_allclose(stats.wilson_ci(k, n), ref, atol=1e-12)
+
+
+def test_bh_matches_scipy_and_statsmodels():
+    from statsmodels.stats.multitest import multipletests
+
+    p = np.array([0.001, 0.04, 0.03, 0.2, 0.5, 0.04, 0.9, 0.0001, 0.012])
+    # references: scipy.stats.false_discovery_control (method "bh") and statsmodels multipletests("fdr_bh")
+    np.testing.assert_allclose(stats.bh_adjust(p), st.false_discovery_control(p, method="bh"), atol=1e-12)
+    np.testing.assert_allclose(stats.bh_adjust(p), multipletests(p, method="fdr_bh")[1], atol=1e-12)
+    assert stats.bh_adjust(np.array([])).shape == (0,)
+
+
+def test_geometric_merge_definition():
+    # Vovk & Wang (2020), Biometrika 107(4): e times the geometric mean, capped at 1
+    assert stats.merge_pvalues_geometric([0.01, 0.04]) == pytest.approx(np.e * 0.02)
+    assert stats.merge_pvalues_geometric([0.9, 0.8]) == 1.0
+
+
+def test_fold_permutation_pvalue_matches_exact_mann_whitney():
+    # One fold, two classes: the permutation p-value of the AUC estimates the exact one-sided
+    # Mann-Whitney p-value (scipy.stats.mannwhitneyu, method="exact"), within Monte Carlo error.
+    rng = np.random.default_rng(11)
+    y = np.r_[np.zeros(12, int), np.ones(10, int)]
+    s = rng.normal(size=22) + 0.6 * y
+    proba = np.column_stack([1 - s, s])
+    folds = [(np.array([], int), np.arange(22))]
+    p, per = stats.fold_permutation_pvalue(y, proba, folds, n_permutations=4999, random_state=0)
+    exact = st.mannwhitneyu(s[y == 1], s[y == 0], alternative="greater", method="exact").pvalue
+    assert per[0] == pytest.approx(exact, abs=0.015)
+    assert p == pytest.approx(min(1.0, np.e * per[0]))
+
+
+def test_fold_permutation_pvalue_null_and_signal():
+    rng = np.random.default_rng(3)
+    n, k = 300, 3
+    y = np.arange(n) % k
+    folds = [(None, np.arange(f, n, 5)) for f in range(5)]
+    rej = 0
+    for s in range(40):
+        P = np.random.default_rng(s).dirichlet(np.ones(k), n)  # scores independent of labels
+        p, _ = stats.fold_permutation_pvalue(y, P, folds, n_permutations=99, random_state=s)
+        rej += p < 0.05
+    assert rej <= 2  # merged test is conservative: expected rejections well under 5%
+    P = rng.dirichlet(np.ones(k), n)
+    P[np.arange(n), y] += 1.0
+    p, per = stats.fold_permutation_pvalue(y, P, folds, n_permutations=99, random_state=0)
+    assert per == (0.01,) * 5 and p == pytest.approx(np.e * 0.01)
+
+
+def test_cv_corrected_sd_formula():
+    # Nadeau & Bengio (2003): sqrt((1/K + n_test/n_train) * s^2)
+    v = [0.7, 0.75, 0.8, 0.72]
+    assert stats.cv_corrected_sd(v, 1 / 3) == pytest.approx(np.sqrt((0.25 + 1 / 3) * np.var(v, ddof=1)))
+    (lo, hi), r = stats.widened_ci(0.5, (0.49, 0.51), np.random.default_rng(0).normal(0.5, 0.005, 200), v, 1 / 3)
+    assert r > 1 and lo < 0.49 and hi > 0.51
+
+
+def test_errors():
+    with pytest.raises(InputError):
+        stats.macro_ovr_auc([0, 1, 2], np.ones((2, 3)))
+    with pytest.raises(InputError):
+        stats.bootstrap_auc_ci([0, 1, 1, 0], np.ones((4, 2)) / 2, random_state=None)
