@@ -538,6 +538,8 @@ class HarmonisationFit:
         try:
             if d.get("format") != PARAMS_FORMAT:
                 raise InputError(f"parameters file: format {d.get('format')!r} is not {PARAMS_FORMAT!r}")
+            if d.get("method") not in METHODS:
+                raise InputError(f"parameters file: method {d.get('method')!r} is not one of {', '.join(METHODS)}")
             p = len(d["features"])
             q = int(d["n_design"])
             beta = _unarr(d["beta"]).reshape(q, p) if q else np.zeros((0, p))
@@ -846,6 +848,44 @@ def _missing_test(v: np.ndarray, site: np.ndarray, k: int) -> Tuple[float, float
     return p, float(diff[i]), i
 
 
+def _point_mass_test(v: np.ndarray, site: np.ndarray, k: int, min_rows: int) -> Tuple[float, float, int, str]:
+    """A point mass at one site's minimum or maximum that the other sites lack.
+
+    For each site and each extreme value ``e`` of its raw values: the share of
+    the site's values equal to ``e`` against the rest's share at ``e``
+    (chi-square test of the 2 x 2 table), considered when the site's share is
+    at least 5% and three times the rest's (our own cut-offs). Returns the
+    smallest p-value (Bonferroni over the candidates), the share difference,
+    the site and a detail text; p = NaN without a candidate. A detection limit
+    loses the information below it, which no harmonisation restores, even
+    when a method spreads the tied values so that the distributions match.
+    """
+    from scipy.stats import chi2_contingency
+
+    ok = ~np.isnan(v)
+    best = (float("nan"), 0.0, -1, "")
+    cands = 0
+    for i in range(k):
+        a = v[ok & (site == i)]
+        b = v[ok & (site != i)]
+        if len(a) < min_rows or len(b) < min_rows:
+            continue
+        for side, e in (("floor", a.min()), ("ceiling", a.max())):
+            ca, cb = int((a == e).sum()), int((b == e).sum())
+            sa, sb = ca / len(a), cb / len(b)
+            if sa < 0.05 or sa < 3 * sb:
+                continue
+            cands += 1
+            tab = np.array([[ca, len(a) - ca], [cb, len(b) - cb]], dtype=float)
+            pval = float(chi2_contingency(tab, correction=False).pvalue) if (tab.sum(axis=0) > 0).all() else 1.0
+            if not np.isfinite(best[0]) or pval < best[0]:
+                best = (pval, sa - sb, i, f"{sa:.0%} of the site's values sit at its {side} {e:g} "
+                        f"(other sites: {sb:.0%} at that value)")
+    if cands == 0:
+        return best
+    return (min(1.0, best[0] * cands),) + best[1:]
+
+
 def _grain(x: np.ndarray) -> float:
     u = np.unique(x)
     if len(u) < 2:
@@ -908,7 +948,9 @@ def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, n
     Numeric features: the two-sample Kolmogorov-Smirnov test of each site
     against the rest on the harmonised values (asymptotic p-values,
     Bonferroni over sites), combined with a chi-square test of missingness by
-    site (Bonferroni over the two); categorical features (left unchanged): a
+    site and a test for a point mass at one site's extreme in the raw values
+    (a detection limit, see :func:`_point_mass_test`), Bonferroni over the
+    tests made; categorical features (left unchanged): a
     chi-square test of the site x level table. The feature p-values are
     Benjamini-Hochberg adjusted over all features tested. A feature survives
     when ``p_adj < alpha`` and its effect reaches ``min_effect`` (KS D,
@@ -960,11 +1002,17 @@ def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, n
         if not np.isfinite(p_ks) and i_m < 0:
             continue
         has_miss = i_m >= 0
+        p_f, eff_f, i_f, det_f = _point_mass_test(X_raw[:, j], site, k, min_rows)
+        has_floor = np.isfinite(p_f)
         p_ks_v = p_ks if np.isfinite(p_ks) else 1.0
-        p_feat = min(1.0, 2 * min(p_ks_v, p_m)) if has_miss else p_ks_v
+        tests = [p_ks_v] + ([p_m] if has_miss else []) + ([p_f] if has_floor else [])
+        p_feat = min(1.0, len(tests) * min(tests))
         if has_miss and (p_m < p_ks_v or not np.isfinite(p_ks)) and diff_m >= min_effect:
             rows.append((j, p_feat, diff_m, "missingness",
                          f"missing share differs by {diff_m:.0%} from the other sites", i_m))
+            continue
+        if has_floor and p_f < p_ks_v and eff_f >= min_effect:
+            rows.append((j, p_feat, float(eff_f), "floor or ceiling", det_f, i_f))
             continue
         if not np.isfinite(p_ks):
             continue

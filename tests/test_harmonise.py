@@ -82,17 +82,17 @@ def test_surviving_gap_pvalues_are_bh_adjusted(injected):
     from scipy.stats import false_discovery_control, ks_2samp
 
     X, site = injected
-    cols = [0, 3]  # crp, sodium: no missing values
+    cols = [5, 3]  # potassium, sodium: no missing values, no point mass
     Xh, _ = harmonise(X[:, cols], site, method="centre", site_labels=LABELS)
-    gaps, _ = surviving_gaps(X[:, cols], Xh, site, names=["crp", "sodium"], site_labels=LABELS, min_effect=0.0,
-                             alpha=1.1)
+    gaps, _ = surviving_gaps(X[:, cols], Xh, site, names=["potassium", "sodium"], site_labels=LABELS,
+                             min_effect=0.0, alpha=1.1)
     p = []
     for j in range(2):
         ps = [ks_2samp(Xh[site == i, j], Xh[site != i, j], method="asymp").pvalue for i in range(4)]
         p.append(min(1.0, 4 * min(ps)))
     want = false_discovery_control(p, method="bh")
     got = {g.feature: g.p_adj for g in gaps}
-    np.testing.assert_allclose([got["crp"], got["sodium"]], want, rtol=1e-10)
+    np.testing.assert_allclose([got["potassium"], got["sodium"]], want, rtol=1e-10)
 
 
 def test_centre_equalises_site_means_and_quantile_matches_pooled_quantiles():
@@ -341,3 +341,29 @@ def test_outcome_auc_cv_matches_sklearn_on_out_of_fold_scores():
         oof[te] = make_linear(np.zeros(3, bool), random_state=1000 * f).fit(X[tr], y[tr]).predict_proba(X[te])[:, 1]
     assert auc == pytest.approx(roc_auc_score(y, oof), abs=1e-9)
     assert ci[0] <= auc <= ci[1] and m == n
+
+
+def test_scan_fills_report_harmonisation_and_renders():
+    from sitecheck.render.html import render_html
+    from sitecheck.render.markdown import render_markdown
+    from sitecheck.scan import ScanOptions, scan_frame
+    from sitecheck.schema import report_schema, validate
+
+    rng = np.random.default_rng(11)
+    n = 800
+    site = np.repeat(np.array(["Ashgrove", "Brindle Cross"], dtype=object), n // 2)
+    age = rng.normal(60, 10, n)
+    frame = pd.DataFrame({"hospital": site, "age": age, "crp": np.maximum(rng.lognormal(2, 1, n), 0.0),
+                          "sodium": rng.normal(140, 3, n) + 3 * (site == "Ashgrove"),
+                          "died": (rng.random(n) < 0.3).astype(float)})
+    frame.loc[site == "Brindle Cross", "crp"] = np.maximum(frame.loc[site == "Brindle Cross", "crp"], 5.0)
+    res = scan_frame(frame, site="hospital", outcome="died", covariates=["age"],
+                     options=ScanOptions(analyses=("harmonise",)))
+    doc = res.to_dict()
+    assert list(doc["harmonisation"]) == list(METHODS)
+    assert validate(doc, report_schema()) == []
+    for m, d in doc["harmonisation"].items():
+        assert d["protected"] == ["age", "died"] and d["outcome_protected"] is True
+        assert "crp" in {s["feature"] for s in d["surviving"]}
+        assert set(d) >= {"probe_auc", "probe_auc_ci", "surviving", "outcome_auc_before", "outcome_auc_after"}
+    assert "Harmonisation" in render_html(doc) and "## Harmonisation" in render_markdown(doc)
