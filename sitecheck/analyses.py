@@ -39,6 +39,29 @@ def _probe_sections(result):
 REGISTRY.insert(0, Analysis("probe", _run_probe, sections=_probe_sections))
 
 
+def _run_leakage(prep, options, objects):
+    import numpy as np
+
+    from .leakage import rank_leakage
+    from .probe import probe_matrix
+
+    probe = objects.get("probe")
+    if probe is None:
+        return None
+
+    def missingness_probe(M, y):
+        return probe_matrix(M, y, np.zeros(M.shape[1], dtype=bool), prep.folds, random_state=options.seed,
+                            n_boot=500, n_permutations=999, model="linear").to_dict()
+
+    return rank_leakage(prep, probe.crossfit, cluster_threshold=options.cluster_threshold,
+                        panels=prep.table.panels, missingness_probe=missingness_probe, random_state=options.seed)
+
+
+# The leak ranking reuses the probe's fold models: it goes right after the probe.
+REGISTRY.insert(next(i for i, a in enumerate(REGISTRY) if a.name == "probe") + 1,
+                Analysis("leakage", _run_leakage, sections=lambda result: result.sections()))
+
+
 def _run_outcome(prep, options, objects):
     from .outcome import outcome_risk
 
@@ -60,6 +83,18 @@ def _fingerprint_sections(result):
 REGISTRY.insert(next((i for i, a in enumerate(REGISTRY) if a.name in ("maps", "harmonise", "outcome")),
                      len(REGISTRY)),
                 Analysis("fingerprints", _run_fingerprints, sections=_fingerprint_sections))
+
+
+def _run_maps(prep, options, objects):
+    from .maps import compute_maps
+
+    return compute_maps(prep, max_rows=options.map_rows, random_state=options.seed)
+
+
+# maps go after probe, leakage and fingerprints and before harmonise and outcome
+REGISTRY.insert(next((i for i, a in enumerate(REGISTRY) if a.name in ("harmonise", "outcome")), len(REGISTRY)),
+                Analysis("maps", _run_maps, applies=lambda prep: prep.features.n_features > 0 and prep.n_used >= 50,
+                         sections=lambda result: {"embedding": result}))
 
 
 def _run_harmonise(prep, options, objects):

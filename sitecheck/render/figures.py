@@ -24,8 +24,8 @@ import numpy as np
 from .safety import atomic_write, suppress_count
 
 #: Okabe, M. & Ito, K. (2008) "Color Universal Design" palette (hex values as commonly published),
-#: with black moved last so the first colours read well on white.
-OKABE_ITO = ("#E69F00", "#56B4E9", "#009E73", "#F0E442", "#0072B2", "#D55E00", "#CC79A7", "#000000")
+#: with yellow (weakest on white) moved last.
+OKABE_ITO = ("#E69F00", "#56B4E9", "#009E73", "#0072B2", "#D55E00", "#CC79A7", "#000000", "#F0E442")
 MARKERS = ("o", "s", "^", "D", "v", "P", "X", "<", ">", "*")
 METHOD_TITLES = {"pca": "PCA", "tsne": "t-SNE", "umap": "UMAP"}
 AXIS_NOTES = {
@@ -162,10 +162,12 @@ def _one_colouring(maps, out_dir: str, stem: str, title: str, names: Sequence[st
         title += " (colour-marker pairs repeat)"
     mode = "density contours (50% and 90% of each level's rows), no individual points" if shareable else \
         "one point per row"
-    fig.suptitle(f"{title}: {maps.n_used} mapped rows, {mode}", fontsize=10, y=1.18)
+    n_rows_legend = -(-len(texts) // 4)
+    top = 0.86 - 0.045 * n_rows_legend
+    fig.suptitle(f"{title}: {maps.n_used} mapped rows, {mode}", fontsize=10, y=0.99)
     fig.legend(handles, texts, loc="upper center", ncol=min(4, max(1, len(texts))), fontsize=8,
-               frameon=False, bbox_to_anchor=(0.5, 1.12))
-    fig.subplots_adjust(bottom=0.16, wspace=0.12)
+               frameon=False, bbox_to_anchor=(0.5, 0.955))
+    fig.subplots_adjust(top=top, bottom=0.12, wspace=0.12)
     return _save(fig, out_dir, stem)
 
 

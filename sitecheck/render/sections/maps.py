@@ -46,13 +46,15 @@ def _site_rows(emb: Dict[str, Any], min_cell: int) -> List[List[Any]]:
                 sites.append(s)
     rows = []
     for s in sites:
-        first = next((mixing[sp]["per_site"][s] for sp in spaces if s in (mixing[sp].get("per_site") or {})), {})
-        n = first.get("n", 0)
-        small = 0 < int(n or 0) < min_cell
-        row = [s, suppress_count(n, min_cell)]
-        for sp in spaces:
-            e = (mixing[sp].get("per_site") or {}).get(s) or {}
-            row.append("withheld" if small else f"{_num(e.get('normalised'))} ({_ci(e.get('lisi_ci'))})")
+        entries = [(mixing[sp].get("per_site") or {}).get(s) for sp in spaces]
+        first = next((e for e in entries if isinstance(e, dict)), None)
+        n = first.get("n") if first else None
+        # withheld upstream (shareable document), suppressed count, or too few mapped rows
+        small = first is None or not isinstance(n, int) or 0 < n < min_cell
+        row = [s, "withheld" if first is None else suppress_count(n, min_cell)]
+        for e in entries:
+            ok = isinstance(e, dict) and not small
+            row.append(f"{_num(e.get('normalised'))} ({_ci(e.get('lisi_ci'))})" if ok else "withheld")
         rows.append(row)
     return rows
 
