@@ -367,6 +367,15 @@ def embed(Z, *, methods: Sequence[str] = METHODS, random_state: int = 0, tsne_ma
 
 # --------------------------------------------------------------------------- the analysis
 
+def _label(x) -> str:
+    """Display text of a group value (whole-number floats without the trailing .0)."""
+    if x is None or (isinstance(x, float) and np.isnan(x)):
+        return "missing"
+    if isinstance(x, (float, np.floating)) and float(x).is_integer():
+        return str(int(x))
+    return str(x)
+
+
 @dataclass(frozen=True, eq=False)
 class MapsResult:
     """Embeddings and mixing scores of a site-stratified subsample.
@@ -470,7 +479,7 @@ def compute_maps(prep: Prepared, *, max_rows: int = 10_000, methods: Sequence[st
         colourings["outcome"] = (prep.table.outcome or "outcome", lab)
     for j, (g, values) in enumerate(prep.groups.items()):
         v = np.asarray(values, dtype=object)[idx]
-        colourings[f"group_{j + 1}"] = (str(g), np.array(["missing" if x is None else str(x) for x in v], dtype=object))
+        colourings[f"group_{j + 1}"] = (str(g), np.array([_label(x) for x in v], dtype=object))
     counts = np.bincount(site, minlength=len(prep.site_labels))
     return MapsResult(
         n_used=int(n), n_available=int(prep.n_used), cap=int(max_rows), methods=tuple(coords),

@@ -206,3 +206,28 @@ def test_section_renders_escaped(maps_demo, tmp_path):
     assert "withheld" in page  # the 3-row site's statistics are withheld at min_cell 10
     md = section.markdown(doc, 10)
     assert "LISI" in md and "<10" in md.replace("\\<", "<")
+
+
+def test_group_colouring_and_pca_only(demo_prepared, tmp_path):
+    import dataclasses
+
+    from sitecheck.render.figures import write_figures
+
+    rng = np.random.default_rng(5)
+    groups = {"band": np.array([float(v) for v in rng.integers(0, 3, demo_prepared.n_used)], dtype=object)}
+    prep = dataclasses.replace(demo_prepared, groups=groups)
+    r = compute_maps(prep, max_rows=200, methods=("pca",), n_boot=20)
+    assert r.methods == ("pca",) and set(r.to_dict()["mixing"]) == {"features", "pca"}
+    column, labels = r.colourings["group_1"]
+    assert column == "band" and set(labels) <= {"0", "1", "2"}
+    rels = write_figures(_fake_result(r), str(tmp_path), min_cell=10, shareable=False)["embedding"]
+    assert "figures/embedding_group_1.png" in rels and (tmp_path / "figures/embedding_group_1.svg").stat().st_size > 2000
+
+
+def test_palette_fallback_distinct_pairs():
+    # Okabe-Ito colours (8) x 10 markers: distinct (colour, marker) pairs for up to 80 sites
+    from sitecheck.render.figures import OKABE_ITO, style
+
+    assert len(set(OKABE_ITO)) == 8
+    assert len({style(i) for i in range(80)}) == 80
+    assert len({style(i)[0] for i in range(8)}) == 8

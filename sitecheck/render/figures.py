@@ -38,7 +38,9 @@ MAX_LEVELS = 12  # levels of an outcome/group colouring drawn individually; the 
 
 def style(i: int) -> Tuple[str, str]:
     """(colour, marker) of the i-th level."""
-    return OKABE_ITO[i % len(OKABE_ITO)], MARKERS[i % len(MARKERS)]
+    # marker advances by one extra step every full colour cycle, so (colour, marker) pairs
+    # stay distinct for 8 x 10 = 80 levels (9 is invertible mod 10)
+    return OKABE_ITO[i % len(OKABE_ITO)], MARKERS[(i + i // len(OKABE_ITO)) % len(MARKERS)]
 
 
 def _new_figure(n_panels: int):
