@@ -895,6 +895,12 @@ def _grain(x: np.ndarray) -> float:
     return float(d.min()) if len(d) else float("nan")
 
 
+def _on_grid(x: np.ndarray, g: float) -> float:
+    """Share of values that are whole multiples of ``g`` (to rounding error)."""
+    r = x / g
+    return float(np.mean(np.abs(r - np.round(r)) < 1e-6 * np.maximum(1.0, np.abs(r)) + 1e-9))
+
+
 def _log_gap(x: np.ndarray) -> float:
     """Largest gap in log10 between consecutive positive values with >= 5% on each side."""
     x = np.sort(x[x > 0])
@@ -913,7 +919,8 @@ def diagnose(a: np.ndarray, b: np.ndarray) -> Tuple[str, str]:
     times the rest's share at their own extreme), a unit mixture (medians of
     positive values a factor of 3 or more apart, or a gap of half a decade in
     the site's log values), precision (the site's smallest step between
-    distinct values at least twice the rest's), else a shape difference.
+    distinct values at least twice the rest's, with at least 95% of its values
+    on that grid against at most 60% elsewhere), else a shape difference.
     The cut-offs are our own conventions.
     """
     a = a[~np.isnan(a)]
@@ -935,7 +942,10 @@ def diagnose(a: np.ndarray, b: np.ndarray) -> Tuple[str, str]:
             return "unit mixture", f"the site's values split into two clusters a factor {10 ** gap:.3g} apart"
     ga, gb = _grain(a), _grain(b)
     if np.isfinite(ga) and np.isfinite(gb) and ga >= 2 * gb:
-        return "precision", f"smallest step {ga:g} at the site against {gb:g} elsewhere"
+        on_a, on_b = _on_grid(a, ga), _on_grid(b, ga)
+        if on_a >= 0.95 and on_b <= 0.6:
+            return "precision", (f"the site records in steps of {ga:g} ({on_a:.0%} of its values on that grid, "
+                                 f"{on_b:.0%} elsewhere; smallest step elsewhere {gb:g})")
     return "shape difference", "the distributions still differ after harmonisation"
 
 
@@ -1011,19 +1021,11 @@ def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, n
             rows.append((j, p_feat, diff_m, "missingness",
                          f"missing share differs by {diff_m:.0%} from the other sites", i_m))
             continue
-        if has_floor and p_f < p_ks_v and eff_f >= min_effect:
+        if has_floor and p_f < alpha and eff_f >= min_effect:
             rows.append((j, p_feat, float(eff_f), "floor or ceiling", det_f, i_f))
             continue
         if not np.isfinite(p_ks):
             continue
-        if case_mix is not None and case_mix[:, j].any():
-            D_res, p_res = _ks_one_vs_rest(v - case_mix[:, j], site, k, min_rows)
-            if np.isfinite(p_res) and (p_res >= alpha or np.nanmax(D_res) < min_effect):
-                i = int(np.nanargmax(D_sites))
-                rows.append((j, p_feat, float(D_sites[i]), "case mix (protected)",
-                             "the gap disappears once the protected columns' effect is removed: "
-                             "a difference in case mix, kept on purpose", i))
-                continue
         # The reason: the first site, by KS D, whose raw values show a specific cause
         # (floor or ceiling, unit mixture, precision); else the worst site's shape.
         order = [i for i in np.argsort(-np.nan_to_num(D_sites, nan=-1.0), kind="stable") if np.isfinite(D_sites[i])]
@@ -1035,6 +1037,11 @@ def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, n
             if reason != "shape difference":
                 pick = (reason, detail, int(i))
                 break
+        if pick is None and case_mix is not None and case_mix[:, j].any():
+            D_res, p_res = _ks_one_vs_rest(v - case_mix[:, j], site, k, min_rows)
+            if np.isfinite(p_res) and (p_res >= alpha or np.nanmax(D_res) < min_effect):
+                pick = ("case mix (protected)", "the gap disappears once the protected columns' effect is "
+                        "removed: a difference in case mix, kept on purpose", int(order[0]))
         if pick is None:
             i = int(order[0])
             pick = ("shape difference", "the distributions still differ after harmonisation", i)
