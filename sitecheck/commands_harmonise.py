@@ -238,7 +238,8 @@ def run_harmonise(data: str, *, site: Optional[str], method: Optional[str], prot
               help="centre: per-site location; scale: location and scale; quantile: per-site quantile mapping "
                    "to the pooled distribution; combat: empirical-Bayes location and scale (ComBat).")
 @click.option("--protect", multiple=True, metavar="COL",
-              help="Column whose linear effect on the features is kept (repeatable), e.g. age, sex, the outcome.")
+              help="Column whose linear effect on the features is kept (repeatable), e.g. age, sex. Protecting "
+                   "the outcome keeps its signal but then --apply needs the outcome of every new row.")
 @click.option("--out", required=True, type=click.Path(dir_okay=False), metavar="FILE",
               help="The harmonised table, in the input's format; never the input file.")
 @click.option("--params", "params_path", type=click.Path(dir_okay=False), metavar="FILE",
@@ -259,6 +260,7 @@ def harmonise_cmd(data, site, method, protect, out, params_path, apply_path, out
     protected columns and the outcome are copied unchanged. Missing cells stay missing (written as
     empty cells in CSV). Fitted parameters are written as JSON beside --out (or to --params) and can
     be applied to new rows of the same sites with --apply (fit on training rows, apply to test rows).
+    Decision support for data work, not a clinical device; check the result with `sitecheck scan`.
     """
     res = run_harmonise(data, site=site, method=method, protect=protect, out=out, params_path=params_path,
                         apply_path=apply_path, identifiers=identifiers, excluded=excluded, outcome=outcome,
