@@ -32,12 +32,14 @@ SMD_FLAG = 0.1
 
 
 def bh_adjust(pvalues: Sequence[float]) -> np.ndarray:
-    """Benjamini-Hochberg adjusted p-values (NaN kept as NaN)."""
+    """:func:`sitecheck.stats.bh_adjust` over the non-missing p-values (NaN kept as NaN)."""
+    from .stats import bh_adjust as _bh
+
     p = np.asarray(pvalues, dtype=float)
     out = np.full(p.shape, np.nan)
     ok = ~np.isnan(p)
     if ok.any():
-        out[ok] = sps.false_discovery_control(p[ok], method="bh")
+        out[ok] = _bh(p[ok])
     return out
 
 
