@@ -101,6 +101,33 @@ def embed_image(out_dir, rel: str, alt: str = "") -> str:
     return f'<img alt="{esc(alt)}" src="data:image/png;base64,{data}">'
 
 
+def _at_a_glance(doc: Dict[str, Any]) -> str:
+    """A short box with the headline answers, drawn from the sections present."""
+    items = []
+    p = doc.get("probe")
+    if isinstance(p, dict) and p.get("auc") is not None:
+        items.append(f"<li><b>Site probe:</b> verdict <span class='verdict'>{esc(p.get('verdict'))}</span>, "
+                     f"AUC {fmt(p.get('auc'))} (95% CI {ci(p.get('auc_ci'))}).</li>")
+    leak = doc.get("leakage") or []
+    if leak:
+        top = [e["feature"] for e in leak[:5] if isinstance(e.get("score_ci"), list) and (e["score_ci"][0] or 0) > 0]
+        if top:
+            items.append("<li><b>Carried mostly by:</b> " + ", ".join(esc(t) for t in top) + ".</li>")
+    fps = doc.get("fingerprints") or []
+    if fps:
+        kinds = {}
+        for f in fps:
+            kinds[f.get("kind")] = kinds.get(f.get("kind"), 0) + 1
+        items.append("<li><b>Fingerprints:</b> " + ", ".join(f"{esc(k)} ({v})" for k, v in kinds.items()) + ".</li>")
+    o = doc.get("outcome")
+    if isinstance(o, dict) and o.get("transport_gap") is not None:
+        items.append(f"<li><b>Outcome:</b> site-only AUC {fmt(o.get('site_only_auc'))}, pooled model AUC "
+                     f"{fmt(o.get('pooled_auc'))}, transport gap {fmt(o.get('transport_gap'))}.</li>")
+    if not items:
+        return ""
+    return "<div class='note'><b>At a glance</b><ul>" + "".join(items) + "</ul></div>"
+
+
 def render_html(doc: Dict[str, Any], *, min_cell: int = 10, out_dir=None) -> str:
     """Render the report document (``ScanResult.to_dict()``) as one HTML page.
 
@@ -115,7 +142,7 @@ def render_html(doc: Dict[str, Any], *, min_cell: int = 10, out_dir=None) -> str
             f"<p>{esc(inp.get('rows_used'))} rows from {len(sites)} sites "
             f"(site column <code>{esc(inp.get('site_column'))}</code>): "
             + ", ".join(f"{esc(k)} ({esc(suppress_count(v, min_cell))})" for k, v in sites.items()) + "</p>")
-    body = [head]
+    body = [head, _at_a_glance(doc)]
     from .sections import modules
 
     for mod in modules():

@@ -11,6 +11,12 @@ def _num(v, d=3):
     return f"{v:.{d}f}" if isinstance(v, (int, float)) and not isinstance(v, bool) else ("–" if v is None else str(v))
 
 
+def _p(v):
+    if isinstance(v, (int, float)) and not isinstance(v, bool):
+        return "<0.0001" if v < 1e-4 else f"{v:.4f}"
+    return "–" if v is None else str(v)
+
+
 def _rows(doc: Dict[str, Any], limit: int = 25):
     rows = []
     for e in (doc.get("leakage") or [])[:limit]:
@@ -19,8 +25,8 @@ def _rows(doc: Dict[str, Any], limit: int = 25):
         m = e.get("missing_by_site") or {}
         effect = u.get("epsilon_squared", u.get("cramers_v"))
         rows.append([e["rank"], e["feature"], _num(e["score"]), ci(e["score_ci"]), e["cluster"],
-                     _num(u.get("max_abs_smd"), 2), _num(effect), _num(u.get("p_adj"), 4),
-                     _num(adj.get("p_adj"), 4) if adj else "–", _num(m.get("p_adj"), 4)])
+                     _num(u.get("max_abs_smd"), 2), _num(effect), _p(u.get("p_adj")),
+                     _p(adj.get("p_adj")) if adj else "–", _p(m.get("p_adj"))])
     return rows
 
 
