@@ -179,8 +179,10 @@ def _check_header(path: str, names: List[str]) -> None:
         raise InputError(f"{path}: duplicate column name {dup[0]!r}; column names must be unique")
 
 
-def _read_text_columns(path: str, fmt: str, sep: Optional[str], encoding: str) -> pd.DataFrame:
-    """Read a delimited file with every column as text (no NA conversion)."""
+def _read_text_columns(path: str, fmt: str, sep: Optional[str], encoding: str):
+    """Read a delimited file with every column as Arrow text (no NA conversion).
+
+    Returns ({name: pyarrow.ChunkedArray}, names)."""
     import pyarrow as pa
     import pyarrow.csv as pacsv
 
@@ -223,11 +225,7 @@ def _read_text_columns(path: str, fmt: str, sep: Optional[str], encoding: str) -
         )
     if table.num_rows == 0:
         raise InputError(f"{path}: the file has a header but no data rows")
-    data = {}
-    for i, name in enumerate(names):
-        col = table.column(i)
-        data[name] = col.to_numpy(zero_copy_only=False).astype(object)
-    return pd.DataFrame(data, columns=names)
+    return {name: table.column(i) for i, name in enumerate(names)}, names
 
 
 def _known(encoding: str) -> bool:
@@ -348,6 +346,54 @@ def _coerce_column(name: str, values: np.ndarray) -> Tuple[np.ndarray, ColumnInt
     return out, ColumnIntake(name, "text", codes, n_missing)
 
 
+_NUMERIC_RE = r"^[+-]?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d+)?$"
+
+
+def _coerce_arrow(name: str, col) -> Tuple[np.ndarray, ColumnIntake]:
+    """Intake rules on an Arrow string column, vectorised with pyarrow.compute.
+
+    Numeric columns never become Python objects (the 1M-row path); other columns
+    fall back to :func:`_coerce_column`.
+    """
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    col = col.combine_chunks() if isinstance(col, pa.ChunkedArray) else col
+    nulls = col.is_null()
+    trimmed = pc.utf8_trim_whitespace(pc.fill_null(col, ""))
+    lower = pc.utf8_lower(trimmed)
+    is_code = pc.is_in(lower, value_set=pa.array(list(_MISSING_LOWER)))
+    is_code = pc.or_(is_code, nulls)
+    codes: Dict[str, int] = {}
+    n_code = pc.sum(is_code).as_py() or 0
+    if n_code:
+        vc = pc.value_counts(pc.filter(trimmed, pc.and_(is_code, pc.invert(nulls))))
+        for item in vc.to_pylist():
+            key = _MISSING_LOWER.get(item["values"].lower(), item["values"])
+            codes[key] = codes.get(key, 0) + int(item["counts"])
+        n_null = pc.sum(nulls).as_py() or 0
+        if n_null:
+            codes["(null)"] = codes.get("(null)", 0) + int(n_null)
+    present = pc.invert(is_code)
+    n_present = len(col) - n_code
+    if n_present == 0:
+        return np.full(len(col), np.nan), ColumnIntake(name, "numeric", codes, int(n_code))
+    is_num = pc.and_(present, pc.match_substring_regex(trimmed, _NUMERIC_RE))
+    n_num = pc.sum(is_num).as_py() or 0
+    if n_num / n_present >= COERCE_SHARE:
+        values = pc.if_else(is_num, trimmed, pa.scalar(None, pa.string()))
+        out = pc.cast(values, pa.float64()).to_numpy(zero_copy_only=False)
+        out = np.asarray(out, dtype=np.float64)
+        bad_mask = pc.and_(present, pc.invert(is_num))
+        n_bad = n_present - n_num
+        examples: Tuple[str, ...] = ()
+        if n_bad:
+            examples = tuple(pc.unique(pc.filter(trimmed, bad_mask)).to_pylist()[:3])
+        return out, ColumnIntake(name, "numeric", codes, int(n_code + n_bad), coerced=True,
+                                 unparsed_count=int(n_bad), unparsed_examples=examples)
+    return _coerce_column(name, col.to_numpy(zero_copy_only=False).astype(object))
+
+
 def read_table(
     path: str,
     *,
@@ -383,17 +429,22 @@ def read_table(
     if os.path.getsize(path) == 0:
         raise InputError(f"{path}: the file is empty")
     fmt = detect_format(path)
-    if fmt == "parquet":
-        raw = _read_parquet(path)
-    else:
-        raw = _read_text_columns(path, fmt, sep, encoding)
     cols = {}
     infos = []
-    for name in raw.columns:
-        arr, info = _coerce_column(name, raw[name].to_numpy())
-        cols[name] = arr
-        infos.append(info)
-    frame = pd.DataFrame(cols, columns=list(raw.columns))
+    if fmt == "parquet":
+        raw = _read_parquet(path)
+        names = list(raw.columns)
+        for name in names:
+            arr, info = _coerce_column(name, raw[name].to_numpy())
+            cols[name] = arr
+            infos.append(info)
+    else:
+        arrow_cols, names = _read_text_columns(path, fmt, sep, encoding)
+        for name in names:
+            arr, info = _coerce_arrow(name, arrow_cols.pop(name))  # free each Arrow column once converted
+            cols[name] = arr
+            infos.append(info)
+    frame = pd.DataFrame(cols, columns=names)
     return RawTable(frame=frame, path=path, format=fmt, sha256=file_sha256(path), columns=tuple(infos))
 
 
