@@ -424,7 +424,8 @@ class MapsResult:
 
 def compute_maps(prep: Prepared, *, max_rows: int = 10_000, methods: Sequence[str] = METHODS,
                  perplexity: float = 30.0, n_boot: int = 200, tsne_max_iter: int = 350,
-                 umap_n_epochs: int = 200, random_state: Optional[int] = None) -> MapsResult:
+                 umap_n_epochs: int = 200, tsne_threads: Optional[int] = 1,
+                 random_state: Optional[int] = None) -> MapsResult:
     """Embed a site-stratified subsample and score how well the sites mix.
 
     Parameters
@@ -441,6 +442,10 @@ def compute_maps(prep: Prepared, *, max_rows: int = 10_000, methods: Sequence[st
         Bootstrap resamples for the intervals.
     tsne_max_iter, umap_n_epochs : int
         See :func:`embed`.
+    tsne_threads : int or None, default 1
+        OpenMP threads for t-SNE. One thread was measured far faster than two
+        on a busy 2-core machine (threads spin while waiting) and at most about
+        1.5x slower on an idle one; the result does not depend on it.
     random_state : int or None
         Default: ``prep.seed``.
 
@@ -464,7 +469,7 @@ def compute_maps(prep: Prepared, *, max_rows: int = 10_000, methods: Sequence[st
     if Z.shape[1] == 0:
         raise InputError("no feature column is usable for the maps")
     coords, settings = embed(Z, methods=methods, random_state=seed, tsne_max_iter=tsne_max_iter,
-                             umap_n_epochs=umap_n_epochs, perplexity=perplexity)
+                             umap_n_epochs=umap_n_epochs, perplexity=perplexity, tsne_threads=tsne_threads)
     n = len(idx)
     perp = float(min(perplexity, max(1.5, (n - 1) / 3.0)))
     spaces = {"features": Z, **coords}
