@@ -13,13 +13,19 @@ from typing import Any, Callable, Dict, List
 
 @dataclass(frozen=True)
 class Analysis:
+    """One analysis of a scan.
+
+    ``needs`` names analyses whose results ``run`` reads from ``objects``; when
+    those are scheduled, this one waits for them. Analyses without a dependency
+    between them may run at the same time (see :func:`sitecheck.scan.run_analyses`);
+    each uses its own seeded generators, so the results do not depend on the order.
+    """
+
     name: str
     run: Callable[..., Any]
     applies: Callable[..., bool] = lambda prep: True
     sections: Callable[[Any], Dict[str, Any]] = lambda result: {}
-
-
-REGISTRY: List[Analysis] = []
+    needs: tuple = ()
 
 
 def _run_probe(prep, options, objects):
@@ -35,8 +41,6 @@ def _probe_sections(result):
     return out
 
 
-# The site probe runs first: later analyses reuse its fold models (objects["probe"].crossfit).
-REGISTRY.insert(0, Analysis("probe", _run_probe, sections=_probe_sections))
 
 
 def _run_leakage(prep, options, objects):
@@ -57,9 +61,6 @@ def _run_leakage(prep, options, objects):
                         panels=prep.table.panels, missingness_probe=missingness_probe, random_state=options.seed)
 
 
-# The leak ranking reuses the probe's fold models: it goes right after the probe.
-REGISTRY.insert(next(i for i, a in enumerate(REGISTRY) if a.name == "probe") + 1,
-                Analysis("leakage", _run_leakage, sections=lambda result: result.sections()))
 
 
 def _run_outcome(prep, options, objects):
@@ -79,22 +80,20 @@ def _fingerprint_sections(result):
     return {"fingerprints": [f.to_dict() for f in result.findings], "fingerprint_tests": result.tests}
 
 
-# fingerprints go after probe/leakage and before maps, harmonise and outcome
-REGISTRY.insert(next((i for i, a in enumerate(REGISTRY) if a.name in ("maps", "harmonise", "outcome")),
-                     len(REGISTRY)),
-                Analysis("fingerprints", _run_fingerprints, sections=_fingerprint_sections))
 
 
 def _run_maps(prep, options, objects):
     from .maps import compute_maps
 
+    try:  # one core per analysis: UMAP's numba kernels stay on this process's lane
+        import numba
+
+        numba.set_num_threads(1)
+    except (ImportError, ValueError):  # pragma: no cover
+        pass
     return compute_maps(prep, max_rows=options.map_rows, random_state=options.seed)
 
 
-# maps go after probe, leakage and fingerprints and before harmonise and outcome
-REGISTRY.insert(next((i for i, a in enumerate(REGISTRY) if a.name in ("harmonise", "outcome")), len(REGISTRY)),
-                Analysis("maps", _run_maps, applies=lambda prep: prep.features.n_features > 0 and prep.n_used >= 50,
-                         sections=lambda result: {"embedding": result}))
 
 
 def _run_harmonise(prep, options, objects):
@@ -107,12 +106,19 @@ def _harmonise_applies(prep) -> bool:
     return any(k == "numeric" for k in prep.features.kinds) and prep.n_used >= 50
 
 
-# harmonise goes after probe, leakage, fingerprints and maps and before outcome
-REGISTRY.insert(next((i for i, a in enumerate(REGISTRY) if a.name == "outcome"), len(REGISTRY)),
-                Analysis("harmonise", _run_harmonise, applies=_harmonise_applies,
-                         sections=lambda result: {"harmonisation": result}))
+def _maps_applies(prep) -> bool:
+    return prep.features.n_features > 0 and prep.n_used >= 50
 
 
-# Order: probe, leakage, fingerprints, maps, harmonise, outcome (outcome stays last).
-REGISTRY.append(Analysis("outcome", _run_outcome, applies=lambda prep: prep.outcome is not None,
-                         sections=lambda result: {"outcome": result}))
+#: The analyses, in report order. The leak ranking reuses the probe's fold models
+#: (objects["probe"].crossfit); the outcome analysis reads the leak ranking.
+REGISTRY: List[Analysis] = [
+    Analysis("probe", _run_probe, sections=_probe_sections),
+    Analysis("leakage", _run_leakage, sections=lambda result: result.sections(), needs=("probe",)),
+    Analysis("fingerprints", _run_fingerprints, sections=_fingerprint_sections),
+    Analysis("maps", _run_maps, applies=_maps_applies, sections=lambda result: {"embedding": result}),
+    Analysis("harmonise", _run_harmonise, applies=_harmonise_applies,
+             sections=lambda result: {"harmonisation": result}),
+    Analysis("outcome", _run_outcome, applies=lambda prep: prep.outcome is not None,
+             sections=lambda result: {"outcome": result}, needs=("leakage",)),
+]

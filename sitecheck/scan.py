@@ -47,6 +47,9 @@ class ScanOptions:
         Decision threshold of the outcome model for equalized odds (None: Youden).
     analyses : tuple of str or None
         Limit the analyses run (None: all that apply).
+    n_jobs : int, default 2
+        2 runs the independent analyses in a second process (tables up to 200,000
+        rows); 1 runs everything in turn in this process.
     """
 
     seed: int = 0
@@ -59,6 +62,7 @@ class ScanOptions:
     cluster_threshold: float = 0.7
     threshold: Optional[float] = None
     analyses: Optional[tuple] = None
+    n_jobs: int = 2
 
     def wants(self, name: str) -> bool:
         return self.analyses is None or name in self.analyses
@@ -76,34 +80,78 @@ def _versions() -> Dict[str, str]:
     return out
 
 
-def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Progress] = None,
-                 timings: Optional[Dict[str, float]] = None) -> Dict[str, Any]:
-    """Run the analysis modules on a prepared table; return {section: result}."""
-    say = progress or (lambda msg: None)
-    timings = timings if timings is not None else {}
-    sections: Dict[str, Any] = {}
-    objects: Dict[str, Any] = {}
+def _run_specs(prep: Prepared, options: ScanOptions, names, objects: Dict[str, Any],
+               say: Progress, timings: Dict[str, float]) -> Dict[str, Any]:
+    """Run the named analyses in turn, single-threaded native pools; fill ``objects``."""
+    from threadpoolctl import threadpool_limits
 
-    def stage(name: str, fn):
-        say(f"{name}...")
-        t0 = time.perf_counter()
-        out = fn()
-        timings[name] = round(time.perf_counter() - t0, 3)
-        return out
-
-    # Analyses register here as they are implemented.
     from . import analyses
 
     for spec in analyses.REGISTRY:
-        if not options.wants(spec.name) or not spec.applies(prep):
+        if spec.name not in names:
             continue
-        result = stage(spec.name, lambda spec=spec: spec.run(prep, options, objects))
+        say(f"{spec.name}...")
+        t0 = time.perf_counter()
+        with threadpool_limits(limits=1):
+            objects[spec.name] = spec.run(prep, options, objects)
+        timings[spec.name] = round(time.perf_counter() - t0, 3)
+    return objects
+
+
+def _side_lane(prep: Prepared, options: ScanOptions, names) -> tuple:
+    """Entry point of the second process: run ``names``; return (results, timings)."""
+    timings: Dict[str, float] = {}
+    objects = _run_specs(prep, options, set(names), {}, lambda msg: None, timings)
+    return objects, timings
+
+
+#: Above this many rows the scan runs in one process (a second one would copy the table).
+PARALLEL_MAX_ROWS = 200_000
+
+
+def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Progress] = None,
+                 timings: Optional[Dict[str, float]] = None) -> Dict[str, Any]:
+    """Run the registered analyses on a prepared table; return {"sections", "objects"}.
+
+    With ``options.n_jobs > 1`` (and at most :data:`PARALLEL_MAX_ROWS` rows) the
+    analyses that nothing else depends on and that depend on nothing (fingerprints,
+    maps, harmonisation) run in a second process while the probe, the leak ranking
+    and the outcome analysis run in this one. Every analysis runs with
+    single-threaded native thread pools and its own seeded generators, so the
+    results are the same whatever the schedule; sections are assembled in
+    registry order.
+    """
+    from . import analyses
+
+    say = progress or (lambda msg: None)
+    timings = timings if timings is not None else {}
+    todo = [a for a in analyses.REGISTRY if options.wants(a.name) and a.applies(prep)]
+    names = {a.name for a in todo}
+    needed = {d for a in todo for d in a.needs}
+    side = [a.name for a in todo if not a.needs and a.name not in needed]
+    objects: Dict[str, Any] = {}
+    if int(options.n_jobs) > 1 and side and len(side) < len(todo) and prep.n_total <= PARALLEL_MAX_ROWS:
+        import multiprocessing as mp
+        from concurrent.futures import ProcessPoolExecutor
+
+        say(f"{', '.join(side)}: in a second process")
+        with ProcessPoolExecutor(max_workers=1, mp_context=mp.get_context("spawn")) as pool:
+            fut = pool.submit(_side_lane, prep, options, side)
+            _run_specs(prep, options, names - set(side), objects, say, timings)
+            side_objects, side_timings = fut.result()
+        objects.update(side_objects)
+        timings.update(side_timings)
+    else:
+        _run_specs(prep, options, names, objects, say, timings)
+    sections: Dict[str, Any] = {}
+    for spec in todo:
+        result = objects.get(spec.name)
         if result is None:
+            objects.pop(spec.name, None)
             continue
-        objects[spec.name] = result
         for key, value in spec.sections(result).items():
             sections[key] = value
-    return {"sections": sections, "objects": objects}
+    return {"sections": sections, "objects": {a.name: objects[a.name] for a in todo if a.name in objects}}
 
 
 def scan_table(table: Table, options: ScanOptions = ScanOptions(), *,

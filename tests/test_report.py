@@ -141,3 +141,23 @@ def test_report_conforms_to_schema(two_runs):
     errors = validate(a, report_schema())
     assert errors == [], errors[:5]
     assert validate({"schema": "x"}, report_schema())  # and the validator can fail
+
+
+def test_schedule_does_not_change_results(two_runs, demo_small_path, tmp_path):
+    # The CLI runs used two processes (n_jobs=2); one process must give the same document.
+    import copy
+
+    from sitecheck.scan import ScanOptions, scan_file
+
+    res = scan_file(demo_small_path, site="hospital", outcome="admitted_hdu", covariates=["age", "sex"],
+                    identifiers=["attendance_id"], options=ScanOptions(seed=5, n_jobs=1))
+    from sitecheck.render import write_report
+
+    write_report(res, str(tmp_path))
+    with open(tmp_path / "report.json") as fh:
+        one = json.load(fh)
+    a = copy.deepcopy(two_runs[0])
+    for d in (a, one):
+        d["run"].pop("seconds"); d["run"]["options"].pop("n_jobs")
+        d["input"].pop("path")
+    assert json.dumps(a, sort_keys=True) == json.dumps(one, sort_keys=True)
