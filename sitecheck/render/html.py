@@ -40,6 +40,23 @@ def fmt(value: Any, digits: int = 3) -> str:
     return str(value)
 
 
+def num(value: Any, digits: int = 3) -> str:
+    """A number for a table cell: fixed decimals; "–" for missing; strings (such as
+    a suppressed count "<10" or "withheld") pass through."""
+    if value is None or isinstance(value, bool):
+        return "–"
+    if isinstance(value, (int, float)):
+        return f"{value:.{digits}f}"
+    return str(value)
+
+
+def pval(value: Any) -> str:
+    """A p-value for a table cell: "< 0.001" below 0.001, else three decimals."""
+    if value is None or isinstance(value, bool) or not isinstance(value, (int, float)):
+        return "–" if value is None or isinstance(value, bool) else str(value)
+    return "< 0.001" if value < 0.001 else f"{value:.3f}"
+
+
 def ci(pair: Any, digits: int = 3) -> str:
     if not pair or pair[0] is None:
         return "–"

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from typing import Any, Dict, List
 
-from ..html import esc, table_html
+from ..html import esc, pval, table_html
 from ..markdown import md_table
 from ..safety import suppress_count
 
@@ -59,10 +59,7 @@ def _small(f: Dict[str, Any], sites: Dict[str, Any], min_cell: int) -> bool:
     return False
 
 
-def _p(v) -> str:
-    if isinstance(v, (int, float)) and not isinstance(v, bool):
-        return "< 1e-300" if v == 0 else (f"{v:.2g}" if v < 0.001 else f"{v:.3f}")
-    return "–"
+_p = pval  # shared formatter (render/html.py)
 
 
 def _n_site(f: Dict[str, Any]):

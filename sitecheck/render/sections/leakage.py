@@ -3,18 +3,14 @@ from __future__ import annotations
 
 from typing import Any, Dict
 
-from ..html import ci, esc, fmt, table_html
+from ..html import ci, esc, fmt, table_html, num, pval
 from ..markdown import md_table
 
 
-def _num(v, d=3):
-    return f"{v:.{d}f}" if isinstance(v, (int, float)) and not isinstance(v, bool) else ("–" if v is None else str(v))
+_num = num  # shared formatter (render/html.py)
 
 
-def _p(v):
-    if isinstance(v, (int, float)) and not isinstance(v, bool):
-        return "<0.0001" if v < 1e-4 else f"{v:.4f}"
-    return "–" if v is None else str(v)
+_p = pval  # shared formatter (render/html.py)
 
 
 def _rows(doc: Dict[str, Any], limit: int = 25):

@@ -3,7 +3,7 @@ from __future__ import annotations
 
 from typing import Any, Dict, List
 
-from ..html import embed_image, esc, table_html
+from ..html import embed_image, esc, num, table_html
 from ..markdown import md_escape, md_table
 from ..safety import suppress_count
 
@@ -11,7 +11,7 @@ SPACE_NAMES = {"features": "feature space", "pca": "PCA", "tsne": "t-SNE", "umap
 
 
 def _num(v, d=2):
-    return f"{v:.{d}f}" if isinstance(v, (int, float)) and not isinstance(v, bool) else "–"
+    return num(v, d)
 
 
 def _ci(pair, d=2):

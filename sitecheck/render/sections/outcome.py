@@ -8,21 +8,17 @@ from __future__ import annotations
 
 from typing import Any, Dict, List, Optional
 
-from ..html import ci, esc, table_html
+from ..html import ci, esc, table_html, num, pval
 from ..markdown import md_escape, md_table
 from ..safety import suppress_count
 
 WITHHELD = "withheld (fewer rows than the small-cell threshold)"
 
 
-def _num(v: Any, d: int = 3) -> str:
-    return f"{v:.{d}f}" if isinstance(v, (int, float)) and not isinstance(v, bool) else "–"
+_num = num  # shared formatter (render/html.py)
 
 
-def _p(v: Any) -> str:
-    if not isinstance(v, (int, float)) or isinstance(v, bool):
-        return "–"
-    return f"{v:.2e}" if v < 1e-3 else f"{v:.3f}"
+_p = pval  # shared formatter (render/html.py)
 
 
 def _small(entry: Any, min_cell: int) -> bool:

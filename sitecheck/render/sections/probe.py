@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from typing import Any, Dict, List
 
-from ..html import ci, esc, table_html
+from ..html import ci, esc, table_html, num, pval
 from ..markdown import md_escape, md_table
 from ..safety import suppress_count
 
@@ -22,18 +22,10 @@ _WORDS = {
 }
 
 
-def _num(v, d=3):
-    if isinstance(v, bool) or v is None:
-        return "–"
-    if isinstance(v, (int, float)):
-        return f"{v:.{d}f}"
-    return str(v)
+_num = num  # shared formatter (render/html.py)
 
 
-def _p(v):
-    if v is None:
-        return "–"
-    return "< 0.001" if v < 0.001 else f"{v:.3f}"
+_p = pval  # shared formatter (render/html.py)
 
 
 def _small(n, min_cell) -> bool:
