@@ -22,7 +22,6 @@ import numpy as np
 from scipy import stats as sps
 from scipy.cluster import hierarchy
 from scipy.spatial.distance import squareform
-from sklearn.metrics import roc_auc_score
 
 from .errors import InputError
 from .prepare import Prepared
@@ -30,12 +29,15 @@ from .univariate import covariate_design, missing_by_site, univariate_gaps
 
 
 def macro_auc_scorer(estimator, X, y) -> float:
-    """Macro one-vs-rest ROC AUC of ``estimator`` on (X, y) (binary: plain AUC)."""
+    """Macro one-vs-rest ROC AUC of ``estimator`` on (X, y) (binary: plain AUC).
+
+    Computed with :func:`sitecheck.stats.macro_ovr_auc` (rank form, equal to
+    scikit-learn's ``roc_auc_score(multi_class="ovr")``, measured 3-5x faster; this
+    scorer runs once per permutation)."""
+    from .stats import macro_ovr_auc
+
     proba = estimator.predict_proba(X)
-    classes = getattr(estimator, "classes_", np.arange(proba.shape[1]))
-    if proba.shape[1] == 2:
-        return float(roc_auc_score(y, proba[:, 1]))
-    return float(roc_auc_score(y, proba, multi_class="ovr", average="macro", labels=classes))
+    return macro_ovr_auc(np.asarray(y), proba)
 
 
 def grouped_permutation_importance(estimator, X: np.ndarray, y: np.ndarray, groups: Sequence[Sequence[int]], *,
@@ -190,7 +192,7 @@ class LeakageResult:
         }
 
 
-def rank_leakage(prep: Prepared, crossfit, *, n_repeats: int = 5, max_rows_per_fold: int = 4000,
+def rank_leakage(prep: Prepared, crossfit, *, n_repeats: Optional[int] = None, max_rows_per_fold: int = 4000,
                  cluster_threshold: float = 0.7, panels: Optional[Dict[str, Sequence[str]]] = None,
                  missingness_probe=None, random_state: Optional[int] = None) -> LeakageResult:
     """Rank features by held-out permutation importance of the site probe.
@@ -200,7 +202,9 @@ def rank_leakage(prep: Prepared, crossfit, *, n_repeats: int = 5, max_rows_per_f
     prep : Prepared
     crossfit : CrossFit
         The probe's cross-fit (fitted model per fold and the folds), reused: no refit.
-    n_repeats : int, default 5
+    n_repeats : int, optional
+        Permutations per group and fold; default 5, or 3 with more than 8 sites
+        (each prediction of a many-class model costs about k times more).
     max_rows_per_fold : int, default 4000
         Held-out rows scored per fold (a site-stratified subset when there are more).
     cluster_threshold : float, default 0.7
@@ -217,6 +221,8 @@ def rank_leakage(prep: Prepared, crossfit, *, n_repeats: int = 5, max_rows_per_f
     """
     if not 0 < cluster_threshold <= 1:
         raise InputError(f"cluster_threshold must be in (0, 1], got {cluster_threshold!r}")
+    if n_repeats is None:
+        n_repeats = 5 if len(prep.site_labels) <= 8 else 3
     if n_repeats < 1:
         raise InputError(f"n_repeats must be at least 1, got {n_repeats!r}")
     seed = prep.seed if random_state is None else int(random_state)

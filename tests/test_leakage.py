@@ -38,6 +38,20 @@ def test_group_permutation_reveals_redundant_pair():
     assert pair > single.max() + 0.03 and single.min() < 0.5 * pair and pair > 0.1
 
 
+def test_scorer_equals_sklearn_roc_auc():
+    # Reference: sklearn.metrics.roc_auc_score (macro one-vs-rest; binary case plain AUC).
+    from sklearn.metrics import roc_auc_score
+
+    rng = np.random.default_rng(5)
+    X = rng.normal(size=(300, 3))
+    for k in (2, 4):
+        y = rng.integers(0, k, 300)
+        m = HistGradientBoostingClassifier(max_iter=10, random_state=0).fit(X, y)
+        p = m.predict_proba(X)
+        ref = roc_auc_score(y, p[:, 1]) if k == 2 else roc_auc_score(y, p, multi_class="ovr")
+        assert macro_auc_scorer(m, X, y) == pytest.approx(ref, abs=1e-12)
+
+
 def test_correlation_clusters():
     rng = np.random.default_rng(3)
     a = rng.normal(size=300)
