@@ -42,6 +42,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats as _st
 
+from .result import to_jsonable as _jsonable
 from .errors import InputError, ParameterError
 from .units import TEMPERATURE, candidate_factors, conversions_for, is_temperature
 
@@ -125,19 +126,6 @@ class FingerprintResult:
                 "covariates": list(self.covariates), "params": _jsonable(self.params)}
 
 
-def _jsonable(obj):
-    if isinstance(obj, dict):
-        return {str(k): _jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_jsonable(v) for v in obj]
-    if isinstance(obj, (np.integer,)):
-        return int(obj)
-    if isinstance(obj, (np.floating, float)):
-        v = float(obj)
-        return None if math.isnan(v) or math.isinf(v) else v
-    if isinstance(obj, np.bool_):
-        return bool(obj)
-    return obj
 
 
 def _r(x, digits: int = 6):
