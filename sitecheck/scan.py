@@ -81,8 +81,9 @@ def _versions() -> Dict[str, str]:
 
 
 def _run_specs(prep: Prepared, options: ScanOptions, names, objects: Dict[str, Any],
-               say: Progress, timings: Dict[str, float]) -> Dict[str, Any]:
-    """Run the named analyses in turn, single-threaded native pools; fill ``objects``."""
+               say: Progress, timings: Dict[str, float], threads: Optional[int] = 1) -> Dict[str, Any]:
+    """Run the named analyses in turn with native thread pools limited to ``threads``
+    (None: no limit); fill ``objects``."""
     from threadpoolctl import threadpool_limits
 
     from . import analyses
@@ -92,7 +93,7 @@ def _run_specs(prep: Prepared, options: ScanOptions, names, objects: Dict[str, A
             continue
         say(f"{spec.name}...")
         t0 = time.perf_counter()
-        with threadpool_limits(limits=1):
+        with threadpool_limits(limits=threads):
             objects[spec.name] = spec.run(prep, options, objects)
         timings[spec.name] = round(time.perf_counter() - t0, 3)
     return objects
@@ -138,11 +139,17 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
         with ProcessPoolExecutor(max_workers=1, mp_context=mp.get_context("spawn")) as pool:
             fut = pool.submit(_side_lane, prep, options, side)
             _run_specs(prep, options, names - set(side), objects, say, timings)
+            if not fut.done():
+                say(f"waiting for {', '.join(side)}")
             side_objects, side_timings = fut.result()
+        say(", ".join(f"{k} {v:.1f}s" for k, v in side_timings.items()) + " (second process)")
         objects.update(side_objects)
         timings.update(side_timings)
     else:
-        _run_specs(prep, options, names, objects, say, timings)
+        # Large tables stay in one process and may use every core; small ones keep one
+        # thread per analysis so that n_jobs=1 and n_jobs=2 give the same numbers.
+        threads = None if prep.n_total > PARALLEL_MAX_ROWS else 1
+        _run_specs(prep, options, names, objects, say, timings, threads=threads)
     sections: Dict[str, Any] = {}
     for spec in todo:
         result = objects.get(spec.name)
