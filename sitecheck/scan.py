@@ -116,8 +116,9 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
 
     With ``options.n_jobs > 1`` (and at most :data:`PARALLEL_MAX_ROWS` rows) the
     analyses that nothing else depends on and that depend on nothing (fingerprints,
-    maps, harmonisation) run in a second process while the probe, the leak ranking
-    and the outcome analysis run in this one. Every analysis runs with
+    maps, harmonisation) are queued for a second process while the probe, the leak
+    ranking and the outcome analysis run in this one; queued analyses that the
+    second process has not started when this one is free run here. Every analysis runs with
     single-threaded native thread pools and its own seeded generators, so the
     results are the same whatever the schedule; sections are assembled in
     registry order.
@@ -135,16 +136,33 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
         import multiprocessing as mp
         from concurrent.futures import ProcessPoolExecutor
 
-        say(f"{', '.join(side)}: in a second process")
+        say(f"{', '.join(side)}: queued for a second process")
+        import threading
+
+        queue, futures, lock = list(side), {}, threading.Lock()
         with ProcessPoolExecutor(max_workers=1, mp_context=mp.get_context("spawn")) as pool:
-            fut = pool.submit(_side_lane, prep, options, side)
+            def submit_next(_done=None):
+                # one task at a time, so that whatever has not started can still run here
+                with lock:
+                    if queue:
+                        name = queue.pop(0)
+                        futures[name] = pool.submit(_side_lane, prep, options, [name])
+                        futures[name].add_done_callback(submit_next)
+
+            submit_next()
             _run_specs(prep, options, names - set(side), objects, say, timings)
-            if not fut.done():
-                say(f"waiting for {', '.join(side)}")
-            side_objects, side_timings = fut.result()
-        say(", ".join(f"{k} {v:.1f}s" for k, v in side_timings.items()) + " (second process)")
-        objects.update(side_objects)
-        timings.update(side_timings)
+            with lock:  # list scheduling: what the second process has not taken runs here
+                local, queue[:] = list(queue), []
+            _run_specs(prep, options, set(local), objects, say, timings)
+            remote = [name for name in side if name in futures]
+            if any(not futures[name].done() for name in remote):
+                say(f"waiting for {', '.join(remote)}")
+            for name in remote:
+                side_objects, side_timings = futures[name].result()
+                objects.update(side_objects)
+                timings.update(side_timings)
+        if remote:
+            say(", ".join(f"{k} {timings[k]:.1f}s" for k in remote) + " (second process)")
     else:
         # Large tables stay in one process and may use every core; small ones keep one
         # thread per analysis so that n_jobs=1 and n_jobs=2 give the same numbers.
