@@ -122,3 +122,40 @@ def test_opt_grouped_ranking_finds_leaking_clusters_where_in_sample_fails():
     assert ref.importances_mean.max() < 0.05  # the failure mode the grouped, held-out ranking must avoid
     leaking = [c for c in res.clusters if c.score_ci[0] > 0]
     assert leaking, [(c.members, c.score, c.score_ci) for c in res.clusters]
+
+
+@pytest.mark.parametrize("k", [2, 4])
+def test_tree_wise_permutation_equals_full_prediction(k):
+    # Reference: sklearn.inspection.permutation_importance, which predicts every tree anew; the
+    # tree-wise path re-predicts only the trees that split on the permuted columns and must agree
+    # to the last bit. Categorical codes (moved first by scikit-learn's preprocessor), missing
+    # values and a column no tree uses are included.
+    rng = np.random.default_rng(k)
+    n = 900
+    y = rng.integers(0, k, n)
+    X = np.column_stack([rng.normal(size=n) + 0.8 * y, rng.integers(0, 4, n).astype(float),
+                         rng.normal(size=n), np.zeros(n), rng.normal(size=n)])
+    X[:, 1] = np.where(rng.random(n) < 0.5, y % 4, X[:, 1])
+    X[rng.random(X.shape) < 0.08] = np.nan
+    X[:, 3] = 1.0  # constant: no tree can split on it
+    cat = np.array([False, True, False, False, False])
+    model = HistGradientBoostingClassifier(max_iter=25, categorical_features=cat, random_state=0)
+    model.fit(X[:600], y[:600])
+    Xte, yte = X[600:], y[600:]
+    from threadpoolctl import threadpool_limits
+
+    from sitecheck.leakage import _TreeParts
+
+    assert _TreeParts.build(model, Xte) is not None  # the tree-wise path is the one under test
+    with threadpool_limits(1, user_api="openmp"):
+        ref = permutation_importance(model, Xte, yte, scoring=macro_auc_scorer, n_repeats=3, random_state=5)
+    groups = [[0], [1], [2], [3], [4], [0, 1]]
+    base, drops = grouped_permutation_importance(model, Xte, yte, groups, n_repeats=3, random_state=5)
+    # the same call through the generic path (any other scorer predicts in full)
+    base_full, drops_full = grouped_permutation_importance(model, Xte, yte, groups, n_repeats=3, random_state=5,
+                                                           scoring=lambda e, X_, y_: macro_auc_scorer(e, X_, y_))
+    assert base == base_full
+    assert np.array_equal(drops, drops_full)
+    assert np.array_equal(drops[:5], ref.importances)
+    assert np.all(drops[3] == 0.0)
+    assert drops[0].mean() > 0.05 and drops[5].mean() >= drops[0].mean() - 0.02
