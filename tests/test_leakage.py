@@ -159,3 +159,33 @@ def test_tree_wise_permutation_equals_full_prediction(k):
     assert np.array_equal(drops[:5], ref.importances)
     assert np.all(drops[3] == 0.0)
     assert drops[0].mean() > 0.05 and drops[5].mean() >= drops[0].mean() - 0.02
+
+
+def test_clusters_from_a_row_subset_match_all_rows():
+    # Reference: pandas.DataFrame.corr(method="spearman") on every row, cut at the same threshold.
+    # The scan estimates the correlations on a site-stratified subset of 10,000 rows.
+    import pandas as pd
+
+    from sitecheck.intake import frame_to_raw
+    from sitecheck.roles import RoleSpec, assign_roles
+
+    rng = np.random.default_rng(8)
+    n = 30_000
+    site = rng.integers(0, 3, n)
+    a, b = rng.normal(size=n), rng.normal(size=n)
+    cols = {"a1": a, "a2": a + rng.normal(0, 0.3, n), "a3": np.exp(a + rng.normal(0, 0.2, n)),
+            "b1": b + 0.5 * site, "b2": -b + rng.normal(0, 0.4, n), "c": rng.normal(size=n),
+            "d": 0.6 * a + rng.normal(size=n)}   # |rho| about 0.5 with a1: stays single
+    frame = pd.DataFrame(cols)
+    frame.loc[rng.random(n) < 0.05, "a2"] = np.nan
+    frame.insert(0, "hospital", np.array(["North", "East", "West"])[site])
+    table = assign_roles(frame_to_raw(frame), RoleSpec(site="hospital"))
+    prep, fit, res = _leak_on(table, n_repeats=1)
+    assert 9_990 <= res.n_rows_clustered <= 10_000 and prep.n_used == n  # proportional shares are floored
+    ref = correlation_clusters(prep.X, prep.features.categorical, threshold=0.7)
+    got = {e.feature: e.cluster for e in res.entries}
+    names = list(prep.features.names)
+    for i in range(len(names)):
+        for j in range(len(names)):
+            assert (got[names[i]] == got[names[j]]) == (ref[i] == ref[j]), (names[i], names[j])
+    assert got["a1"] == got["a2"] == got["a3"] and got["b1"] == got["b2"] and got["a1"] != got["d"]
