@@ -33,7 +33,7 @@ class ScanOptions:
     ----------
     seed : int, default 0
     folds : int, default 5
-    max_rows : int, default 50000
+    max_rows : int, default 100000
         Cap on the site-stratified subsample used for modelling.
     map_rows : int, default 10000
         Cap on the subsample drawn for the 2-D maps.
@@ -54,7 +54,7 @@ class ScanOptions:
 
     seed: int = 0
     folds: int = 5
-    max_rows: int = 50_000
+    max_rows: int = 100_000
     map_rows: int = 10_000
     min_site_rows: int = 20
     min_cell: int = 10
@@ -125,6 +125,13 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
     """
     from . import analyses
 
+    import multiprocessing as mp
+
+    if getattr(mp.current_process(), "_inheriting", False):
+        # This is the spawned second process re-running a script that scans at import time:
+        # stop at once, so the parent runs the queued analyses itself.
+        raise RuntimeError("sitecheck: a scan was started while a spawned worker process was starting; "
+                           "put the script's scan under `if __name__ == \"__main__\":`")
     say = progress or (lambda msg: None)
     timings = timings if timings is not None else {}
     todo = [a for a in analyses.REGISTRY if options.wants(a.name) and a.applies(prep)]
@@ -133,21 +140,27 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
     side = [a.name for a in todo if not a.needs and a.name not in needed]
     objects: Dict[str, Any] = {}
     if int(options.n_jobs) > 1 and side and len(side) < len(todo) and prep.n_total <= PARALLEL_MAX_ROWS:
-        import multiprocessing as mp
         from concurrent.futures import ProcessPoolExecutor
 
         say(f"{', '.join(side)}: queued for a second process")
         import threading
+        from concurrent.futures.process import BrokenProcessPool
 
-        queue, futures, lock = list(side), {}, threading.Lock()
+        queue, futures, lock, broken = list(side), {}, threading.RLock(), []
         with ProcessPoolExecutor(max_workers=1, mp_context=mp.get_context("spawn")) as pool:
             def submit_next(_done=None):
                 # one task at a time, so that whatever has not started can still run here
                 with lock:
-                    if queue:
-                        name = queue.pop(0)
-                        futures[name] = pool.submit(_side_lane, prep, options, [name])
-                        futures[name].add_done_callback(submit_next)
+                    if queue and not broken:
+                        name = queue[0]
+                        try:
+                            future = pool.submit(_side_lane, prep, options, [name])
+                        except (BrokenProcessPool, RuntimeError):
+                            broken.append(name)
+                            return
+                        queue.pop(0)
+                        futures[name] = future
+                        future.add_done_callback(submit_next)
 
             submit_next()
             _run_specs(prep, options, names - set(side), objects, say, timings)
@@ -157,10 +170,22 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
             remote = [name for name in side if name in futures]
             if any(not futures[name].done() for name in remote):
                 say(f"waiting for {', '.join(remote)}")
+            lost = []
             for name in remote:
-                side_objects, side_timings = futures[name].result()
+                try:
+                    side_objects, side_timings = futures[name].result()
+                except BrokenProcessPool:
+                    lost.append(name)
+                    continue
                 objects.update(side_objects)
                 timings.update(side_timings)
+        if lost:
+            # The second process could not start or died (for instance a script that calls the
+            # scan at import time, without an ``if __name__ == "__main__":`` guard, is run again
+            # by the spawned process): its analyses run here instead, with the same results.
+            say(f"the second process stopped; running {', '.join(lost)} here")
+            _run_specs(prep, options, set(lost), objects, say, timings)
+            remote = [name for name in remote if name not in lost]
         if remote:
             say(", ".join(f"{k} {timings[k]:.1f}s" for k in remote) + " (second process)")
     else:

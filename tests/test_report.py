@@ -161,3 +161,30 @@ def test_schedule_does_not_change_results(two_runs, demo_small_path, tmp_path):
         d["run"].pop("seconds"); d["run"]["options"].pop("n_jobs")
         d["input"].pop("path")
     assert json.dumps(a, sort_keys=True) == json.dumps(one, sort_keys=True)
+
+
+def test_script_without_main_guard_still_finishes(tmp_path):
+    # A script that scans at import time is run again by the spawned second process, which then
+    # cannot start its own; the scan must run the queued analyses itself and give the same numbers.
+    import subprocess
+    import sys
+
+    script = tmp_path / "unguarded.py"
+    script.write_text(
+        "import json, numpy as np, pandas as pd\n"
+        "from sitecheck.scan import ScanOptions, scan_frame\n"
+        "rng = np.random.default_rng(0)\n"
+        "site = rng.integers(0, 2, 300)\n"
+        "frame = pd.DataFrame({'hospital': np.where(site == 1, 'Hilltop', 'Riverside'),\n"
+        "                      'sodium': rng.normal(140, 3, 300) + 2 * site, 'urea': rng.normal(5, 1, 300)})\n"
+        "doc = {}\n"
+        "for jobs in (2, 1):\n"
+        "    r = scan_frame(frame, site='hospital', options=ScanOptions(n_jobs=jobs, analyses=('probe', 'leakage',\n"
+        "                   'fingerprints')))\n"
+        "    d = r.to_dict(); d['run'].pop('seconds'); d['run']['options'].pop('n_jobs')\n"
+        "    doc[jobs] = json.dumps(d, sort_keys=True, default=str)\n"
+        "print('SAME' if doc[1] == doc[2] else 'DIFFERENT')\n", encoding="utf-8")
+    res = subprocess.run([sys.executable, str(script)], capture_output=True, text=True, timeout=300,
+                         cwd=str(tmp_path))
+    assert res.returncode == 0, res.stderr[-2000:]
+    assert res.stdout.strip().splitlines()[-1] == "SAME"
