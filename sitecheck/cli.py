@@ -79,7 +79,7 @@ def _common_scan_options(f):
         click.option("--out", "out_dir", default="sitecheck-report", show_default=True, type=click.Path(file_okay=False), help="Output directory."),
         click.option("--seed", type=int, default=None, help="Random seed (default 0)."),
         click.option("--folds", type=click.IntRange(2, 20), default=None, help="Cross-validation folds (default 5)."),
-        click.option("--max-rows", type=click.IntRange(100), default=None, help="Subsample cap for modelling (default 50000)."),
+        click.option("--max-rows", type=click.IntRange(100), default=None, help="Subsample cap for modelling (default 100000)."),
         click.option("--map-rows", type=click.IntRange(100), default=None, help="Subsample cap for the 2-D maps (default 10000)."),
         click.option("--min-site-rows", type=click.IntRange(1), default=None, help="Sites with fewer rows are left out (default 20)."),
         click.option("--min-cell", type=click.IntRange(1), default=None, help="Small-cell threshold for shared outputs (default 10)."),

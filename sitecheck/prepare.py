@@ -150,7 +150,7 @@ def stratified_subsample(labels: np.ndarray, cap: int, rng: np.random.Generator)
     return np.sort(np.concatenate(picked))
 
 
-def prepare(table: Table, *, n_splits: int = 5, max_rows: int = 50_000, random_state: int = 0) -> Prepared:
+def prepare(table: Table, *, n_splits: int = 5, max_rows: int = 100_000, random_state: int = 0) -> Prepared:
     """Encode, subsample and fold a validated table.
 
     Parameters
@@ -159,7 +159,7 @@ def prepare(table: Table, *, n_splits: int = 5, max_rows: int = 50_000, random_s
     n_splits : int, default 5
         Stratified folds (by site). Reduced to the smallest site's row count
         when that is smaller, never below 2.
-    max_rows : int, default 50000
+    max_rows : int, default 100000
         Above this many rows a site-stratified subsample is used for modelling.
     random_state : int, default 0
 

@@ -3,7 +3,7 @@
 Invented data: four sites, two covariates and a group column, 50 numeric
 features of which three shift by site and five drive a binary outcome (one
 of them both: a shortcut). The table goes through roles and prepare (the
-default 50,000-row modelling subsample), then :func:`sitecheck.outcome.outcome_risk`
+default 100,000-row modelling subsample), then :func:`sitecheck.outcome.outcome_risk`
 runs with its defaults. Prints the seconds; exits 1 above the goal.
 Run: ``python tests/benchmarks/bench_outcome.py``.
 """
