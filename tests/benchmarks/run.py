@@ -9,12 +9,15 @@ measured for each alone:
     HistGradientBoostingClassifier (5 folds), in-sample permutation_importance with 5 repeats,
     t-SNE and UMAP on all rows.
 
-It prints each stage's time, the ratio (b)/(a), peak resident memory, and whether both reach
-the same conclusions (the recipe's AUC inside sitecheck's interval; the same top-5 leakers).
+It prints each stage's time, the ratio (b)/(a) (also without the recipe's maps), peak resident
+memory, and whether both reach the same conclusions (the recipe's AUC inside sitecheck's interval;
+the same top-5 leakers). The recipe is not run above ``--recipe-max-rows`` rows (default 200,000:
+its in-sample permutation importance alone grows with every row); a table of 500,000 rows or more
+is written as Parquet, smaller ones as CSV.
 
 Usage::
 
-    python tests/benchmarks/run.py                 # the targets of the contributor guide
+    python tests/benchmarks/run.py                 # every size of the contributor guide's table
     python tests/benchmarks/run.py --sizes 10000x20x4 --no-recipe-maps
     python tests/benchmarks/run.py --markdown      # print the results table for DEVELOPERS.md
 
@@ -34,7 +37,8 @@ import time
 import numpy as np
 import pandas as pd
 
-DEFAULT_SIZES = ["10000x20x4", "100000x50x4", "9000x20x30"]
+#: rows x features x sites: growth with rows (10k, 100k, 1M), features (20, 50, 100, 200) and sites (4, 30).
+DEFAULT_SIZES = ["10000x20x4", "10000x200x4", "9000x20x30", "100000x50x4", "1000000x100x4"]
 LEAKERS = 5
 
 
@@ -118,12 +122,19 @@ def run_child(kind: str, path: str, out: str, maps: bool) -> dict:
     return json.loads(res.stdout.strip().splitlines()[-1])
 
 
+def _f(v) -> str:
+    return "not run" if v is None else f"{v:.1f}"
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--sizes", nargs="*", default=DEFAULT_SIZES, help="ROWSxFEATURESxSITES")
     ap.add_argument("--no-recipe", action="store_true", help="time sitecheck only")
     ap.add_argument("--no-recipe-maps", action="store_true", help="leave t-SNE/UMAP out of the recipe")
+    ap.add_argument("--recipe-max-rows", type=int, default=200_000, help="run the recipe up to this many rows")
     ap.add_argument("--markdown", action="store_true")
+    ap.add_argument("--save", help="append each size's result (one JSON line) to this file")
+    ap.add_argument("--table-from", help="print the markdown table of the results saved in this file, run nothing")
     ap.add_argument("--child", choices=["sitecheck", "recipe"])
     ap.add_argument("--path")
     ap.add_argument("--outdir")
@@ -131,6 +142,10 @@ def main(argv=None) -> int:
     if a.child:
         out = child_sitecheck(a.path, a.outdir) if a.child == "sitecheck" else child_recipe(a.path, not a.no_recipe_maps)
         print(json.dumps(out))
+        return 0
+    if a.table_from:
+        with open(a.table_from, encoding="utf-8") as fh:
+            print_markdown([json.loads(line) for line in fh if line.strip()])
         return 0
     rows = []
     for size in a.sizes:
@@ -142,27 +157,50 @@ def main(argv=None) -> int:
             (df.to_parquet if path.endswith(".parquet") else lambda f: df.to_csv(f, index=False))(path)
             del df
             sc = run_child("sitecheck", path, os.path.join(tmp, "out"), True)
-            rc = None if a.no_recipe else run_child("recipe", path, tmp, not a.no_recipe_maps)
+            rc = None if a.no_recipe or n > a.recipe_max_rows else run_child("recipe", path, tmp,
+                                                                             not a.no_recipe_maps)
         truth = {f"lab_{j:03d}" for j in range(LEAKERS)}
-        row = {"size": size, "sitecheck_s": sc["seconds"], "sitecheck_peak_mb": sc["peak_mb"], "table_mb": table_mb,
+        row = {"size": size, "cores": os.cpu_count(), "date": time.strftime("%Y-%m-%d"), "sitecheck_s": sc["seconds"], "sitecheck_peak_mb": sc["peak_mb"], "table_mb": table_mb,
                "auc": sc["auc"], "auc_ci": sc["auc_ci"], "top5_true": len(truth & set(sc["top5"])),
                "stages": sc["stages"]}
         if rc:
             lo, hi = sc["auc_ci"]
+            no_maps = rc["seconds"] - rc["stages"].get("tsne", 0.0) - rc["stages"].get("umap", 0.0)
             row.update({"recipe_s": rc["seconds"], "recipe_stages": rc["stages"], "ratio": rc["seconds"] / sc["seconds"],
+                        "recipe_s_no_maps": no_maps, "ratio_no_maps": no_maps / sc["seconds"],
                         "recipe_auc": rc["auc"], "same_auc": lo <= rc["auc"] <= hi,
                         "same_top5": set(rc["top5"]) == set(sc["top5"]), "recipe_peak_mb": rc["peak_mb"]})
         rows.append(row)
         print(json.dumps(row), flush=True)
+        if a.save:
+            with open(a.save, "a", encoding="utf-8") as fh:
+                fh.write(json.dumps(row) + "\n")
     if a.markdown:
-        print(f"\nMachine: {os.cpu_count()} cores.\n")
-        print("| rows x features x sites | sitecheck s | recipe s | ratio | peak MB (table MB) | AUC [CI] | recipe AUC in CI | same top-5 |")
-        print("|---|---|---|---|---|---|---|---|")
-        for r in rows:
-            print(f"| {r['size']} | {r['sitecheck_s']:.1f} | {r.get('recipe_s', float('nan')):.1f} | "
-                  f"{r.get('ratio', float('nan')):.1f} | {r['sitecheck_peak_mb']:.0f} ({r['table_mb']:.0f}) | "
-                  f"{r['auc']:.3f} [{r['auc_ci'][0]:.3f}, {r['auc_ci'][1]:.3f}] | {r.get('same_auc', '–')} | {r.get('same_top5', '–')} |")
+        print_markdown(rows)
     return 0
+
+
+def print_markdown(rows) -> None:
+    """The results table of the contributor guide, then each size's stages."""
+    print(f"\nMachine: {rows[0].get('cores', os.cpu_count()) if rows else os.cpu_count()} cores.\n")
+    print("| rows x features x sites | sitecheck s | recipe s | ratio | recipe s without maps | ratio without maps "
+          "| peak MB (table MB) | AUC [95% CI] | recipe AUC (in CI) | same top-5 | injected in top-5 |")
+    print("|---|---|---|---|---|---|---|---|---|---|---|")
+    na = "not run"
+    for r in rows:
+        rec = f"{r['recipe_auc']:.3f} ({r['same_auc']})" if "recipe_auc" in r else na
+        print(f"| {r['size']} | {r['sitecheck_s']:.1f} | {_f(r.get('recipe_s'))} | {_f(r.get('ratio'))} | "
+              f"{_f(r.get('recipe_s_no_maps'))} | {_f(r.get('ratio_no_maps'))} | "
+              f"{r['sitecheck_peak_mb']:.0f} ({r['table_mb']:.0f}) | "
+              f"{r['auc']:.3f} [{r['auc_ci'][0]:.3f}, {r['auc_ci'][1]:.3f}] | {rec} | {r.get('same_top5', na)} | "
+              f"{r['top5_true']}/5 |")
+    print()
+    for r in rows:
+        st = ", ".join(f"{k} {v:.1f}" for k, v in r["stages"].items() if k != "total")
+        line = f"- {r['size']}: sitecheck stages (s): {st}"
+        if "recipe_stages" in r:
+            line += "; recipe stages (s): " + ", ".join(f"{k} {v:.1f}" for k, v in r["recipe_stages"].items())
+        print(line)
 
 
 if __name__ == "__main__":
