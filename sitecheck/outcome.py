@@ -45,11 +45,11 @@ from typing import Any, Dict, List, Optional, Sequence, Tuple
 import numpy as np
 from scipy import stats as sps
 from sklearn.base import clone
-from sklearn.inspection import permutation_importance
 from sklearn.metrics import roc_curve
 from sklearn.model_selection import StratifiedKFold
 
 from .errors import InputError
+from .leakage import grouped_permutation_importance
 from .models import make_booster
 from .prepare import Prepared
 from .probe import cross_fit
@@ -738,15 +738,17 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
     imp = np.zeros((len(folds), X.shape[1]))
     n_imp = 0
     sub_rng = np.random.default_rng([seed, RNG_STREAM, 1])
+    singletons = [[j] for j in range(X.shape[1])]
     for f, ((tr, te), m) in enumerate(zip(folds, fold_models)):
         rows = te
         if len(rows) > importance_rows:
             rows = np.sort(sub_rng.choice(rows, size=importance_rows, replace=False))
         if y[rows].min() == y[rows].max():
             rows = te
-        r = permutation_importance(m, X[rows], y[rows], scoring="roc_auc", n_repeats=n_repeats,
-                                   random_state=seed + f, n_jobs=1)
-        imp[f] = r.importances_mean
+        # scikit-learn's permutation scheme with the probe's tree-wise re-prediction (equal results)
+        _, drops = grouped_permutation_importance(m, X[rows], y[rows].astype(np.int64), singletons,
+                                                  n_repeats=n_repeats, random_state=seed + f)
+        imp[f] = drops.mean(axis=1)
         n_imp += int(len(rows))
     mean_imp = imp.mean(axis=0)
     if len(folds) > 1:

@@ -157,6 +157,11 @@ def test_tree_wise_permutation_equals_full_prediction(k):
     assert base == base_full
     assert np.array_equal(drops, drops_full)
     assert np.array_equal(drops[:5], ref.importances)
+    if k == 2:
+        # the outcome analysis replaced permutation_importance(scoring="roc_auc") with this function
+        with threadpool_limits(1, user_api="openmp"):
+            ref_roc = permutation_importance(model, Xte, yte, scoring="roc_auc", n_repeats=3, random_state=5)
+        assert np.allclose(drops[:5], ref_roc.importances, atol=1e-12)
     assert np.all(drops[3] == 0.0)
     assert drops[0].mean() > 0.05 and drops[5].mean() >= drops[0].mean() - 0.02
 
