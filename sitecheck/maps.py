@@ -18,7 +18,7 @@ No plotting here: the coordinates are kept on the result (not serialised) for
 from __future__ import annotations
 
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any, Dict, Optional, Sequence, Tuple
 
 import numpy as np
@@ -33,6 +33,8 @@ METHODS: Tuple[str, ...] = ("pca", "tsne", "umap")
 
 #: Stream of :meth:`Prepared.rng` used by this module (keeps analyses independent).
 _STREAM = 5
+#: Spaces whose mixing is scored, in report order: the preprocessed design, then each map.
+_SPACES: Tuple[str, ...] = ("features",) + METHODS
 
 PREPROCESSING = ("numeric columns: median imputation with a missing-value indicator for every column that has "
                  "missing values, then robust scaling (median removed, divided by the interquartile range); "
@@ -424,7 +426,7 @@ class MapsResult:
 
 def compute_maps(prep: Prepared, *, max_rows: int = 10_000, methods: Sequence[str] = METHODS,
                  perplexity: float = 30.0, n_boot: int = 200, tsne_max_iter: int = 350,
-                 umap_n_epochs: int = 200, tsne_threads: Optional[int] = 1,
+                 umap_n_epochs: int = 200, tsne_threads: Optional[int] = 1, score_design: bool = True,
                  random_state: Optional[int] = None) -> MapsResult:
     """Embed a site-stratified subsample and score how well the sites mix.
 
@@ -446,6 +448,9 @@ def compute_maps(prep: Prepared, *, max_rows: int = 10_000, methods: Sequence[st
         OpenMP threads for t-SNE. One thread was measured far faster than two
         on a busy 2-core machine (threads spin while waiting) and at most about
         1.5x slower on an idle one; the result does not depend on it.
+    score_design : bool, default True
+        Also score the mixing in the preprocessed design itself (space ``"features"``).
+        A part computed to be merged into another (:func:`merge_maps`) leaves it out.
     random_state : int or None
         Default: ``prep.seed``.
 
@@ -472,13 +477,15 @@ def compute_maps(prep: Prepared, *, max_rows: int = 10_000, methods: Sequence[st
                              umap_n_epochs=umap_n_epochs, perplexity=perplexity, tsne_threads=tsne_threads)
     n = len(idx)
     perp = float(min(perplexity, max(1.5, (n - 1) / 3.0)))
-    spaces = {"features": Z, **coords}
+    spaces = {"features": Z, **coords} if score_design else dict(coords)
     mixing: Dict[str, MixingSummary] = {}
     sil: Dict[str, Dict[str, Any]] = {}
     for space, M in spaces.items():
+        # one generator per space, so that maps computed apart and merged give the same numbers
+        space_rng = np.random.default_rng([seed, _STREAM, _SPACES.index(space)])
         values = lisi(M, site, perplexity=perp)
-        mixing[space] = summarise_lisi(values, site, prep.site_labels, n_boot=n_boot, random_state=rng)
-        sil[space] = silhouette_by_site(M, site, prep.site_labels, n_boot=n_boot, random_state=rng)
+        mixing[space] = summarise_lisi(values, site, prep.site_labels, n_boot=n_boot, random_state=space_rng)
+        sil[space] = silhouette_by_site(M, site, prep.site_labels, n_boot=n_boot, random_state=space_rng)
     colourings: Dict[str, Tuple[str, np.ndarray]] = {}
     if prep.outcome is not None:
         y = prep.outcome[idx]
@@ -501,3 +508,26 @@ def compute_maps(prep: Prepared, *, max_rows: int = 10_000, methods: Sequence[st
         silhouette=sil, site_labels=tuple(prep.site_labels), coords=coords, site=site,
         colourings=colourings, rows=prep.rows[idx],
     )
+
+
+def merge_maps(first: MapsResult, second: MapsResult) -> MapsResult:
+    """One result from maps of the same rows computed apart (for instance t-SNE in one
+    process, PCA and UMAP in another): equal to computing them together.
+
+    Raises
+    ------
+    InputError
+        When the two were drawn from different rows or share a map.
+    """
+    if not np.array_equal(first.rows, second.rows) or first.cap != second.cap:
+        raise InputError("maps computed on different rows cannot be merged")
+    if set(first.methods) & set(second.methods):
+        raise InputError(f"both results hold the map(s) {sorted(set(first.methods) & set(second.methods))}")
+
+    def ordered(a: Dict[str, Any], b: Dict[str, Any]) -> Dict[str, Any]:
+        both = {**a, **b}
+        return {k: both[k] for k in _SPACES if k in both}
+
+    coords = ordered(first.coords, second.coords)
+    return replace(first, methods=tuple(coords), coords=coords, settings=ordered(first.settings, second.settings),
+                   mixing=ordered(first.mixing, second.mixing), silhouette=ordered(first.silhouette, second.silhouette))

@@ -116,16 +116,17 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
 
     With ``options.n_jobs > 1`` (and at most :data:`PARALLEL_MAX_ROWS` rows) the
     analyses that nothing else depends on and that depend on nothing (fingerprints,
-    maps, harmonisation) are queued for a second process while the probe, the leak
-    ranking and the outcome analysis run in this one; queued analyses that the
-    second process has not started when this one is free run here. Every analysis runs with
-    single-threaded native thread pools and its own seeded generators, so the
-    results are the same whatever the schedule; sections are assembled in
+    PCA and UMAP maps, the t-SNE map, harmonisation) are queued, longest first
+    (``Analysis.priority``), for a second process while the probe, the leak ranking
+    and the outcome analysis run in this one; when this one is free it takes the next
+    queued task too, one at a time. Every analysis runs with single-threaded native
+    thread pools and its own seeded generators, so the results are the same whatever
+    the schedule; parts are merged (``Analysis.part_of``) and sections assembled in
     registry order.
     """
-    from . import analyses
-
     import multiprocessing as mp
+
+    from . import analyses
 
     if getattr(mp.current_process(), "_inheriting", False):
         # This is the spawned second process re-running a script that scans at import time:
@@ -134,10 +135,10 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
                            "put the script's scan under `if __name__ == \"__main__\":`")
     say = progress or (lambda msg: None)
     timings = timings if timings is not None else {}
-    todo = [a for a in analyses.REGISTRY if options.wants(a.name) and a.applies(prep)]
+    todo = [a for a in analyses.REGISTRY if options.wants(a.part_of or a.name) and a.applies(prep)]
     names = {a.name for a in todo}
     needed = {d for a in todo for d in a.needs}
-    side = [a.name for a in todo if not a.needs and a.name not in needed]
+    side = [a.name for a in sorted(todo, key=lambda a: -a.priority) if not a.needs and a.name not in needed]
     objects: Dict[str, Any] = {}
     if int(options.n_jobs) > 1 and side and len(side) < len(todo) and prep.n_total <= PARALLEL_MAX_ROWS:
         from concurrent.futures import ProcessPoolExecutor
@@ -164,9 +165,12 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
 
             submit_next()
             _run_specs(prep, options, names - set(side), objects, say, timings)
-            with lock:  # list scheduling: what the second process has not taken runs here
-                local, queue[:] = list(queue), []
-            _run_specs(prep, options, set(local), objects, say, timings)
+            while True:  # list scheduling: both processes take the next queued task when free
+                with lock:
+                    if not queue:
+                        break
+                    name = queue.pop(0)
+                _run_specs(prep, options, {name}, objects, say, timings)
             remote = [name for name in side if name in futures]
             if any(not futures[name].done() for name in remote):
                 say(f"waiting for {', '.join(remote)}")
@@ -193,6 +197,11 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
         # thread per analysis so that n_jobs=1 and n_jobs=2 give the same numbers.
         threads = None if prep.n_total > PARALLEL_MAX_ROWS else 1
         _run_specs(prep, options, names, objects, say, timings, threads=threads)
+    for spec in todo:  # fold parts computed apart into their analysis
+        if spec.part_of is not None and spec.name in objects:
+            part, whole = objects.pop(spec.name), objects.get(spec.part_of)
+            if whole is not None and part is not None:
+                objects[spec.part_of] = spec.merge(whole, part)
     sections: Dict[str, Any] = {}
     for spec in todo:
         result = objects.get(spec.name)

@@ -231,3 +231,18 @@ def test_palette_fallback_distinct_pairs():
     assert len(set(OKABE_ITO)) == 8
     assert len({style(i) for i in range(80)}) == 80
     assert len({style(i)[0] for i in range(8)}) == 8
+
+
+def test_maps_computed_apart_and_merged_equal_maps_computed_together(demo_prepared):
+    # Consistency: the scan computes t-SNE apart from PCA and UMAP (two processes) and merges.
+    from sitecheck.maps import compute_maps, merge_maps
+
+    kw = dict(max_rows=600, n_boot=50, tsne_max_iter=250, umap_n_epochs=50, random_state=3)
+    together = compute_maps(demo_prepared, **kw)
+    merged = merge_maps(compute_maps(demo_prepared, methods=("pca", "umap"), **kw),
+                        compute_maps(demo_prepared, methods=("tsne",), score_design=False, **kw))
+    assert json.dumps(merged.to_dict(), sort_keys=False) == json.dumps(together.to_dict(), sort_keys=False)
+    for m in ("pca", "tsne", "umap"):
+        assert np.array_equal(merged.coords[m], together.coords[m])
+    with pytest.raises(InputError):
+        merge_maps(together, together)  # the same map twice
