@@ -54,14 +54,14 @@ class _TreeParts:
     caller then predicts in full).
     """
 
-    def __init__(self, estimator, Xpre, colmap, parts, trees, n_threads):
+    def __init__(self, estimator, Xpre, colmap, parts, trees, n_threads, bitsets):
         self.estimator = estimator
         self.Xpre = Xpre            # rows as the tree predictors see them (validated, remapped)
         self.colmap = colmap        # original column -> column of Xpre
         self.parts = parts          # (n_iter, n, k) output of each tree on the unpermuted rows
         self.trees = trees          # list of (iteration, class, predictor, columns of Xpre it splits on)
         self.n_threads = n_threads
-        self._bitsets = estimator._bin_mapper.make_known_categories_bitsets()
+        self._bitsets = bitsets     # (known category bitsets, feature index map) of the predictors
 
     @classmethod
     def build(cls, estimator, X: np.ndarray):
@@ -86,7 +86,7 @@ class _TreeParts:
                     nodes = predictor.nodes
                     split_on = np.unique(nodes["feature_idx"][nodes["is_leaf"] == 0])
                     trees.append((it, c, predictor, frozenset(int(v) for v in split_on)))
-            obj = cls(estimator, Xpre, colmap, parts, trees, n_threads)
+            obj = cls(estimator, Xpre, colmap, parts, trees, n_threads, (bitsets, f_idx_map))
             # The sum must reproduce predict_proba exactly, or the fast path is not used.
             if not np.array_equal(obj.proba(parts), estimator.predict_proba(X)):
                 return None
