@@ -33,6 +33,61 @@ class Analysis:
     #: Order of the queue for the second process (higher first): the longest tasks go first,
     #: so that the short ones fill the gaps (longest-processing-time-first list scheduling).
     priority: int = 0
+    #: The ``report.json`` sections this analysis fills (named in a failure record).
+    fills: tuple = ()
+    #: Analyses in ``needs`` whose failure does not stop this one: it runs without their
+    #: result and says so in its own section (the outcome analysis ranks site leakers by
+    #: its own univariate association when the leak ranking failed).
+    falls_back_without: tuple = ()
+
+
+@dataclass(frozen=True)
+class AnalysisFailure:
+    """An analysis that raised, or that did not run because one it needs failed.
+
+    A scan records one per analysis (``report.json`` key ``failed_analyses``)
+    and keeps every other analysis's sections.
+
+    Attributes
+    ----------
+    analysis : str
+        Registry name of the analysis.
+    sections : tuple of str
+        The ``report.json`` sections it would have filled (absent from the report).
+    status : {"failed", "not_run"}
+        ``failed``: it raised; ``not_run``: an analysis it needs failed.
+    error : str or None
+        Exception type (``None`` when not run).
+    message : str
+        One line: the exception's first line, or why it did not run.
+    process : {"main", "second"}
+        The process it ran in.
+    """
+
+    analysis: str
+    sections: tuple
+    status: str
+    error: Optional[str]
+    message: str
+    process: str = "main"
+
+    @classmethod
+    def from_exception(cls, spec: "Analysis", exc: BaseException, *, process: str = "main") -> "AnalysisFailure":
+        text = str(exc).strip()
+        line = text.splitlines()[0].strip() if text else ""
+        if len(line) > 300:
+            line = line[:297] + "..."
+        return cls(analysis=spec.name, sections=tuple(spec.fills), status="failed", error=type(exc).__name__,
+                   message=line or type(exc).__name__, process=process)
+
+    @classmethod
+    def blocked(cls, spec: "Analysis", needed: str, *, process: str = "main") -> "AnalysisFailure":
+        return cls(analysis=spec.name, sections=tuple(spec.fills), status="not_run", error=None,
+                   message=f"not run: it needs the {needed} analysis, which failed", process=process)
+
+    def to_dict(self) -> Dict[str, Any]:
+        return {"analysis": self.analysis, "sections": list(self.sections), "status": self.status,
+                "error": self.error, "message": self.message, "process": self.process}
 
 
 def _run_probe(prep, options, objects):
@@ -134,15 +189,20 @@ def _maps_applies(prep) -> bool:
 #: (objects["probe"].crossfit); the outcome analysis reads the leak ranking; the t-SNE map
 #: is merged into the maps' result.
 REGISTRY: List[Analysis] = [
-    Analysis("probe", _run_probe, sections=_probe_sections),
-    Analysis("leakage", _run_leakage, sections=lambda result: result.sections(), needs=("probe",)),
-    Analysis("fingerprints", _run_fingerprints, sections=_fingerprint_sections),
-    Analysis("maps", _run_maps, applies=_maps_applies, sections=lambda result: {"embedding": result}),
+    Analysis("probe", _run_probe, sections=_probe_sections, fills=("probe", "groups")),
+    Analysis("leakage", _run_leakage, sections=lambda result: result.sections(), needs=("probe",),
+             fills=("leakage", "clusters", "missingness", "leakage_method")),
+    Analysis("fingerprints", _run_fingerprints, sections=_fingerprint_sections,
+             fills=("fingerprints", "fingerprint_tests")),
+    Analysis("maps", _run_maps, applies=_maps_applies, sections=lambda result: {"embedding": result},
+             fills=("embedding",)),
     # t-SNE is the longest single map (about 3/4 of the maps' time at 10,000 rows, measured):
     # computed apart, it runs beside the probe while PCA and UMAP fill the other lane.
-    Analysis("maps_tsne", _run_tsne, applies=_maps_applies, part_of="maps", merge=_merge_maps, priority=2),
+    Analysis("maps_tsne", _run_tsne, applies=_maps_applies, part_of="maps", merge=_merge_maps, priority=2,
+             fills=("embedding",)),
     Analysis("harmonise", _run_harmonise, applies=_harmonise_applies,
-             sections=lambda result: {"harmonisation": result}, priority=1),
+             sections=lambda result: {"harmonisation": result}, priority=1, fills=("harmonisation",)),
     Analysis("outcome", _run_outcome, applies=lambda prep: prep.outcome is not None,
-             sections=lambda result: {"outcome": result}, needs=("leakage",)),
+             sections=lambda result: {"outcome": result}, needs=("leakage",), fills=("outcome",),
+             falls_back_without=("leakage",)),
 ]

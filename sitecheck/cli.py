@@ -1,5 +1,6 @@
 """Command-line interface: parse options, call the library, report progress,
-map errors to exit codes (0 finished, 1 a gate failed, 2 usage or input error)."""
+map errors to exit codes (0 finished, 1 a gate failed, 2 usage or input error,
+3 the report was written but an analysis failed, or an internal error stopped the scan)."""
 from __future__ import annotations
 
 import os
@@ -13,6 +14,8 @@ from . import __version__
 from .errors import InputError
 
 EXIT_OK, EXIT_GATE, EXIT_INPUT, EXIT_INTERNAL = 0, 1, 2, 3
+#: Report written, but an analysis failed (its sections are missing; ``failed_analyses`` says why).
+EXIT_ANALYSIS_FAILED = EXIT_INTERNAL
 
 
 class _Group(click.Group):
@@ -139,9 +142,23 @@ def _run_scan(data, *, site, outcome, covariates, groups, identifiers, excluded,
     paths = write_report(result, out_dir, min_cell=options.min_cell, shareable=shareable)
     failed = evaluate_gates(result.to_dict(), fail_above=fail_above, fail_on=fail_on)
     click.echo(summary_text(result, paths, failed))
+    if result.failures:
+        click.echo(failure_line(result.failures, out_dir), err=True)
+        sys.exit(EXIT_ANALYSIS_FAILED)
     if failed:
         sys.exit(EXIT_GATE)
     return result
+
+
+def failure_line(failures, out_dir: str) -> str:
+    """One line naming the failed analyses (exit code 3: the report was written without their sections)."""
+    hard = [f for f in failures if f.get("status") == "failed"] or list(failures)
+    first = hard[0]
+    what = f"{first['analysis']} ({first['error']}: {first['message']})" if first.get("error") else first["analysis"]
+    more = [f["analysis"] for f in failures if f is not first]
+    extra = f"; also missing: {', '.join(more)}" if more else ""
+    return (f"sitecheck: analysis failed: {what}{extra}; report written to {out_dir} without its sections "
+            "(set SITECHECK_DEBUG=1 for the traceback)")
 
 
 FINGERPRINT_KINDS = ("unit_ratio", "precision", "heaping", "floor", "ceiling", "missing_code", "site_missing",

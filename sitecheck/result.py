@@ -38,7 +38,9 @@ class ScanResult:
     ``sections`` maps a ``report.json`` key (``probe``, ``groups``,
     ``leakage``, ...) to that analysis's result object (anything with a
     ``to_dict`` method, or plain JSON data). Analyses that did not run are
-    absent.
+    absent. ``failures`` lists the analyses that raised (or did not run because
+    one they need raised), as ``report.json``'s ``failed_analyses``: their
+    sections are absent and every other section is complete.
     """
 
     input: Dict[str, Any]
@@ -47,10 +49,16 @@ class ScanResult:
     warnings: Tuple[str, ...]
     run: Dict[str, Any]
     sections: Dict[str, Any] = field(default_factory=dict)
+    failures: Tuple[Dict[str, Any], ...] = ()
     objects: Dict[str, Any] = field(default_factory=dict, compare=False, repr=False)
 
     def __getitem__(self, key: str) -> Any:
         return self.sections[key]
+
+    @property
+    def failed(self) -> Tuple[str, ...]:
+        """Names of the analyses that failed or did not run because of a failure."""
+        return tuple(f["analysis"] for f in self.failures)
 
     def to_dict(self) -> Dict[str, Any]:
         """The ``report.json`` document."""
@@ -63,5 +71,6 @@ class ScanResult:
         }
         for key, value in self.sections.items():
             doc[key] = value
+        doc["failed_analyses"] = [dict(f) for f in self.failures]
         doc["run"] = self.run
         return to_jsonable(doc)

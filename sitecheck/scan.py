@@ -80,30 +80,61 @@ def _versions() -> Dict[str, str]:
     return out
 
 
+def debug_enabled() -> bool:
+    """True when ``SITECHECK_DEBUG`` is set (not empty or "0"): analysis errors are raised, not isolated."""
+    import os
+
+    return os.environ.get("SITECHECK_DEBUG", "") not in ("", "0")
+
+
 def _run_specs(prep: Prepared, options: ScanOptions, names, objects: Dict[str, Any],
-               say: Progress, timings: Dict[str, float], threads: Optional[int] = 1) -> Dict[str, Any]:
+               say: Progress, timings: Dict[str, float], threads: Optional[int] = 1,
+               failures: Optional[Dict[str, Any]] = None, process: str = "main") -> Dict[str, Any]:
     """Run the named analyses in turn with native thread pools limited to ``threads``
-    (None: no limit); fill ``objects``."""
+    (None: no limit); fill ``objects``.
+
+    An analysis that raises anything but an :class:`~sitecheck.errors.InputError` (bad input the
+    user can fix, which stops the scan) is recorded in ``failures`` as an
+    :class:`~sitecheck.analyses.AnalysisFailure` and the next one runs; an analysis that needs a
+    failed one is recorded as not run. With ``SITECHECK_DEBUG`` set the exception is raised.
+    """
     from threadpoolctl import threadpool_limits
 
     from . import analyses
 
+    failures = failures if failures is not None else {}
     for spec in analyses.REGISTRY:
         if spec.name not in names:
             continue
+        blocked = [d for d in spec.needs if d in failures and d not in spec.falls_back_without]
+        if blocked:
+            failures[spec.name] = analyses.AnalysisFailure.blocked(spec, blocked[0], process=process)
+            say(f"{spec.name}: not run ({blocked[0]} failed)")
+            continue
         say(f"{spec.name}...")
         t0 = time.perf_counter()
-        with threadpool_limits(limits=threads):
-            objects[spec.name] = spec.run(prep, options, objects)
+        try:
+            with threadpool_limits(limits=threads):
+                objects[spec.name] = spec.run(prep, options, objects)
+        except InputError:
+            raise
+        except Exception as exc:  # one analysis's fault never loses the others' results
+            if debug_enabled():
+                raise
+            failures[spec.name] = analyses.AnalysisFailure.from_exception(spec, exc, process=process)
+            objects.pop(spec.name, None)
+            say(f"{spec.name}: failed ({type(exc).__name__})")
         timings[spec.name] = round(time.perf_counter() - t0, 3)
     return objects
 
 
 def _side_lane(prep: Prepared, options: ScanOptions, names) -> tuple:
-    """Entry point of the second process: run ``names``; return (results, timings)."""
+    """Entry point of the second process: run ``names``; return (results, timings, failures)."""
     timings: Dict[str, float] = {}
-    objects = _run_specs(prep, options, set(names), {}, lambda msg: None, timings)
-    return objects, timings
+    failures: Dict[str, Any] = {}
+    objects = _run_specs(prep, options, set(names), {}, lambda msg: None, timings, failures=failures,
+                         process="second")
+    return objects, timings, failures
 
 
 #: Above this many rows the scan runs in one process (a second one would copy the table).
@@ -137,6 +168,7 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
     timings = timings if timings is not None else {}
     todo = [a for a in analyses.REGISTRY if options.wants(a.part_of or a.name) and a.applies(prep)]
     names = {a.name for a in todo}
+    failures: Dict[str, Any] = {}
     needed = {d for a in todo for d in a.needs}
     side = [a.name for a in sorted(todo, key=lambda a: -a.priority) if not a.needs and a.name not in needed]
     objects: Dict[str, Any] = {}
@@ -148,6 +180,7 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
         from concurrent.futures.process import BrokenProcessPool
 
         queue, futures, lock, broken = list(side), {}, threading.RLock(), []
+        by_name = {a.name: a for a in todo}
         with ProcessPoolExecutor(max_workers=1, mp_context=mp.get_context("spawn")) as pool:
             def submit_next(_done=None):
                 # one task at a time, so that whatever has not started can still run here
@@ -164,53 +197,94 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
                         future.add_done_callback(submit_next)
 
             submit_next()
-            _run_specs(prep, options, names - set(side), objects, say, timings)
+            _run_specs(prep, options, names - set(side), objects, say, timings, failures=failures)
             while True:  # list scheduling: both processes take the next queued task when free
                 with lock:
                     if not queue:
                         break
                     name = queue.pop(0)
-                _run_specs(prep, options, {name}, objects, say, timings)
+                _run_specs(prep, options, {name}, objects, say, timings, failures=failures)
             remote = [name for name in side if name in futures]
             if any(not futures[name].done() for name in remote):
                 say(f"waiting for {', '.join(remote)}")
             lost = []
             for name in remote:
                 try:
-                    side_objects, side_timings = futures[name].result()
+                    side_objects, side_timings, side_failures = futures[name].result()
                 except BrokenProcessPool:
                     lost.append(name)
                     continue
+                except InputError:
+                    raise
+                except Exception as exc:  # raised outside the analysis (e.g. its result would not pickle)
+                    if debug_enabled():
+                        raise
+                    failures[name] = analyses.AnalysisFailure.from_exception(by_name[name], exc, process="second")
+                    continue
                 objects.update(side_objects)
                 timings.update(side_timings)
+                failures.update(side_failures)
         if lost:
             # The second process could not start or died (for instance a script that calls the
             # scan at import time, without an ``if __name__ == "__main__":`` guard, is run again
             # by the spawned process): its analyses run here instead, with the same results.
             say(f"the second process stopped; running {', '.join(lost)} here")
-            _run_specs(prep, options, set(lost), objects, say, timings)
+            _run_specs(prep, options, set(lost), objects, say, timings, failures=failures)
             remote = [name for name in remote if name not in lost]
         if remote:
-            say(", ".join(f"{k} {timings[k]:.1f}s" for k in remote) + " (second process)")
+            say(", ".join(f"{k} {timings[k]:.1f}s" for k in remote if k in timings) + " (second process)")
     else:
         # Large tables stay in one process and may use every core; small ones keep one
         # thread per analysis so that n_jobs=1 and n_jobs=2 give the same numbers.
         threads = None if prep.n_total > PARALLEL_MAX_ROWS else 1
-        _run_specs(prep, options, names, objects, say, timings, threads=threads)
+        _run_specs(prep, options, names, objects, say, timings, threads=threads, failures=failures)
     for spec in todo:  # fold parts computed apart into their analysis
         if spec.part_of is not None and spec.name in objects:
             part, whole = objects.pop(spec.name), objects.get(spec.part_of)
             if whole is not None and part is not None:
-                objects[spec.part_of] = spec.merge(whole, part)
+                objects[spec.part_of] = _guarded(spec, failures, lambda: spec.merge(whole, part), whole)
     sections: Dict[str, Any] = {}
     for spec in todo:
         result = objects.get(spec.name)
         if result is None:
             objects.pop(spec.name, None)
             continue
-        for key, value in spec.sections(result).items():
-            sections[key] = value
-    return {"sections": sections, "objects": {a.name: objects[a.name] for a in todo if a.name in objects}}
+        # a section that cannot be written to report.json fails its analysis here, not the report
+        secs = _guarded(spec, failures, lambda: _checked_sections(spec, result), None)
+        if secs is None:
+            objects.pop(spec.name, None)
+            continue
+        sections.update(secs)
+    failed = tuple(failures[a.name] for a in todo if a.name in failures)
+    return {"sections": sections, "objects": {a.name: objects[a.name] for a in todo if a.name in objects},
+            "failures": failed}
+
+
+def _checked_sections(spec, result) -> Dict[str, Any]:
+    """The analysis's sections, once written as report.json would write them."""
+    import json
+
+    from .result import to_jsonable
+
+    secs = spec.sections(result)
+    for value in secs.values():
+        json.dumps(to_jsonable(value), allow_nan=False)
+    return secs
+
+
+def _guarded(spec, failures: Dict[str, Any], fn: Callable[[], Any], default: Any) -> Any:
+    """``fn()``, or ``default`` with ``spec`` recorded as failed when it raises (see :func:`_run_specs`)."""
+    from . import analyses
+
+    try:
+        return fn()
+    except InputError:
+        raise
+    except Exception as exc:
+        if debug_enabled():
+            raise
+        failures[spec.name] = analyses.AnalysisFailure.from_exception(spec, exc)
+        return default
 
 
 def scan_table(table: Table, options: ScanOptions = ScanOptions(), *,
@@ -252,6 +326,7 @@ def scan_table(table: Table, options: ScanOptions = ScanOptions(), *,
         warnings=tuple(table.warnings),
         run=run,
         sections=out["sections"],
+        failures=tuple(f.to_dict() for f in out["failures"]),
         objects={"table": table, "prepared": prep, **out["objects"]},
     )
 

@@ -91,6 +91,14 @@ def report_schema() -> Dict[str, Any]:
             "harmonisation": {"type": "object", "additionalProperties": harm_method},
             "outcome": outcome,
             "shareable": _obj({"min_cell": {"type": "integer"}, "withheld_sites": {"type": "array"}}),
+            "failed_analyses": {"type": "array", "description": (
+                "analyses that raised (status 'failed': exception type and its first line) or did not run because "
+                "one they need failed (status 'not_run'); their sections are absent, every other section is "
+                "complete. The command exits 3 when this list is not empty."),
+                "items": _obj({"analysis": {"type": "string"}, "sections": {"type": "array", "items": {"type": "string"}},
+                               "status": {"enum": ["failed", "not_run"]}, "error": {"type": ["string", "null"]},
+                               "message": {"type": "string"}, "process": {"enum": ["main", "second"]}},
+                              ["analysis", "sections", "status", "error", "message"])},
         }, ["schema", "input", "columns", "warnings", "run"]),
     }
 

@@ -17,6 +17,7 @@ table{border-collapse:collapse;margin:.8em 0;font-size:.92em}th,td{border:1px so
 th{background:#f3f3f3;cursor:pointer}td.n{text-align:right;font-variant-numeric:tabular-nums}
 .note{background:#fff8e1;border-left:4px solid #f0b400;padding:.6em 1em}.verdict{font-size:1.3em;font-weight:600}
 .muted{color:#666}img{max-width:100%}
+.failed{background:#fdecea;border-left:4px solid #c62828;padding:.6em 1em}
 """
 
 _SORT_JS = """
@@ -145,6 +146,31 @@ def _at_a_glance(doc: Dict[str, Any]) -> str:
     return "<div class='note'><b>At a glance</b><ul>" + "".join(items) + "</ul></div>"
 
 
+#: Report-section module name -> the report.json key it renders, where they differ.
+_MODULE_KEY = {"maps": "embedding"}
+
+
+def failure_text(f: Dict[str, Any]) -> str:
+    """Plain words for one ``failed_analyses`` entry (shared by HTML and Markdown)."""
+    secs = ", ".join(f.get("sections") or []) or "none"
+    if f.get("status") == "not_run":
+        return f"The {f.get('analysis')} analysis did not run ({f.get('message')}); missing sections: {secs}."
+    where = " in the second process" if f.get("process") == "second" else ""
+    return (f"The {f.get('analysis')} analysis failed{where} with {f.get('error')}: {f.get('message')}. "
+            f"Missing sections: {secs}. The other sections are complete; rerun with SITECHECK_DEBUG=1 "
+            "for the traceback.")
+
+
+def _failed_note(doc: Dict[str, Any], key=None) -> str:
+    """A visible note for the failed analyses (all of them, or those that fill section ``key``)."""
+    fails = [f for f in doc.get("failed_analyses") or [] if key is None or key in (f.get("sections") or [])]
+    if not fails:
+        return ""
+    title = "Analyses that failed" if key is None else "This section is missing"
+    return (f"<div class='failed'><b>{esc(title)}</b><ul>"
+            + "".join(f"<li>{esc(failure_text(f))}</li>" for f in fails) + "</ul></div>")
+
+
 def render_html(doc: Dict[str, Any], *, min_cell: int = 10, out_dir=None) -> str:
     """Render the report document (``ScanResult.to_dict()``) as one HTML page.
 
@@ -159,11 +185,13 @@ def render_html(doc: Dict[str, Any], *, min_cell: int = 10, out_dir=None) -> str
             f"<p>{esc(inp.get('rows_used'))} rows from {len(sites)} sites "
             f"(site column <code>{esc(inp.get('site_column'))}</code>): "
             + ", ".join(f"{esc(k)} ({esc(suppress_count(v, min_cell))})" for k, v in sites.items()) + "</p>")
-    body = [head, _at_a_glance(doc)]
+    body = [head, _failed_note(doc), _at_a_glance(doc)]
     from .sections import modules
 
     for mod in modules():
         body.append(mod.html(doc, min_cell))
+        name = mod.__name__.rsplit(".", 1)[-1]
+        body.append(_failed_note(doc, _MODULE_KEY.get(name, name)))
     body.append(_hygiene(doc, min_cell))
     body.append(_methods(doc))
     return ("<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from typing import Any, Dict, List
 
-from .html import DISCLAIMER
+from .html import DISCLAIMER, failure_text
 from .safety import suppress_count
 
 
@@ -31,6 +31,9 @@ def render_markdown(doc: Dict[str, Any], *, min_cell: int = 10) -> str:
              f"checked with sitecheck {doc.get('run', {}).get('versions', {}).get('sitecheck')} "
              f"(seed {doc.get('run', {}).get('seed')}).", "",
              md_table(["site", "rows"], [[k, suppress_count(v, min_cell)] for k, v in sites.items()]), ""]
+    fails = doc.get("failed_analyses") or []
+    if fails:
+        parts += ["## Analyses that failed", ""] + [f"- {md_escape(failure_text(f))}" for f in fails] + [""]
     from .sections import modules
 
     for mod in modules():
