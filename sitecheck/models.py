@@ -14,6 +14,21 @@ from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import OneHotEncoder, RobustScaler, StandardScaler
 
 
+#: Above this many classes the probe grows smaller trees on fewer bins (see ``probe._estimator``).
+MANY_CLASSES = 8
+
+
+def booster_max_bins(n_classes: int) -> int:
+    """Histogram bins of the boosting probe for ``n_classes`` classes.
+
+    HistGradientBoosting accepts a categorical feature with at most this many levels,
+    so :func:`sitecheck.prepare.prepare` keeps at most this many per column (the most
+    frequent, the rest pooled into one level) and :func:`sitecheck.probe.cross_fit`
+    pools further for a model with fewer bins (a group probe with many levels).
+    """
+    return 63 if int(n_classes) > MANY_CLASSES else 255
+
+
 def make_booster(categorical: np.ndarray, *, random_state: int, max_iter: int = 200,
                  learning_rate: float = 0.1, early_stopping: bool = True) -> HistGradientBoostingClassifier:
     """HistGradientBoostingClassifier with native missing values and categoricals.

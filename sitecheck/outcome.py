@@ -647,6 +647,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
     # baseline model (the probe's family and settings), pooled cross-fit
     yi = y.astype(np.int64)
     pooled = cross_fit(X, yi, cat, folds, model="boosting", random_state=seed)
+    X = pooled.transform(X)  # as its fold models saw it (identical unless a categorical had too many levels)
     oof = pooled.proba[:, 1]
     fold_models = pooled.models
     pooled_auc, pooled_ci = _auc_ci(y, oof, n_boot=n_boot, random_state=seed + 1)

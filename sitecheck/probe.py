@@ -19,7 +19,7 @@ International Conference on Learning Representations (ICLR).
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any, Dict, List, Optional, Sequence, Tuple, Union
 
 import numpy as np
@@ -29,7 +29,7 @@ from threadpoolctl import threadpool_limits
 
 from . import stats
 from .errors import InputError, ParameterError
-from .models import make_booster, make_linear
+from .models import MANY_CLASSES, booster_max_bins, make_booster, make_linear
 
 MODELS = ("boosting", "linear")
 
@@ -69,6 +69,10 @@ class CrossFit:
         "boosting" or "linear".
     n_iter : tuple of int
         Boosting iterations used per fold (empty for linear).
+    pooled : dict
+        Column index -> categorical levels pooled into one level before fitting, for
+        columns with more levels than the booster's bins (empty when none); the fold
+        models expect :meth:`transform`-ed input.
     """
 
     proba: np.ndarray
@@ -77,6 +81,14 @@ class CrossFit:
     classes: np.ndarray
     model: str
     n_iter: Tuple[int, ...] = ()
+    pooled: Dict[int, int] = field(default_factory=dict)
+    level_maps: Dict[int, np.ndarray] = field(default_factory=dict, repr=False)
+
+    def transform(self, X: np.ndarray) -> np.ndarray:
+        """``X`` as the fold models saw it (rare categorical levels pooled); ``X`` itself when nothing was."""
+        from .prepare import apply_level_maps
+
+        return apply_level_maps(X, self.level_maps)
 
 
 def _check_xy(X, y) -> Tuple[np.ndarray, np.ndarray]:
@@ -110,9 +122,9 @@ def _estimator(model: str, categorical, k: int, n_train: int, *, random_state: i
         # the cost scales with k; fewer leaves, a larger step and a tighter iteration cap
         # keep 30-100 sites fast (measured in tests/benchmarks/bench_probe.py: 30 sites x 300 rows x
         # 15 features with a strong shift, 5 folds: 5.0 -> 2.7 CPU s, macro AUC 0.884 -> 0.876).
-        if k > 8:
+        if k > MANY_CLASSES:
             est = make_booster(categorical, random_state=random_state, max_iter=60, learning_rate=0.3)
-            est.set_params(max_leaf_nodes=7, n_iter_no_change=5, max_bins=63)
+            est.set_params(max_leaf_nodes=7, n_iter_no_change=5, max_bins=booster_max_bins(k))
         else:
             est = make_booster(categorical, random_state=random_state, max_iter=150, learning_rate=0.15)
         if n_train < 500:
@@ -157,8 +169,19 @@ def cross_fit(X, y, categorical, folds, *, model: str = "boosting", random_state
         folds = make_folds(y, int(folds), random_state=seed)
     folds = tuple((np.asarray(tr), np.asarray(te)) for tr, te in folds)
     k = int(y.max()) + 1
+    pooled, maps = {}, {}
+    if model == "boosting" and cat.any():
+        # HistGradientBoosting refuses a categorical column with more levels than its bins:
+        # keep the most frequent and pool the rest into one level (unsupervised, whole X)
+        from .prepare import apply_level_maps, level_maps_for
+
+        maps, pooled = level_maps_for(X, cat, booster_max_bins(k))
+        X = apply_level_maps(X, maps)
     with threadpool_limits(limits=_threads(len(y))):
-        return _cross_fit(X, y, cat, folds, model, seed, k)
+        fit = _cross_fit(X, y, cat, folds, model, seed, k)
+    if pooled:
+        fit = replace(fit, pooled=pooled, level_maps=maps)
+    return fit
 
 
 #: Below this many rows boosting runs single-threaded: OpenMP start-up and spin-waiting cost
@@ -386,13 +409,16 @@ class GroupProbe:
     levels: Dict[str, int]
     dropped_levels: Dict[str, int]
     n_missing: int
+    #: Feature -> categorical levels pooled into one for this probe's model (more levels
+    #: than its bins; empty when none).
+    pooled_levels: Dict[str, int] = field(default_factory=dict)
 
     def to_dict(self) -> Dict[str, Any]:
         return {"auc": self.score.auc, "auc_ci": list(self.score.auc_ci), "p_value": self.score.p_value,
                 "verdict": self.verdict, "verdict_text": verdict_text(self.verdict, f"group '{self.column}'"),
                 "n": self.score.n, "levels": dict(self.levels), "dropped_levels": dict(self.dropped_levels),
                 "n_missing": int(self.n_missing), "model": self.score.model,
-                "balanced_accuracy": self.score.balanced_accuracy}
+                "balanced_accuracy": self.score.balanced_accuracy, "pooled_levels": dict(self.pooled_levels)}
 
 
 @dataclass(frozen=True)
@@ -435,6 +461,8 @@ class ProbeResult:
     n_features: int
     crossfit: CrossFit = field(compare=False, repr=False)
     linear_crossfit: Optional[CrossFit] = field(default=None, compare=False, repr=False)
+    #: Levels kept per categorical feature (the most frequent, and one pooled level).
+    categorical_level_limit: int = 250
 
     @property
     def auc(self) -> float:
@@ -490,6 +518,11 @@ class ProbeResult:
                                "mean, valid under any dependence (Vovk & Wang 2020); conservative"),
             "boosting_iterations": list(self.boosting_iterations),
             "lumped_categoricals": dict(self.lumped_categoricals),
+            "categorical_level_limit": int(self.categorical_level_limit),
+            "lumped_method": ("a categorical feature keeps its most frequent levels, at most "
+                              f"{int(self.categorical_level_limit) - 1}, and pools the rest into one level "
+                              "'(other)' (the boosting probe's bins); lumped_categoricals gives the number "
+                              "pooled per feature"),
             "n_features": self.n_features,
         }
 
@@ -511,9 +544,11 @@ def _recode(labels: np.ndarray, min_rows: int):
     return y, kept, dropped, int(missing.sum())
 
 
-def _sub_probe(X, y, cat, n_splits, seed, rng, n_boot, n_permutations) -> ProbeScore:
+def _sub_probe(X, y, cat, n_splits, seed, rng, n_boot, n_permutations, pooled=None) -> ProbeScore:
     folds = make_folds(y, n_splits, random_state=seed)
     fit = cross_fit(X, y, cat, folds, model="boosting", random_state=seed)
+    if pooled is not None:
+        pooled.update(fit.pooled)
     return _score_fit(y, fit, rng, n_boot, n_permutations)
 
 
@@ -623,16 +658,19 @@ def site_probe(prep, *, n_boot: int = 500, n_permutations: int = 999, linear: bo
             if len(kept) < 2:
                 skipped[gname] = f"fewer than two levels with at least {min_rows} rows"
                 continue
-            s = _sub_probe(X[ok], yy[ok], cat, prep.n_splits, seed + 100 + gi, rng(100 + gi), n_boot, n_permutations)
+            pooled: Dict[int, int] = {}
+            s = _sub_probe(X[ok], yy[ok], cat, prep.n_splits, seed + 100 + gi, rng(100 + gi), n_boot, n_permutations,
+                           pooled=pooled)
             gprobes[gname] = GroupProbe(column=gname, score=s, verdict=verdict(s.auc_ci, s.p_value), levels=kept,
-                                        dropped_levels=dropped, n_missing=n_miss)
+                                        dropped_levels=dropped, n_missing=n_miss,
+                                        pooled_levels={prep.features.names[j]: n for j, n in sorted(pooled.items())})
     return ProbeResult(
         score=score, linear=lin_score, per_site=per_site, confusion=tuple(tuple(int(v) for v in r) for r in conf),
         site_labels=labels, n_used=int(prep.n_used), n_total=int(prep.n_total), folds=len(prep.folds),
         verdict=verdict(score.auc_ci, score.p_value), case_mix=cm, within_outcome=wo,
         groups=GroupsResult(probes=gprobes, skipped=skipped), boosting_iterations=fit.n_iter,
         lumped_categoricals=dict(prep.features.lumped), n_features=int(prep.features.n_features),
-        crossfit=fit, linear_crossfit=lin_fit)
+        crossfit=fit, linear_crossfit=lin_fit, categorical_level_limit=int(prep.features.max_levels))
 
 
 def _outcome_levels(prep) -> Tuple[str, str]:

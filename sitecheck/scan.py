@@ -323,12 +323,25 @@ def scan_table(table: Table, options: ScanOptions = ScanOptions(), *,
         input=input_doc,
         columns=tuple(c.to_dict() for c in table.columns),
         findings=tuple(f.to_dict() for f in table.findings),
-        warnings=tuple(table.warnings),
+        warnings=tuple(table.warnings) + _pooling_warnings(prep),
         run=run,
         sections=out["sections"],
         failures=tuple(f.to_dict() for f in out["failures"]),
         objects={"table": table, "prepared": prep, **out["objects"]},
     )
+
+
+def _pooling_warnings(prep: Prepared) -> tuple:
+    """One warning per categorical column whose rare levels were pooled (Prepared.features/covariates)."""
+    out = []
+    for enc in (prep.features, prep.covariates):
+        if enc is None:
+            continue
+        for name, n in enc.lumped.items():
+            out.append(f"column {name!r}: {n + enc.max_levels - 1} categorical levels; the {enc.max_levels - 1} most "
+                       f"frequent are kept and the {n} rarer ones pooled into one level '(other)' (the probe "
+                       f"accepts {enc.max_levels} levels with {len(prep.site_labels)} sites)")
+    return tuple(out)
 
 
 def build_table(raw: RawTable, roles: RoleSpec, *, config_path: Optional[str] = None,
