@@ -139,7 +139,8 @@ def _run_fingerprints(prep, options, objects):
 
 
 def _fingerprint_sections(result):
-    return {"fingerprints": [f.to_dict() for f in result.findings], "fingerprint_tests": result.tests}
+    return {"fingerprints": [f.to_dict() for f in result.findings], "fingerprint_tests": result.tests,
+            "fingerprint_skipped": dict(getattr(result, "skipped", {}))}
 
 
 
@@ -193,7 +194,7 @@ REGISTRY: List[Analysis] = [
     Analysis("leakage", _run_leakage, sections=lambda result: result.sections(), needs=("probe",),
              fills=("leakage", "clusters", "missingness", "leakage_method")),
     Analysis("fingerprints", _run_fingerprints, sections=_fingerprint_sections,
-             fills=("fingerprints", "fingerprint_tests")),
+             fills=("fingerprints", "fingerprint_tests", "fingerprint_skipped")),
     Analysis("maps", _run_maps, applies=_maps_applies, sections=lambda result: {"embedding": result},
              fills=("embedding",)),
     # t-SNE is the longest single map (about 3/4 of the maps' time at 10,000 rows, measured):

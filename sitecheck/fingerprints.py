@@ -116,6 +116,8 @@ class FingerprintResult:
     features: Tuple[str, ...]
     covariates: Tuple[str, ...]
     params: Dict[str, Any]
+    #: Feature -> why the value detectors skipped it (recorded at fewer than two sites).
+    skipped: Dict[str, str] = field(default_factory=dict)
 
     def of_kind(self, kind: str) -> List[Fingerprint]:
         return [f for f in self.findings if f.kind == kind]
@@ -123,7 +125,8 @@ class FingerprintResult:
     def to_dict(self) -> dict:
         return {"findings": [f.to_dict() for f in self.findings], "tests": _jsonable(self.tests),
                 "n_rows": int(self.n_rows), "features": list(self.features),
-                "covariates": list(self.covariates), "params": _jsonable(self.params)}
+                "covariates": list(self.covariates), "params": _jsonable(self.params),
+                "skipped": dict(self.skipped)}
 
 
 
@@ -386,6 +389,9 @@ def detect_unit_ratio(vals: Sequence[np.ndarray], name: Optional[str] = None, *,
             temp_case = "C_at_site"
         if temp_case is not None:
             ref_ids = [t for t in refs if (30 <= meds[t] <= 45) == (temp_case == "F_at_site")]
+            if not ref_ids:  # no other site in the other scale: no temperature pair to compare
+                temp_case = None
+        if temp_case is not None:
             ref = np.concatenate([vals[t] for t in ref_ids])
             conv = TEMPERATURE.forward(v) if temp_case == "F_at_site" else TEMPERATURE.backward(v)
             med_conv = float(np.median(conv))
@@ -920,6 +926,7 @@ def find_fingerprints(data, *, covariates: Optional[Sequence[str]] = None, alpha
     gram = _full_gram(site_code, Z, k)
 
     cands: List[_Cand] = []
+    skipped: Dict[str, str] = {}
     n_tests = {kd: 0 for kd in KINDS}
     numeric = [f for f in features if kinds[f] == "numeric"]
     categorical = [f for f in features if kinds[f] == "categorical"]
@@ -946,6 +953,11 @@ def find_fingerprints(data, *, covariates: Optional[Sequence[str]] = None, alpha
         for s in range(k):
             v = x[site_rows[s]]
             vals.append(np.sort(v[~np.isnan(v)]))
+        seen = [labels[s] for s in range(k) if len(vals[s])]
+        if len(seen) < 2:  # nothing to compare a site with; site_missing (above) says where it is missing
+            skipped[f] = ("recorded at no site" if not seen else f"recorded at one site only ({seen[0]})") + \
+                "; the value detectors compare a site with the others"
+            continue
         per_test = alpha / max(n_tests["missing_code"], 1)
         found: Dict[int, set] = {s: set() for s in range(k)}
 
@@ -1025,4 +1037,4 @@ def find_fingerprints(data, *, covariates: Optional[Sequence[str]] = None, alpha
         findings=tuple(t[3] for t in findings), tests=tests, n_rows=int(len(frame)),
         features=tuple(features), covariates=tuple(covs),
         params={"alpha": float(alpha), "min_count": int(min_count), "min_smd": float(min_smd),
-                "min_sd_ratio": float(min_sd_ratio), "min_tvd": float(min_tvd)})
+                "min_sd_ratio": float(min_sd_ratio), "min_tvd": float(min_tvd)}, skipped=skipped)

@@ -278,3 +278,33 @@ def test_welch_and_brown_forsythe_match_scipy():
     got_t = welch_test(a.mean(), a.var(ddof=1), len(a), b.mean(), b.var(ddof=1), len(b))
     assert got_t == pytest.approx(ref_t, rel=1e-9)
     assert brown_forsythe(a, b) == pytest.approx(stats.levene(a, b, center="median").pvalue, rel=1e-9)
+
+
+def test_feature_recorded_at_one_site_is_skipped_with_its_reason_not_a_crash():
+    # Invented three-clinic table: troponin measured at Fernhollow only (a test the others never ran),
+    # lactate measured nowhere. The value detectors have nothing to compare; site_missing says where.
+    rng = np.random.default_rng(16)
+    n = 90
+    site = np.repeat(["Fernhollow", "Gorsebrook", "Hazelmere"], n // 3)
+    trop = np.where(site == "Fernhollow", np.round(rng.lognormal(2.5, 0.6, n), 0), np.nan)
+    frame = pd.DataFrame({"site": site, "sodium": np.round(rng.normal(140, 3, n)), "troponin": trop,
+                          "lactate": np.full(n, np.nan)})
+    result = find_fingerprints(_table(frame))
+    assert result.skipped["troponin"] == ("recorded at one site only (Fernhollow); the value detectors compare a "
+                                          "site with the others")
+    assert "sodium" not in result.skipped
+    assert {(f.feature, f.site, f.kind) for f in result.findings if f.feature == "troponin"} == {
+        ("troponin", "Gorsebrook", "site_missing"), ("troponin", "Hazelmere", "site_missing")}
+    assert result.to_dict()["skipped"] == dict(result.skipped)
+
+
+def test_temperature_check_without_a_reference_site_in_the_other_scale():
+    # One clinic's median is in the Fahrenheit range and the median of the others' medians in the Celsius
+    # range, but no single other clinic is in it (medians 25 and 50): no temperature pair, and no crash
+    # (it used to concatenate an empty list of reference sites).
+    from sitecheck.fingerprints import detect_unit_ratio
+
+    rng = np.random.default_rng(3)
+    vals = [np.sort(rng.normal(m, 1.0, 40)) for m in (98.0, 25.0, 50.0)]
+    out = detect_unit_ratio(vals, "temp")
+    assert [c for c in out if c.kind == "unit_ratio" and isinstance(c.payload, tuple)] == []

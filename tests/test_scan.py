@@ -53,7 +53,7 @@ def test_failed_analysis_is_recorded_and_the_others_kept(monkeypatch, small_fram
     _patch(monkeypatch, "fingerprints", _raising("fingerprints"))
     result = _scan(small_frame, n_jobs=1, analyses=LIGHT)
     doc = result.to_dict()
-    assert doc["failed_analyses"] == [{"analysis": "fingerprints", "sections": ["fingerprints", "fingerprint_tests"],
+    assert doc["failed_analyses"] == [{"analysis": "fingerprints", "sections": ["fingerprints", "fingerprint_tests", "fingerprint_skipped"],
                                        "status": "failed", "error": "Boom",
                                        "message": "forced failure for the test", "process": "main"}]
     assert "fingerprints" not in doc and "fingerprint_tests" not in doc
@@ -116,7 +116,7 @@ def test_failure_in_second_process_is_recorded(monkeypatch, small_frame, tmp_pat
     # probe and leak ranking in this process, fingerprints queued for the second (the only side task)
     result = _scan(small_frame, n_jobs=2, analyses=("probe", "leakage", "fingerprints"))
     doc = result.to_dict()
-    assert doc["failed_analyses"] == [{"analysis": "fingerprints", "sections": ["fingerprints", "fingerprint_tests"],
+    assert doc["failed_analyses"] == [{"analysis": "fingerprints", "sections": ["fingerprints", "fingerprint_tests", "fingerprint_skipped"],
                                        "status": "failed", "error": "ArithmeticError",
                                        "message": "fault inside the second process", "process": "second"}]
     assert doc["probe"]["auc"] > 0.5 and doc["leakage"]
