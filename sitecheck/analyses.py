@@ -90,10 +90,16 @@ class AnalysisFailure:
                 "error": self.error, "message": self.message, "process": self.process}
 
 
+def _resampling(options, **defaults):
+    """The analysis's resampling sizes: the scan option when set (``ScanOptions.n_boot`` ...), else ``defaults``."""
+    get = getattr(options, "resampling", None)
+    return get(**defaults) if get is not None else defaults
+
+
 def _run_probe(prep, options, objects):
     from .probe import site_probe
 
-    return site_probe(prep, random_state=options.seed)
+    return site_probe(prep, random_state=options.seed, **_resampling(options, n_boot=500, n_permutations=999))
 
 
 def _probe_sections(result):
@@ -117,7 +123,7 @@ def _run_leakage(prep, options, objects):
 
     def missingness_probe(M, y):
         return probe_matrix(M, y, np.zeros(M.shape[1], dtype=bool), prep.folds, random_state=options.seed,
-                            n_boot=500, n_permutations=999, model="linear").to_dict()
+                            model="linear", **_resampling(options, n_boot=500, n_permutations=999)).to_dict()
 
     return rank_leakage(prep, probe.crossfit, cluster_threshold=options.cluster_threshold,
                         panels=prep.table.panels, missingness_probe=missingness_probe, random_state=options.seed)
@@ -129,7 +135,7 @@ def _run_outcome(prep, options, objects):
     from .outcome import outcome_risk
 
     return outcome_risk(prep, leakage=objects.get("leakage"), threshold=options.threshold,
-                        random_state=options.seed)
+                        random_state=options.seed, **_resampling(options, n_boot=500))
 
 
 def _run_fingerprints(prep, options, objects):
@@ -175,7 +181,11 @@ def _merge_maps(whole, part):
 def _run_harmonise(prep, options, objects):
     from .harmonise import harmonisation_check
 
-    return harmonisation_check(prep, random_state=options.seed)
+    from .harmonise import METHODS
+
+    methods = tuple(getattr(options, "harmonise_methods", None) or METHODS)
+    return harmonisation_check(prep, random_state=options.seed, methods=methods,
+                               **_resampling(options, n_boot=200, n_permutations=199))
 
 
 def _harmonise_applies(prep) -> bool:

@@ -1208,6 +1208,7 @@ def outcome_auc_cv(X: np.ndarray, y: np.ndarray, site: np.ndarray, cat: np.ndarr
     from threadpoolctl import threadpool_limits
 
     from . import stats
+    from .models import fit_classifier
     from .probe import _estimator, _threads
 
     y = np.asarray(y).astype(np.int64)
@@ -1226,7 +1227,7 @@ def outcome_auc_cv(X: np.ndarray, y: np.ndarray, site: np.ndarray, cat: np.ndarr
                 Xtr = apply_harmoniser(fit, Xtr, site[tr], design=D[tr])
                 Xte = apply_harmoniser(fit, Xte, site[te], design=Dte)
             est = _estimator(model, cat, 2, len(tr), random_state=seed + 1000 * f)
-            est.fit(Xtr, y[tr])
+            fit_classifier(est, Xtr, y[tr])
             proba = est.predict_proba(Xte)
             cls = list(np.asarray(est.classes_))
             score[te] = proba[:, cls.index(1)] if 1 in cls else 0.0

@@ -307,7 +307,13 @@ def _looks_datetime(values: pd.Series) -> Optional[pd.Series]:
 def _coerce_column(name: str, values: np.ndarray) -> Tuple[np.ndarray, ColumnIntake]:
     if values.dtype.kind == "f":
         n_missing = int(np.isnan(values).sum())
-        return values, ColumnIntake(name, "numeric", {"(null)": n_missing} if n_missing else {}, n_missing)
+        codes = {"(null)": n_missing} if n_missing else {}
+        inf = np.isinf(values)
+        if inf.any():  # an infinite value is not a measurement: read as missing and listed
+            values = np.where(inf, np.nan, values)
+            codes["inf"] = int(inf.sum())
+            n_missing += int(inf.sum())
+        return values, ColumnIntake(name, "numeric", codes, n_missing)
     if values.dtype.kind == "M":
         n_missing = int(pd.isna(values).sum())
         return values, ColumnIntake(name, "datetime", {"(null)": n_missing} if n_missing else {}, n_missing)
@@ -319,7 +325,7 @@ def _coerce_column(name: str, values: np.ndarray) -> Tuple[np.ndarray, ColumnInt
         out = np.full(len(values), np.nan)
         return out, ColumnIntake(name, "numeric", codes, n_missing)
     num = pd.to_numeric(present, errors="coerce")
-    ok = num.notna()
+    ok = num.notna() & ~np.isinf(num.to_numpy(dtype="float64", na_value=np.nan))  # "inf" is not a measurement
     share = float(ok.mean())
     if share >= COERCE_SHARE:
         bad = present[~ok]

@@ -50,7 +50,7 @@ from sklearn.model_selection import StratifiedKFold
 
 from .errors import InputError
 from .leakage import grouped_permutation_importance
-from .models import make_booster
+from .models import fit_classifier, make_booster
 from .prepare import Prepared
 from .probe import cross_fit
 
@@ -663,7 +663,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
         model = make_booster(cat, random_state=seed + 1, max_iter=max_iter)
         for i, (tr, te) in enumerate(site_folds):
             if trainable[i]:
-                loso_pred[te] = clone(model).fit(X[tr], yi[tr]).predict_proba(X[te])[:, 1]
+                loso_pred[te] = fit_classifier(clone(model), X[tr], yi[tr]).predict_proba(X[te])[:, 1]
     for i, lab in enumerate(labels):
         tr, te = site_folds[i]
         if not trainable[i]:

@@ -268,7 +268,12 @@ def prepare(table: Table, *, n_splits: int = 5, max_rows: int = 100_000, random_
     if table.outcome:
         outcome = sub[table.outcome].to_numpy(dtype=float)
     groups = {g: sub[g].astype(object).where(sub[g].notna(), None).to_numpy(dtype=object) for g in table.groups}
-    min_count = int(np.bincount(site).min())
+    counts = np.bincount(site, minlength=len(labels))
+    min_count = int(counts.min())
+    if min_count < 2:
+        lab = labels[int(np.argmin(counts))]
+        raise InputError(f"site {lab!r} has {min_count} row{'s' if min_count != 1 else ''} to model; cross-validated "
+                         "probing needs at least 2 rows per site (raise --min-site-rows to leave it out)")
     k = int(max(2, min(n_splits, min_count)))
     skf = StratifiedKFold(n_splits=k, shuffle=True, random_state=seed)
     folds = tuple((tr, te) for tr, te in skf.split(np.zeros(len(site)), site))

@@ -29,7 +29,7 @@ from threadpoolctl import threadpool_limits
 
 from . import stats
 from .errors import InputError, ParameterError
-from .models import MANY_CLASSES, booster_max_bins, make_booster, make_linear
+from .models import MANY_CLASSES, booster_max_bins, fit_classifier, make_booster, make_linear
 
 MODELS = ("boosting", "linear")
 
@@ -202,7 +202,7 @@ def _cross_fit(X, y, cat, folds, model, seed, k) -> CrossFit:
         est = _estimator(model, cat, k, len(tr), random_state=seed + 1000 * f)
         if model == "linear" and X.shape[1] == 0:
             raise InputError("no feature columns to probe")
-        est.fit(X[tr], y[tr])
+        fit_classifier(est, X[tr], y[tr])
         p = est.predict_proba(X[te])
         cls = np.asarray(est.classes_, dtype=np.int64)
         block = np.zeros((len(te), k))

@@ -50,6 +50,15 @@ class ScanOptions:
     n_jobs : int, default 2
         2 runs the independent analyses in a second process (tables up to 200,000
         rows); 1 runs everything in turn in this process.
+    n_boot : int or None
+        Bootstrap resamples of every interval (None: each analysis's own default,
+        500 for the probe and the outcome analysis, 200 for the harmonisation
+        re-probe). Fewer make a quicker, coarser scan (at least 50).
+    n_permutations : int or None
+        Label permutations of every permutation p-value (None: each analysis's own
+        default, 999 for the probe, 199 for the harmonisation re-probe; at least 19).
+    harmonise_methods : tuple of str or None
+        Harmonisation methods checked (None: all of ``sitecheck.harmonise.METHODS``).
     """
 
     seed: int = 0
@@ -63,6 +72,30 @@ class ScanOptions:
     threshold: Optional[float] = None
     analyses: Optional[tuple] = None
     n_jobs: int = 2
+    n_boot: Optional[int] = None
+    n_permutations: Optional[int] = None
+    harmonise_methods: Optional[tuple] = None
+
+    def __post_init__(self):
+        for name, low in (("n_boot", 50), ("n_permutations", 19)):
+            v = getattr(self, name)
+            if v is not None and (isinstance(v, bool) or not isinstance(v, (int, np.integer)) or v < low):
+                raise InputError(f"{name} must be an integer of at least {low} (or None), got {v!r}")
+        if self.harmonise_methods is not None:
+            from .harmonise import METHODS
+
+            bad = [m for m in self.harmonise_methods if m not in METHODS]
+            if bad or not self.harmonise_methods:
+                raise InputError(f"harmonise_methods must name some of {', '.join(METHODS)}, got "
+                                 f"{self.harmonise_methods!r}")
+
+    def resampling(self, **defaults) -> Dict[str, int]:
+        """``n_boot``/``n_permutations`` for one analysis: the option when set, else its default."""
+        out = {}
+        for key, value in defaults.items():
+            mine = getattr(self, key)
+            out[key] = int(value if mine is None else mine)
+        return out
 
     def wants(self, name: str) -> bool:
         return self.analyses is None or name in self.analyses
