@@ -304,16 +304,34 @@ def _looks_datetime(values: pd.Series) -> Optional[pd.Series]:
     return None
 
 
+#: Magnitude beyond which a number is not read as a measurement (its square overflows float64):
+#: such values, and infinities, are read as missing and listed with the missing-value codes.
+MAX_MAGNITUDE = 1e150
+
+
+def _non_measurements(values: np.ndarray, codes: Dict[str, int]) -> Tuple[np.ndarray, int]:
+    """Replace infinite values and values beyond :data:`MAX_MAGNITUDE` by NaN; count them in ``codes``."""
+    with np.errstate(invalid="ignore"):
+        inf = np.isinf(values)
+        huge = ~inf & (np.abs(values) > MAX_MAGNITUDE)
+    n_inf, n_huge = int(inf.sum()), int(huge.sum())
+    if not (n_inf or n_huge):
+        return values, 0
+    values = np.where(inf | huge, np.nan, values)
+    if n_inf:
+        codes["inf"] = codes.get("inf", 0) + n_inf
+    if n_huge:
+        key = f"beyond +/-{MAX_MAGNITUDE:g}"
+        codes[key] = codes.get(key, 0) + n_huge
+    return values, n_inf + n_huge
+
+
 def _coerce_column(name: str, values: np.ndarray) -> Tuple[np.ndarray, ColumnIntake]:
     if values.dtype.kind == "f":
         n_missing = int(np.isnan(values).sum())
         codes = {"(null)": n_missing} if n_missing else {}
-        inf = np.isinf(values)
-        if inf.any():  # an infinite value is not a measurement: read as missing and listed
-            values = np.where(inf, np.nan, values)
-            codes["inf"] = int(inf.sum())
-            n_missing += int(inf.sum())
-        return values, ColumnIntake(name, "numeric", codes, n_missing)
+        values, n_out = _non_measurements(values, codes)
+        return values, ColumnIntake(name, "numeric", codes, n_missing + n_out)
     if values.dtype.kind == "M":
         n_missing = int(pd.isna(values).sum())
         return values, ColumnIntake(name, "datetime", {"(null)": n_missing} if n_missing else {}, n_missing)
@@ -325,15 +343,16 @@ def _coerce_column(name: str, values: np.ndarray) -> Tuple[np.ndarray, ColumnInt
         out = np.full(len(values), np.nan)
         return out, ColumnIntake(name, "numeric", codes, n_missing)
     num = pd.to_numeric(present, errors="coerce")
-    ok = num.notna() & ~np.isinf(num.to_numpy(dtype="float64", na_value=np.nan))  # "inf" is not a measurement
+    ok = num.notna()
     share = float(ok.mean())
     if share >= COERCE_SHARE:
         bad = present[~ok]
         examples = tuple(pd.unique(bad.to_numpy())[:3].tolist())
         out = np.full(len(values), np.nan)
         out[np.flatnonzero(~mask)] = num.to_numpy(dtype="float64")
+        out, n_out = _non_measurements(out, codes)
         return out, ColumnIntake(
-            name, "numeric", codes, n_missing + int((~ok).sum()),
+            name, "numeric", codes, n_missing + n_out + int((~ok).sum()),
             coerced=True, unparsed_count=int((~ok).sum()), unparsed_examples=examples,
         )
     parsed = _looks_datetime(present)
@@ -390,6 +409,8 @@ def _coerce_arrow(name: str, col) -> Tuple[np.ndarray, ColumnIntake]:
         values = pc.if_else(is_num, trimmed, pa.scalar(None, pa.string()))
         out = pc.cast(values, pa.float64()).to_numpy(zero_copy_only=False)
         out = np.asarray(out, dtype=np.float64)
+        out, n_out = _non_measurements(out, codes)
+        n_code += n_out
         bad_mask = pc.and_(present, pc.invert(is_num))
         n_bad = n_present - n_num
         examples: Tuple[str, ...] = ()

@@ -94,3 +94,21 @@ def test_input_file_unchanged(tmp_path, demo_small_path):
     raw = read_table(str(p))
     assert raw.sha256 == before
     assert hashlib.sha256(p.read_bytes()).hexdigest() == before
+
+
+def test_infinite_and_overflowing_numbers_are_read_as_missing_and_listed(tmp_path):
+    # "inf" written as text, 1e300 (its square overflows float64, IEEE 754 double: max about 1.8e308)
+    # and -0.0: the first two are not measurements, -0.0 is zero.
+    import numpy as np
+
+    from sitecheck.intake import frame_to_raw, read_table
+
+    p = tmp_path / "x.csv"
+    p.write_text("site,a,b\nA,1.5,inf\nB,1e300,2\nA,-0.0,4\nB,3,-inf\n", encoding="utf-8")
+    raw = read_table(str(p))
+    a, b = raw.frame["a"].to_numpy(), raw.frame["b"].to_numpy()
+    assert np.isnan(a[1]) and a[2] == 0.0 and np.isnan(b[0]) and np.isnan(b[3]) and b[1] == 2.0
+    assert raw.column("a").missing_codes == {"beyond +/-1e+150": 1}
+    assert raw.column("b").missing_codes == {"inf": 2}
+    fr = frame_to_raw(__import__("pandas").DataFrame({"x": [1.0, np.inf, -1e300, 2.0]}))
+    assert fr.column("x").missing_codes == {"inf": 1, "beyond +/-1e+150": 1} and fr.column("x").n_missing == 2
