@@ -31,6 +31,10 @@ _MISSING_LOWER = {c.lower(): c for c in MISSING_CODES}
 #: Share of non-missing values that must parse as numbers before a text
 #: column is coerced to numeric.
 COERCE_SHARE = 0.95
+#: A text column whose values are at least this share dates is read as dates (the rest, such as
+#: ranges "09/20/2011 - 10/28/2011", become missing and are reported as unparsed): left as text it
+#: would be a categorical feature with a level per day.
+DATE_SHARE = 0.80
 
 _EXTENSIONS = {
     ".csv": "csv",
@@ -299,7 +303,7 @@ def _looks_datetime(values: pd.Series) -> Optional[pd.Series]:
             parsed = pd.to_datetime(values, errors="coerce", format="mixed")
         except (ValueError, TypeError):
             return None
-    if parsed.notna().mean() >= COERCE_SHARE:
+    if parsed.notna().mean() >= DATE_SHARE:
         return parsed
     return None
 

@@ -47,6 +47,7 @@ _IDENT_PATTERNS = [
     r"biometric", r"finger_?print", r"photo(graph)?",
 ]
 _IDENT_RE = re.compile(r"^(?:" + "|".join(_IDENT_PATTERNS) + r")$")
+_PERSON_NAME_RE = re.compile(r"(^|_)((first|last|given|family|sur|maiden|middle)_?names?)$")
 
 
 def _norm_name(name: str) -> str:
@@ -66,6 +67,10 @@ def identifier_name_match(name: str) -> Optional[str]:
                  re.sub(r"_(raw|text|str|full)$", "", norm)):
         if part != norm and _IDENT_RE.match(part):
             return part
+    # a person's name after any prefix ("fake_last_name", "mothers_first_name")
+    m = _PERSON_NAME_RE.search(norm)
+    if m:
+        return m.group(2)
     return None
 
 
