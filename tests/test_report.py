@@ -28,7 +28,10 @@ def _evil_frame(n_per=40, seed=0):
         d[c] = rng.normal(0, 1, n) + (site == EVIL_SITES[j % 4]) * 0.8
     d["<b>level</b>"] = rng.choice(["<i>x</i>", "=cmd|' /C calc'!A0", "plain"], n)
     d["tiny_flag"] = np.where(np.arange(n) < 3, "yes", "no")  # 3 positives: below the small-cell threshold
-    return pd.DataFrame(d)
+    frame = pd.DataFrame(d)
+    frame["sodium"] = frame["sodium"].round(1).astype(object)
+    frame.loc[[4, 50, 130], "sodium"] = "clotted"  # 3 cells that do not parse: a count below 10
+    return frame
 
 
 @pytest.fixture(scope="module")
@@ -82,12 +85,23 @@ def test_nothing_written_outside_out_and_input_unchanged(evil_run):
 
 
 def test_small_counts_never_in_shared_outputs(evil_run):
+    from sitecheck.render.html import render_html
+    from sitecheck.render.markdown import render_markdown
+
     _, _, out, _, _, _ = evil_run
     html = (out / "report.html").read_text()
     md = (out / "findings.md").read_text()
-    # 'tiny_flag' has 3 'yes' rows: it must never show as a count
+    small = re.compile(r"(?<![\w.])3 value\(s\)|\bn[= ]3\b")
     for text in (html, md):
-        assert not re.search(r"\bn[= ]3\b", text)
+        assert not small.search(text)
+    assert "&lt;10 value(s) did not parse" in html
+    # The same document rendered without suppression (min_cell=1) does show the count: the check
+    # above can fail.
+    doc = json.loads((out / "report.json").read_text())  # report.json is not shareable here: the full counts
+    assert any("3 value(s) did not parse" in w for w in doc["warnings"])
+    assert small.search(render_html(shareable_document(doc, min_cell=1), min_cell=1))
+    assert not small.search(render_html(shareable_document(doc, min_cell=10), min_cell=10))
+    assert not small.search(render_markdown(shareable_document(doc, min_cell=10), min_cell=10))
 
 
 def test_shareable_document_suppresses_counts_and_small_sites():
