@@ -9,5 +9,9 @@ class InputError(ValueError):
     """
 
 
-class ParameterError(InputError):
-    """An invalid parameter passed to a library function."""
+class ParameterError(ValueError):
+    """An invalid parameter passed to a library function: a programming error.
+
+    Not an :class:`InputError` (the user cannot fix it by changing the data or the
+    options); the command-line interface reports it as an internal error, exit code 3.
+    """
