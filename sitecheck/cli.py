@@ -15,6 +15,11 @@ from .gates import FINGERPRINT_KINDS, check_gates
 
 EXIT_OK, EXIT_GATE, EXIT_INPUT, EXIT_INTERNAL = 0, 1, 2, 3
 
+#: The flag of each library setting that an InputError may name (``InputError.option``).
+OPTION_FLAGS = {"encoding": "--encoding", "sep": "--sep", "min_site_rows": "--min-site-rows", "site": "--site",
+                "min_cell": "--min-cell", "folds": "--folds", "seed": "--seed", "max_rows": "--max-rows",
+                "map_rows": "--map-rows", "outcome": "--outcome"}
+
 
 class _Group(click.Group):
     def main(self, *args, **kwargs):  # one-line errors, never a traceback for bad input
@@ -23,14 +28,19 @@ class _Group(click.Group):
             return super().main(*args, **{**kwargs, "standalone_mode": False})
         except click.exceptions.Exit as exc:
             sys.exit(exc.exit_code)
-        except click.ClickException as exc:
-            exc.show()
+        except click.ClickException as exc:  # usage errors too: one line, with where to find help
+            msg = exc.format_message().replace("\n", " ")
+            ctx = getattr(exc, "ctx", None)
+            hint = f" (see '{ctx.command_path} --help')" if ctx is not None else ""
+            click.echo(f"sitecheck: error: {msg}{hint}", err=True)
             sys.exit(EXIT_INPUT)
         except click.exceptions.Abort:
             click.echo("sitecheck: aborted", err=True)
             sys.exit(EXIT_INPUT)
         except InputError as exc:
-            click.echo(f"sitecheck: error: {exc}", err=True)
+            flag = OPTION_FLAGS.get(getattr(exc, "option", None) or "")
+            click.echo(f"sitecheck: error: {exc}" + (f" (option {flag})" if flag and flag not in str(exc) else ""),
+                       err=True)
             sys.exit(EXIT_INPUT)
         except KeyboardInterrupt:
             click.echo("sitecheck: interrupted", err=True)
@@ -115,6 +125,15 @@ def _run_scan(data, *, site, outcome, covariates, groups, identifiers, excluded,
     t = lambda v: tuple(v) if v else None  # noqa: E731
     spec = RoleSpec(site=site, outcome=outcome, covariates=t(covariates), groups=t(groups),
                     identifiers=t(identifiers), excluded=t(excluded))
+    if encoding is not None:
+        import codecs
+
+        try:
+            codecs.lookup(encoding)
+        except LookupError:
+            raise InputError(f"--encoding {encoding!r}: not a known text encoding (for example utf-8, latin-1)") from None
+    if sep is not None and len(sep) != 1:
+        raise InputError(f"--sep {sep!r}: must be a single character")
     run = resolve_config(config, roles=spec, options=flags, sep=sep, encoding=encoding,
                          fail_above=fail_above, fail_on=tuple(fail_on) or None)
     if run.roles.site is None:

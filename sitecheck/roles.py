@@ -326,7 +326,8 @@ def assign_roles(
     frame = raw.frame
     names = list(frame.columns)
     if not spec.site:
-        raise InputError("no site column given; name the column that holds the site (site in the config file)")
+        raise InputError("no site column given; name the column that holds the site (site in the config file)",
+                         option="site")
     if spec.site not in names:
         raise InputError(f"site column {spec.site!r} not found in the table{_closest(spec.site, names)}")
     covs = tuple(spec.covariates or ())
@@ -366,7 +367,7 @@ def assign_roles(
     if len(kept) < 2:
         raise InputError(
             f"site column {spec.site!r}: only {len(kept)} site(s) have at least {min_site_rows} rows; "
-            "at least two are needed (lower min_site_rows to keep smaller sites)"
+            "at least two are needed (lower min_site_rows to keep smaller sites)", option="min_site_rows"
         )
     keep_mask = site_str.isin(kept).to_numpy()
     frame = frame.loc[keep_mask].reset_index(drop=True).copy()
