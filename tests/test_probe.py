@@ -199,8 +199,9 @@ def test_verdict_grades_and_errors():
     assert verdict((0.52, 0.6), 0.01) == "weak"
     assert verdict((0.52, 0.6), 0.2) == "none"
     assert verdict((0.45, 0.56), 0.01) == "none"
-    with pytest.raises(InputError):
+    with pytest.raises(ValueError, match="model must be one of") as info:  # a programming error, not InputError
         cross_fit(np.zeros((10, 2)), np.arange(10) % 2, np.zeros(2, bool), 2, model="forest", random_state=0)
+    assert not isinstance(info.value, InputError)
 
 
 def test_render_escapes_and_suppresses():

@@ -141,7 +141,11 @@ def test_cv_corrected_sd_formula():
 
 
 def test_errors():
-    with pytest.raises(InputError):
+    # Wrong arguments are programming errors (ParameterError, a ValueError), not the user's input (InputError).
+    from sitecheck.errors import ParameterError
+
+    with pytest.raises(ParameterError) as info:
         stats.macro_ovr_auc([0, 1, 2], np.ones((2, 3)))
-    with pytest.raises(InputError):
+    assert not isinstance(info.value, InputError)
+    with pytest.raises(ParameterError):
         stats.bootstrap_auc_ci([0, 1, 1, 0], np.ones((4, 2)) / 2, random_state=None)
