@@ -6,11 +6,11 @@ import pytest
 from sklearn.metrics import confusion_matrix, roc_auc_score, roc_curve
 
 from sitecheck.errors import InputError
-from sitecheck.intake import frame_to_raw
-from sitecheck.outcome import (outcome_folds, outcome_risk, prevalence_by_site, rates_at, site_association,
+from sitecheck.reading.intake import frame_to_raw
+from sitecheck.analyses.outcome import (outcome_folds, outcome_risk, prevalence_by_site, rates_at, site_association,
                                site_only_scores, SortedScores, youden_threshold)
-from sitecheck.prepare import prepare
-from sitecheck.roles import RoleSpec, assign_roles
+from sitecheck.table.prepare import prepare
+from sitecheck.table.roles import RoleSpec, assign_roles
 
 SITES = np.array(["Alpha", "Beta", "Gamma", "Delta"])
 
@@ -318,8 +318,8 @@ def test_section_escapes_text_and_withholds_small_sites(shortcut_result):
 
 
 def test_leak_scores_switch_to_the_real_leak_ranking():
-    from sitecheck.leakage import rank_leakage
-    from sitecheck.probe import cross_fit
+    from sitecheck.analyses.leakage import rank_leakage
+    from sitecheck.analyses.probe import cross_fit
 
     prep = prep_of(synth(600, seed=6), groups=())
     cf = cross_fit(prep.X, prep.site, prep.features.categorical, prep.folds, random_state=0)

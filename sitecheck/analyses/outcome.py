@@ -10,7 +10,7 @@ trains the real model,
   each held-out row is scored by its site's outcome prevalence in the
   training folds;
 - a baseline outcome model of the probe's family
-  (:func:`sitecheck.models.make_booster`) on the features and covariates: the
+  (:func:`sitecheck.analyses.models.make_booster`) on the features and covariates: the
   pooled cross-validated AUC against the leave-one-site-out (LOSO) AUC of each
   held-out site, and the transport gap (pooled AUC minus the row-weighted mean
   LOSO AUC) with a bootstrap interval;
@@ -48,11 +48,11 @@ from sklearn.base import clone
 from sklearn.metrics import roc_curve
 from sklearn.model_selection import StratifiedKFold
 
-from .errors import InputError
-from .leakage import grouped_permutation_importance
-from .models import make_booster
-from .prepare import Prepared
-from .probe import cross_fit
+from sitecheck.errors import InputError
+from sitecheck.analyses.leakage import grouped_permutation_importance
+from sitecheck.analyses.models import make_booster
+from sitecheck.table.prepare import Prepared
+from sitecheck.analyses.probe import cross_fit
 
 #: Generator stream of this analysis (keeps its bootstrap independent of others).
 RNG_STREAM = 7
@@ -84,11 +84,11 @@ def _ci(pair: Any) -> Optional[List[Optional[float]]]:
 
 
 # --------------------------------------------------------------------------
-# small statistics (shared ones come from sitecheck.stats)
+# small statistics (shared ones come from sitecheck.analyses.stats)
 # --------------------------------------------------------------------------
 
 def _wilson(k: int, n: int) -> Interval:
-    from .stats import wilson_ci
+    from sitecheck.analyses.stats import wilson_ci
 
     if n <= 0:
         return None
@@ -97,7 +97,7 @@ def _wilson(k: int, n: int) -> Interval:
 
 def _auc_ci(y: np.ndarray, score: np.ndarray, *, n_boot: int, random_state: int):
     """AUC and bootstrap interval (None, None when only one class is present)."""
-    from .stats import binary_auc_ci
+    from sitecheck.analyses.stats import binary_auc_ci
 
     y = np.asarray(y, dtype=float)
     if len(y) == 0 or y.min() == y.max():
@@ -394,7 +394,7 @@ class OutcomeRisk:
             "equalized_odds": self.equalized_odds.to_dict("per_site"),
             "equalized_odds_by_group": {g: e.to_dict("per_group")
                                         for g, e in self.equalized_odds_by_group.items()},
-            "model": "gradient boosting (sitecheck.models.make_booster) on features and covariates",
+            "model": "gradient boosting on features and covariates",
             "n_splits": self.n_splits,
             "n_boot": self.n_boot,
             "importance": {"method": "held-out permutation importance (AUC drop), mean over folds, "
@@ -563,7 +563,7 @@ def outcome_risk(prep: Prepared, *, leakage: Any = None, threshold: Optional[flo
         Smallest mean drop in held-out outcome AUC for an outcome driver.
     max_iter : int, default 200
         Boosting iterations of the fallback leave-one-site-out fits (the
-        cross-fits use the probe's settings, :func:`sitecheck.probe.cross_fit`).
+        cross-fits use the probe's settings, :func:`sitecheck.analyses.probe.cross_fit`).
     random_state : int, optional
         Defaults to ``prep.seed``.
 
@@ -757,7 +757,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
         half = np.full(X.shape[1], np.nan)
 
     # site leakers
-    from .stats import bh_adjust
+    from sitecheck.analyses.stats import bh_adjust
 
     got = _leak_from_result(leakage, names[:n_feat])
     if got is not None and not np.all(np.isnan(got[0])):

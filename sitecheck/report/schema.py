@@ -1,6 +1,6 @@
 """The JSON Schema (draft 2020-12) of ``report.json``.
 
-The document's ``schema`` field carries :data:`sitecheck.result.SCHEMA_VERSION`.
+The document's ``schema`` field carries :data:`sitecheck.report.result.SCHEMA_VERSION`.
 Minor versions add keys; a major version renames or removes one. Sections are
 present only when their analysis ran (``outcome`` needs ``--outcome``).
 """
@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from typing import Any, Dict
 
-from .result import SCHEMA_VERSION
+from sitecheck.report.result import SCHEMA_VERSION
 
 NUM = {"type": ["number", "null"]}
 CI = {"type": "array", "items": NUM, "minItems": 2, "maxItems": 2, "description": "95% interval [low, high]"}
