@@ -182,7 +182,8 @@ def rate_sd(mu: float, tau2: float) -> float:
     ``t`` on the arcsine scale are normal with mean ``mu`` and variance ``tau2``.
 
     With ``sin(t)^2 = (1 - cos 2t) / 2`` and ``E cos(a t) = cos(a mu) exp(-a^2 tau2 / 2)``
-    for normal ``t``: ``Var = (1 + cos(4 mu) e^{-8 tau2}) / 8 - cos(2 mu)^2 e^{-4 tau2} / 4``.
+    for normal ``t``: ``Var = (1 + cos(4 mu) e^{-8 tau2}) / 8 - cos(2 mu)^2 e^{-4 tau2} / 4``,
+    computed as ``(1 - e^{-4 tau2}) (1 - cos(4 mu) e^{-4 tau2}) / 8`` (the same, and exactly 0 at 0).
     It grows with ``tau2`` and is about ``2 sqrt(p (1 - p)) tau`` for small ``tau2``
     (the delta method at ``p = sin(mu)^2``); it never exceeds 0.5. The Freeman-Tukey
     value is close to ``asin(sqrt(p))`` for all but the smallest counts.
@@ -193,7 +194,7 @@ def rate_sd(mu: float, tau2: float) -> float:
     (0.0, 0.098)
     """
     e4 = math.exp(-4.0 * tau2)
-    var = (1.0 + math.cos(4.0 * mu) * e4 * e4) / 8.0 - math.cos(2.0 * mu) ** 2 * e4 / 4.0
+    var = -math.expm1(-4.0 * tau2) * (1.0 - math.cos(4.0 * mu) * e4) / 8.0
     return math.sqrt(max(var, 0.0))
 
 
