@@ -106,13 +106,21 @@ def _pct_ci(pair: Any) -> str:
     return f"{100 * pair[0]:.0f}% to {100 * pair[1]:.0f}%"
 
 
+def _perm_p(h: Dict[str, Any], key: str = "p_value") -> str:
+    """A permutation p-value; at its floor 1 / (permutations + 1) it is shown as "<= floor"."""
+    p, b = h.get(key), h.get("permutations")
+    if isinstance(p, (int, float)) and isinstance(b, int) and b > 0 and p <= 1.0 / (b + 1) + 1e-12:
+        return f"≤ {1.0 / (b + 1):.{max(3, len(str(b + 1)) - 1)}f}"
+    return _p(p)
+
+
 def _reading(h: Any, unit_word: str) -> str:
     """One sentence: does the rate differ across units beyond sampling noise?"""
     if not isinstance(h, dict) or h.get("p_value") is None:
         return f"not assessed (fewer than two {unit_word} with rows of this class)."
     used = h.get("units_used")
     sd = f"between-{unit_word[:-1]} SD of the true rates {_num(h.get('sd_rate'))} (95% CI {ci(h.get('sd_rate_ci'))})"
-    p = f"permutation p = {_p(h.get('p_value'))}"
+    p = f"permutation p {_eq(_perm_p(h))}"
     if h.get("exceeds_noise"):
         return (f"differs across the {used} {unit_word} by more than sampling noise gives ({p}; {sd}; "
                 f"I² {_pct(h.get('i2'))}).")
@@ -130,12 +138,16 @@ def _het_rows(het: Dict[str, Any]) -> List[List[Any]]:
             nl = h.get("null") or {}
             rows.append([label, h.get("units_used"), f"{_num(h.get('sd_rate'))} ({ci(h.get('sd_rate_ci'))})",
                          f"{_pct(h.get('i2'))} ({_pct_ci(h.get('i2_ci'))})",
-                         f"{_num(h.get('tau2'), 4)} ({ci(h.get('tau2_ci'), 4)})", _p(h.get("p_value")),
+                         f"{_num(h.get('tau2'), 4)} ({ci(h.get('tau2_ci'), 4)})", _perm_p(h),
                          f"{_num(h.get('variance'), 4)} (null {_num((nl.get('variance') or {}).get('median'), 4)}; "
-                         f"{_num((nl.get('variance') or {}).get('q95'), 4)}), p = {_p(h.get('variance_p_value'))}",
+                         f"{_num((nl.get('variance') or {}).get('q95'), 4)}), p {_eq(_perm_p(h, 'variance_p_value'))}",
                          f"{_num(h.get('spread'))} (null {_num((nl.get('spread') or {}).get('median'))}; "
-                         f"{_num((nl.get('spread') or {}).get('q95'))}), p = {_p(h.get('spread_p_value'))}"])
+                         f"{_num((nl.get('spread') or {}).get('q95'))}), p {_eq(_perm_p(h, 'spread_p_value'))}"])
     return rows
+
+
+def _eq(p: str) -> str:
+    return p if p.startswith("≤") else f"= {p}"
 
 
 _HET_HEAD = ["rate", "units", "between-unit SD of true rates (95% CI)", "I² (95% CI)",
@@ -188,7 +200,7 @@ def _het_markdown(eo: Dict[str, Any], unit_word: str) -> List[str]:
     if not isinstance(het, dict):
         return [f"{_spreads(eo)} (max minus min across units).", ""]
     return ([f"- {_RATE_NAME[r]} {_reading(het.get(r), unit_word)}" for r in ("tpr", "fpr")] + [""]
-            + [md_table(_HET_HEAD, _het_rows(het)), "", _small_sentence(het, unit_word),
+            + [md_table(_HET_HEAD, _het_rows(het)), "", _small_sentence(het, unit_word), "",
                f"Kept for comparison: {_spreads(eo)}; across many small units the max - min spread is large "
                "even when the true rates are equal (compare it with its null median).", ""])
 
