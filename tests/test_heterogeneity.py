@@ -221,12 +221,17 @@ def test_two_sites_whose_tpr_differs_by_03_are_detected():
 
 def test_rates_at_heterogeneity_uses_the_per_unit_counts():
     y, pred, unit, labels = _small_sites(3, sites=6, rows=(5, 40))
+    y[unit == 2] = 0.0  # a ward with no positives: no TPR, left out of the TPR heterogeneity
+    pred[(unit == 5) & (y == 0)] = 1.0  # a ward whose FPR is 1
     eo = rates_at(y, pred, unit, labels, threshold=0.5, rule="given", n_permutations=99, random_state=0)
     h = eo.tpr_heterogeneity
     tp = [r.tp for r in eo.per_unit]
     npos = [r.n_pos for r in eo.per_unit]
     ref = rate_heterogeneity(tp, npos, labels, n_permutations=99, random_state=np.random.default_rng(0))
     assert h.to_dict() == ref.to_dict()
+    assert h.empty_units == ("ward 02",) and "ward 02" not in h.units and eo.per_unit[2].tpr is None
+    f = eo.fpr_heterogeneity
+    assert eo.per_unit[5].fpr == 1.0 and "ward 05" in f.units and np.isfinite(f.tau2) and f.tau2 > 0
     assert h.spread == pytest.approx(eo.tpr_spread)
     assert sorted(h.small_units) == sorted(r.label for r in eo.per_unit if 0 < r.n_pos < 10)
     assert rates_at(y, pred, unit, labels, threshold=0.5, rule="given").tpr_heterogeneity is None
