@@ -166,6 +166,8 @@ def test_small_and_empty_units_flagged_and_heterogeneity_without_them():
     assert h.pooled_rate == pytest.approx(118 / 169)
     d = h.to_dict()
     assert d["units_used"] == 4 and d["without_small"]["units_used"] == 2 and d["exceeds_noise"] in (True, False)
+    nonull = rate_heterogeneity(x, n, list("ABCDE"), n_permutations=0, random_state=0)
+    assert nonull.tau2 == pytest.approx(h.tau2) and nonull.p_value is None and nonull.exceeds_noise is None
     one = rate_heterogeneity([3, 0], [5, 0], ["A", "B"], random_state=0)  # one unit with data: nothing to compare
     assert one.tau2 is None and one.p_value is None and one.to_dict()["tau2_ci"] is None
     with pytest.raises(ParameterError, match="random_state"):

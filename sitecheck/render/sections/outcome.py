@@ -116,10 +116,12 @@ def _perm_p(h: Dict[str, Any], key: str = "p_value") -> str:
 
 def _reading(h: Any, unit_word: str) -> str:
     """One sentence: does the rate differ across units beyond sampling noise?"""
-    if not isinstance(h, dict) or h.get("p_value") is None:
+    if not isinstance(h, dict) or h.get("tau2") is None:
         return f"not assessed (fewer than two {unit_word} with rows of this class)."
     used = h.get("units_used")
     sd = f"between-{unit_word[:-1]} SD of the true rates {_num(h.get('sd_rate'))} (95% CI {ci(h.get('sd_rate_ci'))})"
+    if h.get("p_value") is None:
+        return f"across the {used} {unit_word}: {sd}; no permutation null was computed."
     p = f"permutation p {_eq(_perm_p(h))}"
     if h.get("exceeds_noise"):
         return (f"differs across the {used} {unit_word} by more than sampling noise gives ({p}; {sd}; "
