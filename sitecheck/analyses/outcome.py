@@ -59,6 +59,7 @@ from sklearn.base import clone
 from sklearn.metrics import roc_curve
 from sklearn.model_selection import StratifiedKFold
 
+from sitecheck._runtime import SINGLE_THREAD_BELOW as _SINGLE_THREAD_BELOW, derived_seed, stream, thread_limit
 from sitecheck.errors import InputError
 from sitecheck.analyses.heterogeneity import MIN_COUNT, SCALE, RateHeterogeneity, rate_heterogeneity
 from sitecheck.analyses.leakage import grouped_permutation_importance
@@ -71,7 +72,7 @@ RNG_STREAM = 7
 
 #: Below this many rows the models run on one OpenMP thread: thread start-up
 #: then costs more than it saves, and much more on a loaded machine.
-SINGLE_THREAD_BELOW = 200_000
+SINGLE_THREAD_BELOW = _SINGLE_THREAD_BELOW
 
 #: Bootstrap resamples handled per vectorised block (bounds memory at block x n floats).
 BOOT_BLOCK = 32
@@ -653,9 +654,7 @@ def outcome_risk(prep: Prepared, *, leakage: Any = None, threshold: Optional[flo
     Breiman, L. (2001). Random forests. Machine Learning 45, 5-32.
     """
     if prep.outcome is not None and int(np.sum(~np.isnan(prep.outcome))) < SINGLE_THREAD_BELOW:
-        from threadpoolctl import threadpool_limits
-
-        with threadpool_limits(limits=1, user_api="openmp"):
+        with thread_limit(1, user_api="openmp"):
             return _outcome_risk(prep, leakage=leakage, threshold=threshold, n_boot=n_boot, n_repeats=n_repeats,
                                  importance_rows=importance_rows, top_k=top_k, min_importance=min_importance,
                                  max_iter=max_iter, min_rate_count=min_rate_count,
@@ -717,7 +716,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
     pooled = cross_fit(X, yi, cat, folds, model="boosting", random_state=seed)
     oof = pooled.proba[:, 1]
     fold_models = pooled.models
-    pooled_auc, pooled_ci = _auc_ci(y, oof, n_boot=n_boot, random_state=seed + 1)
+    pooled_auc, pooled_ci = _auc_ci(y, oof, n_boot=n_boot, random_state=derived_seed(seed, "outcome.pooled"))
 
     # leave one site out
     loso_pred = np.full(n, np.nan)
@@ -725,9 +724,9 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
     site_folds = [(np.flatnonzero(site != i), np.flatnonzero(site == i)) for i in range(len(labels))]
     trainable = [len(te) > 0 and len(tr) > 0 and 0 < y[tr].sum() < len(tr) for tr, te in site_folds]
     if all(trainable):
-        loso_pred = cross_fit(X, yi, cat, site_folds, model="boosting", random_state=seed + 1).proba[:, 1]
+        loso_pred = cross_fit(X, yi, cat, site_folds, model="boosting", random_state=derived_seed(seed, "outcome.pooled")).proba[:, 1]
     else:  # a held-out site whose complement has one class only: fit the others one by one
-        model = make_booster(cat, random_state=seed + 1, max_iter=max_iter)
+        model = make_booster(cat, random_state=derived_seed(seed, "outcome.pooled"), max_iter=max_iter)
         for i, (tr, te) in enumerate(site_folds):
             if trainable[i]:
                 loso_pred[te] = clone(model).fit(X[tr], yi[tr]).predict_proba(X[te])[:, 1]
@@ -738,7 +737,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
                                         n_pos=int(y[te].sum()), n_train=int(len(tr))))
             continue
         p = loso_pred[te]
-        a, aci = _auc_ci(y[te], p, n_boot=n_boot, random_state=seed + 2 + i)
+        a, aci = _auc_ci(y[te], p, n_boot=n_boot, random_state=derived_seed(seed, "outcome.site_ci", i))
         loso_rows.append(HeldOutAUC(site=str(lab), auc=a, ci=aci, n=int(len(te)),
                                     n_pos=int(y[te].sum()), n_train=int(len(tr))))
     ok_sites = [i for i, h in enumerate(loso_rows) if h.auc is not None]
@@ -796,7 +795,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
     # heterogeneity nulls: their own generators, so the bootstrap above is unchanged
     eo = rates_at(y, pred, site, labels, threshold=thr, rule=rule,
                   spread_ci=(_pct(sp_site[:, 0]), _pct(sp_site[:, 1])), min_count=int(min_rate_count),
-                  n_permutations=int(n_permutations), random_state=np.random.default_rng([seed, RNG_STREAM, 2]))
+                  n_permutations=int(n_permutations), random_state=stream(seed, "outcome", 2))
     eo_groups: Dict[str, EqualizedOdds] = {}
     for gi, (g, (unit, levels)) in enumerate(group_units.items()):
         sel = unit >= 0
@@ -804,12 +803,12 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
                                 spread_ci=(_pct(sp_group[g][:, 0]), _pct(sp_group[g][:, 1])),
                                 n_missing=int((~sel).sum()), min_count=int(min_rate_count),
                                 n_permutations=int(n_permutations),
-                                random_state=np.random.default_rng([seed, RNG_STREAM, 3, gi]))
+                                random_state=stream(seed, "outcome", 3, gi))
 
     # outcome drivers: held-out permutation importance per fold
     imp = np.zeros((len(folds), X.shape[1]))
     n_imp = 0
-    sub_rng = np.random.default_rng([seed, RNG_STREAM, 1])
+    sub_rng = stream(seed, "outcome", 1)
     singletons = [[j] for j in range(X.shape[1])]
     for f, ((tr, te), m) in enumerate(zip(folds, fold_models)):
         rows = te
@@ -819,7 +818,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
             rows = te
         # scikit-learn's permutation scheme with the probe's tree-wise re-prediction (equal results)
         _, drops = grouped_permutation_importance(m, X[rows], y[rows].astype(np.int64), singletons,
-                                                  n_repeats=n_repeats, random_state=seed + f)
+                                                  n_repeats=n_repeats, random_state=derived_seed(seed, "leakage.fold_repeats", f))
         imp[f] = drops.mean(axis=1)
         n_imp += int(len(rows))
     mean_imp = imp.mean(axis=0)
