@@ -62,7 +62,7 @@ from sklearn.model_selection import StratifiedKFold
 from sitecheck._runtime import SINGLE_THREAD_BELOW as _SINGLE_THREAD_BELOW, derived_seed, stream, thread_limit
 from sitecheck.errors import InputError
 from sitecheck.analyses.heterogeneity import MIN_COUNT, SCALE, RateHeterogeneity, rate_heterogeneity
-from sitecheck.analyses.leakage import grouped_permutation_importance
+from sitecheck.analyses.leakage import LeakageResult, grouped_permutation_importance
 from sitecheck.analyses.models import make_booster
 from sitecheck.table.prepare import Prepared
 from sitecheck.analyses.probe import cross_fit
@@ -203,30 +203,16 @@ def site_association(X: np.ndarray, site: np.ndarray, categorical: np.ndarray) -
     return score, pval
 
 
-def _leak_from_result(leakage: Any, names: Sequence[str]) -> Optional[Tuple[np.ndarray, np.ndarray]]:
-    """Per-feature leak scores and interval lower bounds from the leak-ranking
-    result (``objects["leakage"]``), if it has them."""
-    if leakage is None:
+def _leak_from_result(leakage: Optional[LeakageResult],
+                      names: Sequence[str]) -> Optional[Tuple[np.ndarray, np.ndarray]]:
+    """Per-feature leak scores and interval lower bounds from the leak ranking, if it ranked any."""
+    if leakage is None or not leakage.entries:
         return None
-    doc = leakage.to_dict() if hasattr(leakage, "to_dict") else leakage
-    if not isinstance(doc, dict):
-        return None
-    for key in ("features", "ranking", "scores"):
-        rows = doc.get(key)
-        if isinstance(rows, list) and rows and isinstance(rows[0], dict):
-            found: Dict[str, Tuple[float, float]] = {}
-            for r in rows:
-                name = r.get("feature", r.get("name"))
-                val = r.get("score", r.get("importance"))
-                ci = r.get("score_ci") or (None, None)
-                if name is not None and val is not None:
-                    lo = ci[0] if ci and ci[0] is not None else np.nan
-                    found[str(name)] = (float(val), float(lo))
-            if found:
-                miss = (np.nan, np.nan)
-                return (np.array([found.get(n, miss)[0] for n in names], dtype=float),
-                        np.array([found.get(n, miss)[1] for n in names], dtype=float))
-    return None
+    found = {e.feature: (float(e.score), float(e.score_ci[0]) if e.score_ci[0] is not None else np.nan)
+             for e in leakage.entries}
+    miss = (np.nan, np.nan)
+    return (np.array([found.get(n, miss)[0] for n in names], dtype=float),
+            np.array([found.get(n, miss)[1] for n in names], dtype=float))
 
 
 # --------------------------------------------------------------------------
@@ -571,20 +557,18 @@ def _pct(v: np.ndarray) -> Interval:
 
 def _level_label(value: Any, binary: Optional[Tuple[str, str]]) -> Optional[str]:
     """A group level as the user wrote it (binary columns were recoded to 0/1)."""
-    if value is None or (isinstance(value, float) and math.isnan(value)):
-        return None
+    from sitecheck.table.roles import value_label
+
     if binary is not None and isinstance(value, (int, float, np.integer, np.floating)) and value in (0, 1):
         return str(binary[int(value)])
-    if isinstance(value, (float, np.floating)) and float(value).is_integer():
-        return str(int(value))
-    return str(value)
+    return value_label(value)
 
 
 # --------------------------------------------------------------------------
 # the analysis
 # --------------------------------------------------------------------------
 
-def outcome_risk(prep: Prepared, *, leakage: Any = None, threshold: Optional[float] = None,
+def outcome_risk(prep: Prepared, *, leakage: Optional[LeakageResult] = None, threshold: Optional[float] = None,
                  n_boot: int = 500, n_repeats: int = 3, importance_rows: int = 4000,
                  top_k: Optional[int] = None, min_importance: float = 0.01, max_iter: int = 200,
                  min_rate_count: int = MIN_COUNT, n_permutations: int = 999,
@@ -595,7 +579,7 @@ def outcome_risk(prep: Prepared, *, leakage: Any = None, threshold: Optional[flo
     ----------
     prep : Prepared
         Must have an outcome.
-    leakage : object, optional
+    leakage : LeakageResult, optional
         The leak-ranking result (``objects["leakage"]``); its per-feature scores
         rank the site leakers. Without it, :func:`site_association` is used.
     threshold : float in (0, 1), optional
