@@ -8,8 +8,8 @@ import pytest
 from click.testing import CliRunner
 
 from sitecheck.cli import main
-from sitecheck.intake import read_table
-from sitecheck.roles import RoleSpec, assign_roles
+from sitecheck.reading.intake import read_table
+from sitecheck.table.roles import RoleSpec, assign_roles
 
 from .conftest import write
 

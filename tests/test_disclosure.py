@@ -56,8 +56,8 @@ def shared_run(tmp_path_factory):
 
 def test_the_leak_detector_sees_the_raw_counts(shared_run):
     # The check below is only worth something if it sees the counts as the library writes them.
-    from sitecheck.intake import read_table
-    from sitecheck.roles import RoleSpec, assign_roles
+    from sitecheck.reading.intake import read_table
+    from sitecheck.table.roles import RoleSpec, assign_roles
 
     data, _ = shared_run
     table = assign_roles(read_table(str(data)), RoleSpec(site="ward"))

@@ -7,10 +7,10 @@ import pytest
 from click.testing import CliRunner
 
 from sitecheck.cli import main
-from sitecheck.config import load_config, resolve_config
+from sitecheck.reading.config import load_config, resolve_config
 from sitecheck.errors import InputError, ParameterError
-from sitecheck.gates import FINGERPRINT_KINDS, GateFailure, Gates, check_gates
-from sitecheck.roles import RoleSpec
+from sitecheck.report.gates import FINGERPRINT_KINDS, GateFailure, Gates, check_gates
+from sitecheck.table.roles import RoleSpec
 from sitecheck.scan import ScanOptions
 
 from .conftest import write
@@ -136,7 +136,7 @@ def test_scan_file_applies_the_config_options(tmp_path):
 def test_parameter_errors_are_not_input_errors(tmp_path, monkeypatch):
     # A wrong argument to a library function is a programming error (exit 3 from the CLI), not the user's.
     from sitecheck import scan as scan_mod
-    from sitecheck.stats import bootstrap_auc_ci
+    from sitecheck.analyses.stats import bootstrap_auc_ci
 
     assert issubclass(ParameterError, ValueError) and not issubclass(ParameterError, InputError)
     y = np.array([0, 1, 0, 1, 2, 2])

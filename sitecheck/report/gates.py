@@ -23,7 +23,7 @@ import numbers
 from dataclasses import dataclass
 from typing import Any, Mapping, Optional, Tuple
 
-#: The kinds of fingerprint (the one list: the detectors in :mod:`sitecheck.fingerprints`, the gates and
+#: The kinds of fingerprint (the one list: the detectors in :mod:`sitecheck.analyses.fingerprints`, the gates and
 #: the command line read it). Kept here, free of heavy imports, so the command line starts fast.
 FINGERPRINT_KINDS = ("unit_ratio", "precision", "heaping", "floor", "ceiling", "missing_code", "site_missing",
                      "exclusive_level", "shift", "scale")

@@ -82,7 +82,7 @@ class ScanResult:
             person running the scan (counts are not suppressed); shared outputs are the
             report files.
         """
-        from . import __version__
+        from sitecheck import __version__
 
         if isinstance(max_warnings, bool) or not isinstance(max_warnings, int) or max_warnings < 0:
             raise ValueError(f"max_warnings must be a non-negative integer, got {max_warnings!r}")

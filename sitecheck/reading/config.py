@@ -26,12 +26,12 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover
     import tomli as tomllib
 
-from .errors import InputError
-from .gates import Gates, check_fail_above, check_fail_on
-from .roles import RoleSpec
+from sitecheck.errors import InputError
+from sitecheck.report.gates import Gates, check_fail_above, check_fail_on
+from sitecheck.table.roles import RoleSpec
 
 if TYPE_CHECKING:  # pragma: no cover
-    from .scan import ScanOptions
+    from sitecheck.scan import ScanOptions
 
 _ROLE_KEYS = {"site", "outcome", "covariates", "groups", "identifiers", "excluded", "features", "panels"}
 _OPTION_KEYS = {"seed", "min_site_rows", "min_cell", "folds", "max_rows", "map_rows", "sep", "encoding",
@@ -244,7 +244,7 @@ def resolve_config(path: Optional[str] = None, *, roles: Optional[RoleSpec] = No
     TypeError, ValueError
         A wrong explicit argument (a programming error, not the user's data).
     """
-    from .scan import ScanOptions
+    from sitecheck.scan import ScanOptions
 
     cfg = load_config(path)
     if roles is not None and not isinstance(roles, RoleSpec):

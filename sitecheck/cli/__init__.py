@@ -9,9 +9,9 @@ from typing import Optional
 
 import click
 
-from . import __version__
-from .errors import InputError
-from .gates import FINGERPRINT_KINDS, check_gates
+from sitecheck import __version__
+from sitecheck.errors import InputError
+from sitecheck.report.gates import FINGERPRINT_KINDS, check_gates
 
 EXIT_OK, EXIT_GATE, EXIT_INPUT, EXIT_INTERNAL = 0, 1, 2, 3
 
@@ -116,10 +116,10 @@ def _run_scan(data, *, site, outcome, covariates, groups, identifiers, excluded,
               out_dir, quiet, shareable=False, fail_above=None, fail_on=(), **flags):
     """Resolve the configuration (the library's one loader), scan, write, print the summary and
     the failed gates; exit 1 when a gate failed."""
-    from .config import resolve_config
-    from .render import write_report
-    from .roles import RoleSpec
-    from .scan import scan_configured
+    from sitecheck.reading.config import resolve_config
+    from sitecheck.render import write_report
+    from sitecheck.scan import scan_configured
+    from sitecheck.table.roles import RoleSpec
 
     progress = Progress(quiet)
     t = lambda v: tuple(v) if v else None  # noqa: E731
@@ -177,7 +177,7 @@ def scan_cmd(data, **kw):
 @click.option("--quiet", "-q", is_flag=True, help="No progress messages on stderr.")
 def demo_cmd(out_dir, rows, seed, quiet):
     """Write the invented four-hospital demo table into --out and scan it."""
-    from .demo import DEMO_ROLES, write_demo
+    from sitecheck.demo import DEMO_ROLES, write_demo
 
     paths = write_demo(out_dir, n_rows=rows, seed=seed)
     if not quiet:
@@ -194,12 +194,12 @@ def schema_cmd():
     """Print the JSON Schema of report.json (versioned)."""
     import json
 
-    from .schema import report_schema
+    from sitecheck.report.schema import report_schema
 
     click.echo(json.dumps(report_schema(), indent=2))
 
 
-from .commands_harmonise import harmonise_cmd  # noqa: E402  (issue 6: the harmonise command)
+from sitecheck.cli.harmonise import harmonise_cmd  # noqa: E402  (issue 6: the harmonise command)
 
 main.add_command(harmonise_cmd)
 
