@@ -290,11 +290,38 @@ def scan_file(path: str, *, site: Optional[str] = None, outcome: Optional[str] =
               options: Optional[ScanOptions] = None, progress: Optional[Progress] = None) -> ScanResult:
     """Read a file and scan it.
 
-    Role arguments override the config file's roles; ``options`` fields set to
-    other than their default (or the keys of a mapping) override the file's
-    ``[options]``; ``sep`` and ``encoding`` override the file's. The command
-    line goes through the same loader (:func:`sitecheck.reading.config.resolve_config`),
-    so a config file gives the same report from either.
+    Parameters
+    ----------
+    path : str
+        CSV, TSV, gzip-compressed CSV/TSV or Parquet, chosen by extension.
+    site, outcome : str, optional
+        Column roles; override the config file's.
+    covariates, groups, identifiers, excluded : sequence of str, optional
+        Column roles; each overrides the config file's list.
+    config : str, optional
+        TOML file with roles, ``[panels]`` and ``[options]``.
+    sep, encoding : str, optional
+        Reading options; override the config file's (default: from the extension, utf-8).
+    options : ScanOptions or mapping, optional
+        Fields set to other than their default (or the keys of a mapping) override the
+        config file's ``[options]``.
+    progress : callable, optional
+        Called with one line per stage.
+
+    Returns
+    -------
+    ScanResult
+
+    Raises
+    ------
+    InputError
+        A problem with the file, the config file or the roles, named in one line.
+
+    Notes
+    -----
+    The command line goes through the same loader
+    (:func:`sitecheck.reading.config.resolve_config`), so a config file gives the same
+    ``report.json`` from either (``tests/test_report.py``).
     """
     run = resolve_config(config, roles=_spec(site, outcome, covariates, groups, identifiers, excluded),
                          options=options, sep=sep, encoding=encoding)
