@@ -9,8 +9,8 @@ the feature for clean.
 
 The rule reads only numbers the two analyses already produced (no new fit):
 
-1. the feature was permuted with a correlated group or a declared panel: the
-   group is named, with the group's AUC drop;
+1. the feature was also permuted with a correlated group or a declared panel
+   whose joint drop interval lies above 0: the group is named, with its drop;
 2. else the highest-ranked leaking feature (drop interval above 0) with a
    fingerprint at the same site;
 3. else the leaking feature with the largest standardised mean difference of
@@ -24,7 +24,7 @@ from dataclasses import dataclass
 from typing import Any, Dict, List, Optional, Tuple
 
 RULE = ("a fingerprinted feature whose leak-ranking drop interval includes 0 is explained by, in order: "
-        "the correlated group or panel it was permuted with; the highest-ranked leaking feature (interval "
+        "the correlated group or panel it was permuted with, when the group's drop interval lies above 0; the highest-ranked leaking feature (interval "
         "above 0) fingerprinted at the same site; the leaking feature with the largest |SMD| of that site "
         "against the rest")
 
@@ -123,7 +123,8 @@ def reconcile(leakage, fingerprints) -> Reconciliation:
             continue
         base = dict(feature=f.feature, site=f.site, kind=f.kind, rank=int(e.rank), score=float(e.score),
                     score_ci=(float(e.score_ci[0]), float(e.score_ci[1])))
-        group = next((c for c in leakage.clusters if f.feature in c.members and len(c.members) > 1), None)
+        group = next((c for c in leakage.clusters if f.feature in c.members and len(c.members) > 1
+                      and _lo(c.score_ci) > 0), None)
         if group is not None:
             out.append(Redundancy(**base, reason="group", via=tuple(m for m in group.members if m != f.feature),
                                   via_score=float(group.score),

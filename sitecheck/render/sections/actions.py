@@ -38,6 +38,39 @@ def _fp_line(f: Dict[str, Any], sites: Dict[str, Any], min_cell: int, rec) -> Di
             "note": note, "href": "#" + fp_section.finding_id(f)}
 
 
+def _rolled(fps, sites, min_cell, rec) -> List[Dict[str, Any]]:
+    """One line per high or medium recording finding; low-severity ones of one kind at one site on one
+    line (digit preference across many features is one habit of one site)."""
+    out: List[Dict[str, Any]] = []
+    low: Dict[tuple, List[Dict[str, Any]]] = {}
+    for f in fps:
+        if f.get("kind") in DISTRIBUTION:
+            continue
+        if f.get("severity") == "low":
+            key = (f.get("kind"), f.get("site"))
+            if key not in low:
+                low[key] = []
+                out.append({"_low": key})
+            low[key].append(f)
+        else:
+            out.append(_fp_line(f, sites, min_cell, rec))
+    lines = []
+    for x in out:
+        if "_low" not in x:
+            lines.append(x)
+            continue
+        group = low[x["_low"]]
+        if len(group) == 1:
+            lines.append(_fp_line(group[0], sites, min_cell, rec))
+            continue
+        first = _fp_line(group[0], sites, min_cell, rec)
+        names = [g.get("feature") for g in group]
+        first.update(column=f"{len(group)} features", what=artefact(group[0].get("kind")),
+                     evidence=", ".join(names[:6]) + (f" and {len(names) - 6} more" if len(names) > 6 else ""))
+        lines.append(first)
+    return lines
+
+
 def _hygiene_lines(doc: Dict[str, Any], fp_keys) -> List[Dict[str, Any]]:
     out = []
     for h in doc.get("hygiene") or []:
@@ -63,8 +96,9 @@ def _gap_lines(doc: Dict[str, Any]) -> List[Dict[str, Any]]:
     for r in fp_section.gap_rollup(doc):
         n = r["n_features"]
         out.append({"severity": "review", "site": r["site"], "column": f"{n} feature{'s' if n != 1 else ''}",
-                    "what": "location or spread gaps", "evidence": f"largest {r['largest']} ({r['largest_kind']}: "
-                    f"{r['largest_detail']})", "fix": fix, "note": "", "href": r["href"]})
+                    "what": f"location or spread gaps (largest: {r['largest']})",
+                    "evidence": f"{r['largest_kind']}, {r['largest_detail']}", "fix": fix, "note": "",
+                    "href": r["href"]})
     return out
 
 
@@ -91,7 +125,7 @@ def model(doc: Dict[str, Any], min_cell: int) -> Dict[str, Any]:
     sites = (doc.get("input") or {}).get("sites") or {}
     rec = reconciled(doc)
     fps = sorted(doc.get("fingerprints") or [], key=fp_section.order_key)
-    mech = [_fp_line(f, sites, min_cell, rec) for f in fps if f.get("kind") not in DISTRIBUTION]
+    mech = _rolled(fps, sites, min_cell, rec)
     hyg = _hygiene_lines(doc, {(f.get("feature"), f.get("site")) for f in fps})
     gaps = _gap_lines(doc)
     out_line = _outcome_line(doc)

@@ -11,10 +11,11 @@ from typing import Any, Dict, List, Optional
 
 from ..fmt import DASH, ci, excludes_zero, num, pval
 from ..templating import Cell, Col, Table, anchor, figures_of
-from ..words import artefact
+from ..words import DISTRIBUTION, artefact
 
 ID = "leakage"
 TITLE = "What carries the site signature"
+MD_NOTES = 8  # reconciled recording artefacts listed in findings.md
 
 
 def redundancy_sentence(r: Dict[str, Any]) -> str:
@@ -86,12 +87,13 @@ def model(doc: Dict[str, Any], min_cell: int) -> Optional[Dict[str, Any]]:
                      [[", ".join(c["members"]), "correlated (Spearman)" if c.get("source") == "correlation"
                        else str(c.get("source", "")).replace("panel ", "declared panel "), num(c.get("score")),
                        ci(c.get("score_ci"))] for c in (doc.get("clusters") or [])])
-    notes = []
+    notes, gap_notes = [], []
     for feat, rs in rec.items():
         for r in rs:
-            notes.append({"feature": feat, "site": r.get("site"), "kind": artefact(r.get("kind")),
+            (gap_notes if r.get("kind") in DISTRIBUTION else notes).append(
+                {"feature": feat, "site": r.get("site"), "kind": artefact(r.get("kind")),
                           "rank": r.get("rank"), "drop": num(r.get("score")), "why": redundancy_sentence(r),
-                          "href": "#" + anchor("fp", feat, r.get("site"), r.get("kind"))})
+                 "href": "#" + anchor("fp", feat, r.get("site"), r.get("kind"))})
     mp = doc.get("missingness") if isinstance(doc.get("missingness"), dict) else None
     missing = None
     if mp and mp.get("auc") is not None:
@@ -100,6 +102,7 @@ def model(doc: Dict[str, Any], min_cell: int) -> Optional[Dict[str, Any]]:
     return {"id": ID, "title": TITLE, "n_folds": meth.get("n_folds"), "n_repeats": meth.get("n_repeats"),
             "n_rows": meth.get("n_rows_per_fold"), "threshold": meth.get("cluster_threshold"),
             "table": table, "n_shown": len(shown), "n_all": len(leak), "clusters": clusters,
-            "notes": notes, "missing": missing, "figures": figures_of(doc, "leakage"),
+            "notes": notes, "gap_notes": gap_notes, "md_notes": notes[:MD_NOTES],
+            "md_more": len(notes) - len(notes[:MD_NOTES]) + len(gap_notes), "missing": missing, "figures": figures_of(doc, "leakage"),
             "missing_figures": figures_of(doc, "missingness"),
             "top": [{"feature": r[1].text, "drop": r[2], "ci": r[3]} for r in shown[:10]]}
