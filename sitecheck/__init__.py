@@ -3,9 +3,9 @@
 The public API is small:
 
 - :func:`sitecheck.scan.scan_file` / :func:`sitecheck.scan.scan_frame` run every analysis and
-  return a :class:`sitecheck.result.ScanResult`;
-- :func:`sitecheck.intake.read_table`, :func:`sitecheck.roles.assign_roles` and
-  :func:`sitecheck.prepare.prepare` are the steps, for use on their own;
+  return a :class:`sitecheck.report.result.ScanResult`;
+- :func:`sitecheck.reading.intake.read_table`, :func:`sitecheck.table.roles.assign_roles` and
+  :func:`sitecheck.table.prepare.prepare` are the steps, for use on their own;
 - :func:`sitecheck.demo.generate_demo` makes the invented demo network.
 """
 

@@ -14,13 +14,13 @@ from typing import Any, Callable, Dict, Optional, Sequence
 import numpy as np
 import pandas as pd
 
-from . import __version__
-from .config import load_config
+from sitecheck import __version__
+from sitecheck.reading.config import load_config
 from .errors import InputError
-from .intake import RawTable, frame_to_raw, read_table
-from .prepare import Prepared, prepare
-from .result import ScanResult
-from .roles import RoleSpec, Table, assign_roles
+from sitecheck.reading.intake import RawTable, frame_to_raw, read_table
+from sitecheck.table.prepare import Prepared, prepare
+from sitecheck.report.result import ScanResult
+from sitecheck.table.roles import RoleSpec, Table, assign_roles
 
 Progress = Callable[[str], None]
 
@@ -86,7 +86,7 @@ def _run_specs(prep: Prepared, options: ScanOptions, names, objects: Dict[str, A
     (None: no limit); fill ``objects``."""
     from threadpoolctl import threadpool_limits
 
-    from . import analyses
+    from sitecheck.analyses import registry as analyses
 
     for spec in analyses.REGISTRY:
         if spec.name not in names:
@@ -126,7 +126,7 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
     """
     import multiprocessing as mp
 
-    from . import analyses
+    from sitecheck.analyses import registry as analyses
 
     if getattr(mp.current_process(), "_inheriting", False):
         # This is the spawned second process re-running a script that scans at import time:

@@ -158,7 +158,7 @@ def test_permutation_floor_is_shown_as_a_bound(demo_report):
     # Phipson & Smyth (2010): a permutation p-value is at least 1/(B+1); merged over folds by
     # e x geometric mean (Vovk & Wang 2020) the smallest possible value is e/(B+1).
     from sitecheck.render.fmt import p_is, pval
-    from sitecheck.stats import permutation_pvalue_floor
+    from sitecheck.analyses.stats import permutation_pvalue_floor
 
     assert permutation_pvalue_floor(999) == pytest.approx(math.e / 1000, rel=1e-12)
     assert pval(math.e / 1000, math.e / 1000) == "≤ 0.0027"

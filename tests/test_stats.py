@@ -1,10 +1,10 @@
-"""Tests of sitecheck.stats against reference libraries and published definitions."""
+"""Tests of sitecheck.analyses.stats against reference libraries and published definitions."""
 import numpy as np
 import pytest
 from scipy import stats as st
 from sklearn.metrics import roc_auc_score
 
-from sitecheck import stats
+from sitecheck.analyses import stats
 from sitecheck.errors import InputError
 
 

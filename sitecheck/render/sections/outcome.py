@@ -65,14 +65,135 @@ def _shortcuts(o) -> Table:
                    ci(c.get("importance_ci"), 4), c.get("importance_rank")] for c in (o.get("shortcut_candidates") or [])])
 
 
-def _rates(per, min_cell, unit: str) -> Table:
+def _flags(het: Any) -> Dict[str, List[str]]:
+    """Notes per unit from the heterogeneity's lists of small and empty units."""
+    out: Dict[str, List[str]] = {}
+    for rate, few, none in (("tpr", "few positives", "no positives"), ("fpr", "few negatives", "no negatives")):
+        h = het.get(rate) if isinstance(het, dict) else None
+        if not isinstance(h, dict):
+            continue
+        for u in h.get("small_units") or []:
+            out.setdefault(str(u), []).append(few)
+        for u in h.get("empty_units") or []:
+            out.setdefault(str(u), []).append(none)
+    return out
+
+
+def _rates(per, min_cell, unit: str, het: Any = None) -> Table:
     rows = []
+    flags = _flags(het)
     for u, e in (per or {}).items():
-        rows.append([u, _n(e, min_cell), WITHHELD, "", "", ""] if _small(e, min_cell) else
-                    [u, _n(e, min_cell), num(e.get("tpr")), ci(e.get("tpr_ci")), num(e.get("fpr")), ci(e.get("fpr_ci"))])
-    return Table([Col(unit), Col("rows", numeric=True), Col("TPR", "true-positive rate", True),
+        note = ", ".join(flags.get(str(u), [])) or DASH
+        rows.append([u, _n(e, min_cell), "", "", WITHHELD, "", "", "", note] if _small(e, min_cell) else
+                    [u, _n(e, min_cell), count(suppress_count(e.get("n_pos"), min_cell)),
+                     count(suppress_count(e.get("n_neg"), min_cell)), num(e.get("tpr")), ci(e.get("tpr_ci")),
+                     num(e.get("fpr")), ci(e.get("fpr_ci")), note])
+    return Table([Col(unit), Col("rows", numeric=True), Col("positives", numeric=True),
+                  Col("negatives", numeric=True), Col("TPR", "true-positive rate", True),
                   Col("95% CI", "Wilson", True), Col("FPR", "false-positive rate", True),
-                  Col("95% CI", "Wilson", True)], rows)
+                  Col("95% CI", "Wilson", True), Col("note")], rows)
+
+
+_RATE_NAME = {"tpr": "TPR (true positive rate)", "fpr": "FPR (false positive rate)"}
+
+
+def _pct(x: Any) -> str:
+    return f"{100 * x:.0f}%" if isinstance(x, (int, float)) and not isinstance(x, bool) else DASH
+
+
+def _pct_ci(pair: Any) -> str:
+    if not pair or not isinstance(pair[0], (int, float)) or not isinstance(pair[1], (int, float)):
+        return DASH
+    return f"{100 * pair[0]:.0f}% to {100 * pair[1]:.0f}%"
+
+
+def _perm_p(h: Dict[str, Any], key: str = "p_value") -> str:
+    """A permutation p-value; at its floor 1 / (permutations + 1) it is shown as "≤ floor"."""
+    b = h.get("permutations")
+    floor = 1.0 / (b + 1) if isinstance(b, int) and b > 0 else None
+    return pval(h.get(key), floor)
+
+
+def _eq(p: str) -> str:
+    return p if p[:1] in ("≤", "<") else f"= {p}"
+
+
+def _reading(h: Any, unit_word: str) -> str:
+    """One sentence: does the rate differ across units beyond sampling noise?"""
+    if not isinstance(h, dict) or h.get("tau2") is None:
+        return f"not assessed (fewer than two {unit_word} with rows of this class)."
+    used = h.get("units_used")
+    sd = f"between-{unit_word[:-1]} SD of the true rates {num(h.get('sd_rate'))} (95% CI {ci(h.get('sd_rate_ci'))})"
+    if h.get("p_value") is None:
+        return f"across the {used} {unit_word}: {sd}; no permutation null was computed."
+    p = f"permutation p {_eq(_perm_p(h))}"
+    if h.get("exceeds_noise"):
+        return (f"differs across the {used} {unit_word} by more than sampling noise gives ({p}; {sd}; "
+                f"I² {_pct(h.get('i2'))}).")
+    return (f"does not differ across the {used} {unit_word} by more than sampling noise gives ({p}; {sd}). "
+            f"This does not show the rates are equal: differences up to the upper bound are not ruled out.")
+
+
+def _het_table(het: Dict[str, Any]) -> Table:
+    rows = []
+    for rate in ("tpr", "fpr"):
+        for label, h in ((rate.upper(), het.get(rate)),
+                         (f"{rate.upper()} without small units", (het.get(rate) or {}).get("without_small"))):
+            if not isinstance(h, dict):
+                continue
+            nl = h.get("null") or {}
+            rows.append([label, h.get("units_used"), f"{num(h.get('sd_rate'))} ({ci(h.get('sd_rate_ci'))})",
+                         f"{_pct(h.get('i2'))} ({_pct_ci(h.get('i2_ci'))})",
+                         f"{num(h.get('tau2'), 4)} ({ci(h.get('tau2_ci'), 4)})", _perm_p(h),
+                         f"{num(h.get('variance'), 4)} (null {num((nl.get('variance') or {}).get('median'), 4)}; "
+                         f"{num((nl.get('variance') or {}).get('q95'), 4)}), p {_eq(_perm_p(h, 'variance_p_value'))}",
+                         f"{num(h.get('spread'))} (null {num((nl.get('spread') or {}).get('median'))}; "
+                         f"{num((nl.get('spread') or {}).get('q95'))}), p {_eq(_perm_p(h, 'spread_p_value'))}"])
+    return Table([Col("rate"), Col("units", numeric=True), Col("between-unit SD", "of true rates (95% CI)"),
+                  Col("I²", "share not noise (95% CI)"), Col("tau²", "arcsine scale (95% CI, Q-profile)"),
+                  Col("p", "permutation within class", True),
+                  Col("variance of observed rates", "null median; 95th pct, p"),
+                  Col("max − min", "null median; 95th pct, p")], rows, sortable=False)
+
+
+def _small_sentence(het: Dict[str, Any], unit_word: str) -> str:
+    t, f = het.get("tpr") or {}, het.get("fpr") or {}
+    parts = []
+    for h, cls in ((t, "positives"), (f, "negatives")):
+        small, empty = h.get("small_units") or [], h.get("empty_units") or []
+        if small:
+            parts.append(f"{len(small)} of the {h.get('units_used')} {unit_word} have fewer than "
+                         f"{het.get('min_count')} {cls}")
+        if empty:
+            parts.append(f"{len(empty)} have no {cls} (no {'TPR' if cls == 'positives' else 'FPR'}; left out)")
+    if not parts:
+        return f"Every {unit_word[:-1]} has at least {het.get('min_count')} positives and negatives."
+    return ("; ".join(parts) + ". They are kept in the heterogeneity (their noise is modelled) and flagged in the "
+            "table below; the rows marked \"without small units\" repeat the analysis without them.")
+
+
+def _het(eo: Dict[str, Any], unit_word: str) -> Dict[str, Any]:
+    het = eo.get("heterogeneity")
+    if not isinstance(het, dict):
+        return {"readings": [], "table": None, "small": "", "permutations": None, "spreads": _spreads(eo)}
+    return {"readings": [{"rate": _RATE_NAME[r], "text": _reading(het.get(r), unit_word)} for r in ("tpr", "fpr")],
+            "table": _het_table(het), "small": _small_sentence(het, unit_word),
+            "permutations": het.get("permutations"), "spreads": _spreads(eo)}
+
+
+def brief(o: Dict[str, Any]) -> List[str]:
+    """The section's lead: do TPR and FPR differ across sites beyond noise, then the transport gap."""
+    out = []
+    het = (o.get("equalized_odds") or {}).get("heterogeneity")
+    if isinstance(het, dict):
+        for r in ("tpr", "fpr"):
+            out.append(f"Equalized odds, {_RATE_NAME[r]}: {_reading(het.get(r), 'sites')}")
+    if o.get("transport_gap") is None:
+        out.append(gap_sentence(o))
+    else:
+        out.append(f"Transport gap {num(o.get('transport_gap'))} (95% CI {ci(o.get('transport_gap_ci'))}). "
+                   f"{gap_sentence(o)}")
+    return out
 
 
 def _spreads(eo) -> str:
@@ -98,8 +219,8 @@ def model(doc: Dict[str, Any], min_cell: int) -> Optional[Dict[str, Any]]:
         return None
     test = o.get("prevalence_test") or {}
     eo = o.get("equalized_odds") or {}
-    by_group = [{"name": g, "spreads": _spreads(ge), "n_missing": count(suppress_count(ge.get("n_missing"), min_cell)),
-                 "table": _rates(ge.get("per_group"), min_cell, str(g))}
+    by_group = [{"name": g, "het": _het(ge, "levels"), "n_missing": count(suppress_count(ge.get("n_missing"), min_cell)),
+                 "table": _rates(ge.get("per_group"), min_cell, str(g), ge.get("heterogeneity"))}
                 for g, ge in (o.get("equalized_odds_by_group") or {}).items() if isinstance(ge, dict)]
     return {"id": ID, "title": TITLE, "outcome": o.get("outcome"),
             "n": count(suppress_count(o.get("n"), min_cell)), "n_missing": count(suppress_count(o.get("n_missing"), min_cell)),
@@ -111,6 +232,7 @@ def model(doc: Dict[str, Any], min_cell: int) -> Optional[Dict[str, Any]]:
             "gap_ci": ci(o.get("transport_gap_ci")), "gap_sentence": gap_sentence(o), "loso": _loso(o, min_cell),
             "rule": plain(o.get("shortcut_rule")), "source": _SOURCES.get(o.get("leak_source"), plain(o.get("leak_source"))),
             "shortcuts": _shortcuts(o),
-            "eo": ({"threshold": num(eo.get("threshold")), "rule": plain(eo.get("threshold_rule")), "spreads": _spreads(eo),
-                    "table": _rates(eo.get("per_site"), min_cell, "site")} if eo else None),
+            "eo": ({"threshold": num(eo.get("threshold")), "rule": plain(eo.get("threshold_rule")), "het": _het(eo, "sites"),
+                    "table": _rates(eo.get("per_site"), min_cell, "site", eo.get("heterogeneity"))} if eo else None),
+            "brief": brief(o),
             "by_group": by_group}

@@ -32,8 +32,8 @@ SMD_FLAG = 0.1
 
 
 def bh_adjust(pvalues: Sequence[float]) -> np.ndarray:
-    """:func:`sitecheck.stats.bh_adjust` over the non-missing p-values (NaN kept as NaN)."""
-    from .stats import bh_adjust as _bh
+    """:func:`sitecheck.analyses.stats.bh_adjust` over the non-missing p-values (NaN kept as NaN)."""
+    from sitecheck.analyses.stats import bh_adjust as _bh
 
     p = np.asarray(pvalues, dtype=float)
     out = np.full(p.shape, np.nan)

@@ -1,7 +1,7 @@
 """Everything the analyses share, computed once.
 
 :func:`prepare` encodes the feature (and covariate) columns of a
-:class:`~sitecheck.roles.Table` into numeric matrices, draws the
+:class:`~sitecheck.table.roles.Table` into numeric matrices, draws the
 site-stratified subsample used for modelling, and fixes the stratified folds.
 """
 from __future__ import annotations
@@ -13,8 +13,8 @@ import numpy as np
 import pandas as pd
 from sklearn.model_selection import StratifiedKFold
 
-from .errors import InputError
-from .roles import Table
+from sitecheck.errors import InputError
+from sitecheck.table.roles import Table
 
 #: Categorical levels kept per column before rarer ones are lumped into one
 #: "other" code (HistGradientBoosting accepts at most 255 categories).

@@ -5,12 +5,12 @@ classifier predicts the site from the features; its out-of-fold macro
 one-vs-rest ROC AUC measures how much site signal the pooled data carries
 (0.5: none; 1: the sites are perfectly separable).
 
-The default probe is gradient boosting (:func:`sitecheck.models.make_booster`,
+The default probe is gradient boosting (:func:`sitecheck.analyses.models.make_booster`,
 native missing values and categoricals); a regularised logistic regression
-(:func:`sitecheck.models.make_linear`) gives a second opinion. Intervals come
+(:func:`sitecheck.analyses.models.make_linear`) gives a second opinion. Intervals come
 from a stratified bootstrap of the out-of-fold predictions; the p-value from a
 label-permutation test within the held-out folds
-(:func:`sitecheck.stats.fold_permutation_pvalue`), which needs no refitting.
+(:func:`sitecheck.analyses.stats.fold_permutation_pvalue`), which needs no refitting.
 
 References
 ----------
@@ -27,9 +27,9 @@ from sklearn.base import clone
 from sklearn.model_selection import StratifiedKFold
 from threadpoolctl import threadpool_limits
 
-from . import stats
-from .errors import InputError, ParameterError
-from .models import make_booster, make_linear
+from sitecheck.analyses import stats
+from sitecheck.errors import InputError, ParameterError
+from sitecheck.analyses.models import make_booster, make_linear
 
 MODELS = ("boosting", "linear")
 
@@ -217,7 +217,7 @@ class ProbeScore:
     balanced_accuracy : float
     ci_widening : float
         Factor (>= 1) by which the bootstrap interval was stretched to match the
-        fold-to-fold spread (:func:`sitecheck.stats.widened_ci`).
+        fold-to-fold spread (:func:`sitecheck.analyses.stats.widened_ci`).
     fold_auc : tuple of float
         Macro AUC of each test fold alone.
     """

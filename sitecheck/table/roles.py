@@ -1,6 +1,6 @@
 """Column roles, kinds and hygiene findings.
 
-:func:`assign_roles` turns a :class:`~sitecheck.intake.RawTable` and a
+:func:`assign_roles` turns a :class:`~sitecheck.reading.intake.RawTable` and a
 :class:`RoleSpec` into a validated :class:`Table`: every column gets a role
 (``site``, ``outcome``, ``covariate``, ``group``, ``identifier``,
 ``excluded`` or ``feature``), a kind (``numeric``, ``binary``,
@@ -17,8 +17,8 @@ from typing import Dict, List, Optional, Sequence, Tuple
 import numpy as np
 import pandas as pd
 
-from .errors import InputError
-from .intake import ColumnIntake, RawTable
+from sitecheck.errors import InputError
+from sitecheck.reading.intake import ColumnIntake, RawTable
 
 ROLES = ("site", "outcome", "covariate", "group", "identifier", "excluded", "feature")
 KINDS = ("numeric", "binary", "categorical", "datetime", "text")
@@ -302,7 +302,7 @@ def assign_roles(
     Parameters
     ----------
     raw : RawTable
-        Output of :func:`sitecheck.intake.read_table`.
+        Output of :func:`sitecheck.reading.intake.read_table`.
     spec : RoleSpec
         Requested roles; ``spec.site`` is required.
     min_site_rows : int, default 20

@@ -26,8 +26,8 @@ from sklearn.decomposition import PCA
 from sklearn.metrics import silhouette_samples
 from sklearn.neighbors import NearestNeighbors
 
-from .errors import InputError
-from .prepare import Prepared, stratified_subsample
+from sitecheck.errors import InputError
+from sitecheck.table.prepare import Prepared, stratified_subsample
 
 METHODS: Tuple[str, ...] = ("pca", "tsne", "umap")
 
@@ -262,8 +262,8 @@ def silhouette_by_site(X, site, site_labels: Sequence[str], *, max_rows: int = 3
 
 def preprocess(X, categorical) -> np.ndarray:
     """The map design: see :data:`PREPROCESSING` (uses
-    :func:`sitecheck.models.linear_preprocessor` with robust scaling)."""
-    from .models import linear_preprocessor
+    :func:`sitecheck.analyses.models.linear_preprocessor` with robust scaling)."""
+    from sitecheck.analyses.models import linear_preprocessor
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")

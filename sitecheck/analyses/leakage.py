@@ -24,18 +24,18 @@ from scipy import stats as sps
 from scipy.cluster import hierarchy
 from scipy.spatial.distance import squareform
 
-from .errors import InputError
-from .prepare import Prepared
-from .univariate import covariate_design, missing_by_site, univariate_gaps
+from sitecheck.errors import InputError
+from sitecheck.table.prepare import Prepared
+from sitecheck.analyses.univariate import covariate_design, missing_by_site, univariate_gaps
 
 
 def macro_auc_scorer(estimator, X, y) -> float:
     """Macro one-vs-rest ROC AUC of ``estimator`` on (X, y) (binary: plain AUC).
 
-    Computed with :func:`sitecheck.stats.macro_ovr_auc` (rank form, equal to
+    Computed with :func:`sitecheck.analyses.stats.macro_ovr_auc` (rank form, equal to
     scikit-learn's ``roc_auc_score(multi_class="ovr")``, measured 3-5x faster; this
     scorer runs once per permutation)."""
-    from .stats import macro_ovr_auc
+    from sitecheck.analyses.stats import macro_ovr_auc
 
     proba = estimator.predict_proba(X)
     return macro_ovr_auc(np.asarray(y), proba)
@@ -151,7 +151,7 @@ def grouped_permutation_importance(estimator, X: np.ndarray, y: np.ndarray, grou
     """
     from threadpoolctl import threadpool_limits
 
-    from .stats import macro_ovr_auc
+    from sitecheck.analyses.stats import macro_ovr_auc
 
     rs = np.random.RandomState(random_state) if not isinstance(random_state, np.random.RandomState) else random_state
     seed = rs.randint(np.iinfo(np.int32).max + 1)
@@ -392,7 +392,7 @@ def rank_leakage(prep: Prepared, crossfit, *, n_repeats: Optional[int] = None, m
     X, names = enc.X, list(enc.names)
     y = prep.site
     p = X.shape[1]
-    from .prepare import stratified_subsample
+    from sitecheck.table.prepare import stratified_subsample
 
     rng = np.random.default_rng([seed, 4242])
     corr_rows = stratified_subsample(y, int(max_cluster_rows), np.random.default_rng([seed, 4243]))

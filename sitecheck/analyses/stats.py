@@ -15,7 +15,7 @@ from typing import List, Sequence, Tuple
 import numpy as np
 from scipy import stats as _st
 
-from .errors import ParameterError
+from sitecheck.errors import ParameterError
 
 #: Resamples handled per vectorised block (bounds memory at block x n floats).
 _BLOCK = 64
