@@ -567,15 +567,7 @@ def write_figures(result, out_dir: str, *, min_cell: int = 10, shareable: bool =
     objects = getattr(result, "objects", {}) or {}
     maps = objects.get("maps")
     if maps is not None and getattr(maps, "coords", None):
-        rels = _embedding_figures(maps, out_dir, min_cell=min_cell, shareable=shareable)
-        items = []
-        for png in [r for r in rels if r.endswith(".png")]:
-            stem = png[len("figures/"):-4]
-            what = "site" if stem.startswith("embedding_site") else stem[len("embedding_"):].replace("_density", "")
-            items.append({"png": png, "svg": png[:-4] + ".svg", "id": f"fig-{stem.replace('_', '-')}",
-                          "caption": f"2-D maps of the same rows (PCA, t-SNE, UMAP), coloured by "
-                                     f"{'site' if what == 'site' else 'the ' + what}."})
-        out["embedding"] = items
+        out["embedding"] = _embedding_figures(maps, out_dir, min_cell=min_cell, shareable=shareable)
     doc = result.to_dict() if hasattr(result, "to_dict") else {}
     sites = [str(s) for s in ((doc.get("input") or {}).get("sites") or {})]
     small = {s for s, n in ((doc.get("input") or {}).get("sites") or {}).items() if _small(n, min_cell)}

@@ -168,6 +168,7 @@ class Figure:
     caption: str
     svg: str = ""
     feature: str = ""
+    png: str = ""
 
 
 def figures_of(doc: Dict[str, Any], section: str) -> List[Figure]:
@@ -175,7 +176,10 @@ def figures_of(doc: Dict[str, Any], section: str) -> List[Figure]:
     from .html import embed_image
 
     out = []
-    for i, item in enumerate(((doc.get("figures") or {}).get(section) or [])):
+    items = (doc.get("figures") or {}).get(section) if isinstance(doc.get("figures"), dict) else None
+    if items is None and isinstance(doc.get(section), dict):  # a section's own list of paths
+        items = doc[section].get("figures")
+    for i, item in enumerate(items or []):
         if isinstance(item, str):
             item = {"png": item} if item.endswith(".png") else None
         if not item or not item.get("png"):
@@ -184,5 +188,15 @@ def figures_of(doc: Dict[str, Any], section: str) -> List[Figure]:
         if img:
             out.append(Figure(id=item.get("id") or anchor("fig", section, i), img=Markup(img),
                               caption=item.get("caption") or "", svg=item.get("svg") or "",
-                              feature=item.get("feature") or ""))
+                              feature=item.get("feature") or "", png=item["png"]))
     return out
+
+
+def section_html(name: str, m: Optional[Dict[str, Any]]) -> str:
+    """A section's HTML from its display model ("" when absent): for callers of ``html(doc, min_cell)``."""
+    return "" if not m else str(render_html_template(f"sections/{name}.html.j2", m=m))
+
+
+def section_md(name: str, m: Optional[Dict[str, Any]]) -> str:
+    """A section's Markdown from its display model ("" when absent)."""
+    return "" if not m else str(render_md_template(f"sections/{name}.md.j2", m=m)).strip("\n")

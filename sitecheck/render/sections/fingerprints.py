@@ -13,7 +13,7 @@ from typing import Any, Dict, List, Optional
 
 from ..fmt import DASH, count, pval
 from ..safety import suppress_count
-from ..templating import Cell, Col, Table, anchor, figures_of
+from ..templating import Cell, Col, Table, anchor, figures_of, section_html, section_md
 from ..words import DISTRIBUTION, KIND_TEST, MECHANICAL, SEVERITY_ORDER, artefact
 
 ID = "fingerprints"
@@ -163,3 +163,13 @@ def gap_rollup(doc: Dict[str, Any]) -> List[Dict[str, Any]]:
                     "href": "#" + finding_id(big) if big else "#fingerprints-gaps"})
     out.sort(key=lambda e: (-e["n_features"], e["site"]))
     return out
+
+
+def html(doc: Dict[str, Any], min_cell: int) -> str:
+    """The section as HTML ("" when absent), from :func:`model` and its template."""
+    return section_html("fingerprints", model(doc, min_cell))
+
+
+def markdown(doc: Dict[str, Any], min_cell: int) -> str:
+    """The section as Markdown ("" when absent), from :func:`model` and its template."""
+    return section_md("fingerprints", model(doc, min_cell))

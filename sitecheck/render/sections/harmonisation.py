@@ -12,7 +12,7 @@ from typing import Any, Dict, List, Optional
 
 from ..fmt import DASH, ci, count, num, pct, pval
 from ..safety import suppress_count
-from ..templating import Cell, Col, Table
+from ..templating import Cell, Col, Table, section_html, section_md
 from ..words import harm_reason
 
 ID = "harmonisation"
@@ -100,3 +100,13 @@ def model(doc: Dict[str, Any], min_cell: int) -> Optional[Dict[str, Any]]:
     return {"id": ID, "title": TITLE, "protected": protected, "unchanged": unchanged,
             "warnings": list(first.get("warnings") or []), "summary": _summary(sec, min_cell), "grid": grid,
             "n_tested": first.get("n_tested"), "lines": lines}
+
+
+def html(doc: Dict[str, Any], min_cell: int) -> str:
+    """The section as HTML ("" when absent), from :func:`model` and its template."""
+    return section_html("harmonisation", model(doc, min_cell))
+
+
+def markdown(doc: Dict[str, Any], min_cell: int) -> str:
+    """The section as Markdown ("" when absent), from :func:`model` and its template."""
+    return section_md("harmonisation", model(doc, min_cell))

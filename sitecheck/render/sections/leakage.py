@@ -10,7 +10,7 @@ from __future__ import annotations
 from typing import Any, Dict, List, Optional
 
 from ..fmt import DASH, ci, excludes_zero, num, pval
-from ..templating import Cell, Col, Table, anchor, figures_of
+from ..templating import Cell, Col, Table, anchor, figures_of, section_html, section_md
 from ..words import DISTRIBUTION, artefact
 
 ID = "leakage"
@@ -106,3 +106,13 @@ def model(doc: Dict[str, Any], min_cell: int) -> Optional[Dict[str, Any]]:
             "md_more": len(notes) - len(notes[:MD_NOTES]) + len(gap_notes), "missing": missing, "figures": figures_of(doc, "leakage"),
             "missing_figures": figures_of(doc, "missingness"),
             "top": [{"feature": r[1].text, "drop": r[2], "ci": r[3]} for r in shown[:10]]}
+
+
+def html(doc: Dict[str, Any], min_cell: int) -> str:
+    """The section as HTML ("" when absent), from :func:`model` and its template."""
+    return section_html("leakage", model(doc, min_cell))
+
+
+def markdown(doc: Dict[str, Any], min_cell: int) -> str:
+    """The section as Markdown ("" when absent), from :func:`model` and its template."""
+    return section_md("leakage", model(doc, min_cell))

@@ -5,7 +5,7 @@ from typing import Any, Dict, List, Optional
 
 from ..fmt import DASH, ci, count, num, pct
 from ..safety import suppress_count
-from ..templating import Col, Table, figures_of
+from ..templating import Col, Table, figures_of, section_html, section_md
 
 ID = "maps"
 TITLE = "Do the sites mix? Maps and mixing scores"
@@ -63,4 +63,30 @@ def model(doc: Dict[str, Any], min_cell: int) -> Optional[Dict[str, Any]]:
             "expected": num(mm.get("expected_random"), 2),
             "pca_variance": ", ".join(pct(v, 1) for v in evr[:2]) if evr else "",
             "overall": _overall(emb, min_cell), "by_site": _by_site(emb, min_cell),
-            "preprocessing": emb.get("preprocessing") or DASH, "figures": figures_of(doc, "embedding")}
+            "preprocessing": emb.get("preprocessing") or DASH, "figures": [_captioned(f) for f in figures_of(doc, "embedding")]}
+
+
+def _captioned(fig):
+    """A map figure with its caption in words (the file name says which colouring)."""
+    import dataclasses
+    import re
+
+    m = re.search(r"embedding_(.+?)(?:_density)?\.png", fig.png) if not fig.caption else None
+    what = m.group(1) if m else ""
+    if not what:
+        return fig
+    colour = "site" if what == "site" else ("the outcome" if what == "outcome" else "a group column")
+    return dataclasses.replace(fig, id=f"fig-maps-{what.replace('_', '-')}",
+                               caption=f"2-D maps of the same rows (PCA, t-SNE, UMAP), coloured by {colour}. "
+                                       "PCA axes show the share of variance they explain; t-SNE and UMAP axes have "
+                                       "no units.")
+
+
+def html(doc: Dict[str, Any], min_cell: int) -> str:
+    """The section as HTML ("" when absent), from :func:`model` and its template."""
+    return section_html("maps", model(doc, min_cell))
+
+
+def markdown(doc: Dict[str, Any], min_cell: int) -> str:
+    """The section as Markdown ("" when absent), from :func:`model` and its template."""
+    return section_md("maps", model(doc, min_cell))

@@ -11,7 +11,7 @@ from typing import Any, Dict, List, Optional
 
 from ..fmt import DASH, ci, count, num, p_is, pval
 from ..safety import suppress_count
-from ..templating import Col, Table
+from ..templating import Col, Table, section_html, section_md
 
 ID = "outcome"
 TITLE = "Could a model use the site as a shortcut to the outcome?"
@@ -236,3 +236,13 @@ def model(doc: Dict[str, Any], min_cell: int) -> Optional[Dict[str, Any]]:
                     "table": _rates(eo.get("per_site"), min_cell, "site", eo.get("heterogeneity"))} if eo else None),
             "brief": brief(o),
             "by_group": by_group}
+
+
+def html(doc: Dict[str, Any], min_cell: int) -> str:
+    """The section as HTML ("" when absent), from :func:`model` and its template."""
+    return section_html("outcome", model(doc, min_cell))
+
+
+def markdown(doc: Dict[str, Any], min_cell: int) -> str:
+    """The section as Markdown ("" when absent), from :func:`model` and its template."""
+    return section_md("outcome", model(doc, min_cell))

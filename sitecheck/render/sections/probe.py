@@ -11,7 +11,7 @@ from typing import Any, Dict, List, Optional
 
 from ..fmt import DASH, ci, count, num, p_is, pval
 from ..safety import suppress_count
-from ..templating import Col, Table, figures_of
+from ..templating import Col, Table, figures_of, section_html, section_md
 
 ID = "probe"
 TITLE = "Can the site be predicted from the features?"
@@ -133,3 +133,13 @@ def headline(doc: Dict[str, Any]) -> Optional[Dict[str, str]]:
             "text": probe.get("verdict_text") or _WORDS.get(probe.get("verdict", "none"), ""),
             "auc": num(probe.get("auc")), "auc_ci": ci(probe.get("auc_ci")),
             "p": p_is(probe.get("p_value"), probe.get("p_value_floor"))}
+
+
+def html(doc: Dict[str, Any], min_cell: int) -> str:
+    """The section as HTML ("" when absent), from :func:`model` and its template."""
+    return section_html("probe", model(doc, min_cell))
+
+
+def markdown(doc: Dict[str, Any], min_cell: int) -> str:
+    """The section as Markdown ("" when absent), from :func:`model` and its template."""
+    return section_md("probe", model(doc, min_cell))
