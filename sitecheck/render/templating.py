@@ -61,6 +61,8 @@ class Col:
     label: str
     test: str = ""
     numeric: bool = False
+    #: prose: kept at a readable width (the table scrolls sideways on a narrow screen instead)
+    wide: bool = False
 
 
 @dataclass

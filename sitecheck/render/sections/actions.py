@@ -140,7 +140,7 @@ def model(doc: Dict[str, Any], min_cell: int) -> Dict[str, Any]:
     full_rows = [[Cell(x["severity"], cls="sev-" + x["severity"]), x["site"], Cell(x["column"], href=x["href"]),
                   x["what"], x["evidence"], x["fix"]]
                  for x in first + [_fp_line(f, sites, min_cell, rec) for f in fps if f.get("kind") in DISTRIBUTION]]
-    full = Table([Col("severity"), Col("site"), Col("column"), Col("what"), Col("evidence"), Col("fix")], [],
+    full = Table([Col("severity"), Col("site"), Col("column"), Col("what"), Col("evidence", wide=True), Col("fix", wide=True)], [],
                  folded=full_rows, folded_note=f"the full list ({len(full_rows)} items; also in fingerprints.csv)")
     return {"id": "next", "title": "What to do next", "lines": lines, "more": more, "full": full,
             "n_all": len(full_rows), "glance": glance(doc)}

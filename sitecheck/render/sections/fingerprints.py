@@ -75,7 +75,7 @@ def dist_figure_ids(doc: Dict[str, Any]) -> Dict[str, str]:
 
 
 _COLS = [Col("severity"), Col("feature"), Col("site"), Col("artefact", "hover: what it usually means"),
-         Col("what was found"), Col("suggested fix"), Col("p", "the kind's test, Bonferroni", True),
+         Col("what was found", wide=True), Col("suggested fix", wide=True), Col("p", "the kind's test, Bonferroni", True),
          Col("rows at site", numeric=True), Col("leak rank", "of the site probe", True), Col("plot")]
 
 

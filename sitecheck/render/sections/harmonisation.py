@@ -85,7 +85,7 @@ def model(doc: Dict[str, Any], min_cell: int) -> Optional[Dict[str, Any]]:
             row.append(Cell(f"{word}{site}{eff}", cls="kept" if g.get("reason") == KEPT else "left",
                             title=g.get("detail") or ""))
         (kept if only_kept else rows).append(row)
-    cols = [Col("feature")] + [Col(SHORT.get(m, m), "why the gap survives", False) for m in methods]
+    cols = [Col("feature")] + [Col(SHORT.get(m, m), "why the gap survives", wide=True) for m in methods]
     grid = Table(cols, rows, folded=kept, sortable=False,
                  folded_note=f"{len(kept)} features whose remaining gap the protected columns explain (case mix, "
                              "kept on purpose)")

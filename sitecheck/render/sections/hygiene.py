@@ -27,7 +27,7 @@ def model(doc: Dict[str, Any], min_cell: int) -> Dict[str, Any]:
     return {"id": ID, "title": TITLE,
             "columns": Table([Col("column"), Col("role"), Col("kind"), Col("why"), Col("missing", "cells", True),
                               Col("missing-value codes read", "code: cells")], rows),
-            "findings": Table([Col("column"), Col("finding"), Col("site"), Col("detail")], findings),
+            "findings": Table([Col("column"), Col("finding"), Col("site"), Col("detail", wide=True)], findings),
             "warnings": list(doc.get("warnings") or [])}
 
 
