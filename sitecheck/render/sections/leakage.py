@@ -82,11 +82,16 @@ def model(doc: Dict[str, Any], min_cell: int) -> Optional[Dict[str, Any]]:
     table = Table(_cols(has_adj), shown, folded=folded,
                   folded_note=f"{len(folded)} features whose AUC-drop interval includes 0 (the probe does not "
                               "need them on their own)")
-    clusters = Table([Col("members"), Col("kind"), Col("AUC drop", "held-out permutation, together", True),
-                      Col("95% CI", "t over folds", True)],
-                     [[", ".join(c["members"]), "correlated (Spearman)" if c.get("source") == "correlation"
-                       else str(c.get("source", "")).replace("panel ", "declared panel "), num(c.get("score")),
-                       ci(c.get("score_ci"))] for c in (doc.get("clusters") or [])])
+    crow_open, crow_fold = [], []
+    for c in doc.get("clusters") or []:
+        row = [", ".join(c["members"]), "correlated (Spearman)" if c.get("source") == "correlation"
+               else str(c.get("source", "")).replace("panel ", "declared panel "), num(c.get("score")),
+               ci(c.get("score_ci"))]
+        (crow_open if excludes_zero(c.get("score_ci")) else crow_fold).append(row)
+    clusters = Table([Col("members", wide=True), Col("kind"), Col("AUC drop", "held-out permutation, together", True),
+                      Col("95% CI", "t over folds", True)], crow_open, folded=crow_fold,
+                     folded_note=f"{len(crow_fold)} group{'s' if len(crow_fold) != 1 else ''} whose joint drop "
+                                 "interval includes 0")
     notes, gap_notes = [], []
     for feat, rs in rec.items():
         for r in rs:
