@@ -15,6 +15,7 @@ import numpy as np
 import pandas as pd
 
 from sitecheck import __version__
+from sitecheck._runtime import SINGLE_THREAD_BELOW, thread_limit
 from sitecheck.reading.config import load_config
 from .errors import InputError
 from sitecheck.reading.intake import RawTable, frame_to_raw, read_table
@@ -84,8 +85,6 @@ def _run_specs(prep: Prepared, options: ScanOptions, names, objects: Dict[str, A
                say: Progress, timings: Dict[str, float], threads: Optional[int] = 1) -> Dict[str, Any]:
     """Run the named analyses in turn with native thread pools limited to ``threads``
     (None: no limit); fill ``objects``."""
-    from threadpoolctl import threadpool_limits
-
     from sitecheck.analyses import registry as analyses
 
     for spec in analyses.REGISTRY:
@@ -93,7 +92,7 @@ def _run_specs(prep: Prepared, options: ScanOptions, names, objects: Dict[str, A
             continue
         say(f"{spec.name}...")
         t0 = time.perf_counter()
-        with threadpool_limits(limits=threads):
+        with thread_limit(threads):
             objects[spec.name] = spec.run(prep, options, objects)
         timings[spec.name] = round(time.perf_counter() - t0, 3)
     return objects
@@ -107,7 +106,7 @@ def _side_lane(prep: Prepared, options: ScanOptions, names) -> tuple:
 
 
 #: Above this many rows the scan runs in one process (a second one would copy the table).
-PARALLEL_MAX_ROWS = 200_000
+PARALLEL_MAX_ROWS = SINGLE_THREAD_BELOW
 
 
 def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Progress] = None,

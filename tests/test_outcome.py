@@ -298,14 +298,16 @@ def test_given_threshold_and_invalid_options():
 def test_leak_scores_from_leakage_result_are_used():
     prep = prep_of(synth(600, seed=4))
 
-    class FakeLeakage:  # the leak ranking's to_dict() shape: features [{feature, score, score_ci}]
-        def to_dict(self):
-            return {"features": [{"feature": "f0", "score": 0.30, "score_ci": [0.2, 0.4]},
-                                 {"feature": "f1", "score": 0.10, "score_ci": [0.05, 0.15]},
-                                 {"feature": "f2", "score": 0.0, "score_ci": [-0.01, 0.01]},
-                                 {"feature": "f3", "score": 0.0, "score_ci": [-0.01, 0.01]}]}
+    from sitecheck.analyses.leakage import LeakageResult, LeakEntry
 
-    d = outcome_risk(prep, leakage=FakeLeakage(), n_boot=50, n_repeats=1).to_dict()
+    rows = [("f0", 0.30, (0.2, 0.4)), ("f1", 0.10, (0.05, 0.15)), ("f2", 0.0, (-0.01, 0.01)),
+            ("f3", 0.0, (-0.01, 0.01))]
+    given = LeakageResult(entries=tuple(LeakEntry(feature=f, score=s, score_ci=ci, rank=i + 1, cluster=i,
+                                                  univariate={}, missing_by_site={})
+                                        for i, (f, s, ci) in enumerate(rows)),
+                          clusters=(), missingness=None, baseline_auc=0.9, n_folds=5, n_repeats=2,
+                          n_rows_per_fold=100, threshold=0.7)
+    d = outcome_risk(prep, leakage=given, n_boot=50, n_repeats=1).to_dict()
     assert d["leak_source"] == "leakage"
     f = {r["feature"]: r for r in d["feature_risk"]}
     assert f["f0"]["leak_score"] == 0.30 and f["f0"]["leak_rank"] == 1 and f["f0"]["shortcut"]

@@ -12,7 +12,7 @@ from __future__ import annotations
 import difflib
 import re
 from dataclasses import dataclass, field, replace
-from typing import Dict, List, Optional, Sequence, Tuple
+from typing import Any, Dict, List, Optional, Sequence, Tuple
 
 import numpy as np
 import pandas as pd
@@ -47,6 +47,25 @@ _IDENT_PATTERNS = [
     r"biometric", r"finger_?print", r"photo(graph)?",
 ]
 _IDENT_RE = re.compile(r"^(?:" + "|".join(_IDENT_PATTERNS) + r")$")
+
+
+def value_label(value: Any) -> Optional[str]:
+    """The text label of one site or group value, the same everywhere it is shown or matched.
+
+    Missing values (None, NaN, NaT) give None; whole-number floats lose their ``.0`` (a site
+    column read as numbers with gaps is float: 3.0 is site "3").
+
+    Examples
+    --------
+    >>> from sitecheck.table.roles import value_label
+    >>> value_label(3.0), value_label("Ashby"), value_label(float("nan"))
+    ('3', 'Ashby', None)
+    """
+    if value is None or value is pd.NaT or (isinstance(value, (float, np.floating)) and np.isnan(value)):
+        return None
+    if isinstance(value, (float, np.floating)) and float(value).is_integer():
+        return str(int(value))
+    return str(value)
 
 
 def _norm_name(name: str) -> str:
@@ -352,7 +371,7 @@ def assign_roles(
 
     # -- sites -------------------------------------------------------------
     site_raw = frame[spec.site]
-    site_str = site_raw.map(lambda v: None if pd.isna(v) else (str(int(v)) if isinstance(v, float) and float(v).is_integer() else str(v)))
+    site_str = site_raw.map(value_label)
     n_site_missing = int(site_str.isna().sum())
     if n_site_missing:
         warnings.append(f"{n_site_missing} rows have no value in site column {spec.site!r} and were left out")
