@@ -464,7 +464,7 @@ def _one_distribution(frame, site_col: str, sites: Sequence[str], feature: str, 
     st = _site_styles(sites)
     by_site = {f.get("site"): f for f in findings}
     unit = any(f.get("kind") == "unit_ratio" for f in findings)
-    fig = _fig(6.4, 0.85 * len(sites) + (1.4 if not numeric_hint(col) else 1.1))
+    fig = _fig(6.4, 0.95 * len(sites) + (1.4 if not numeric_hint(col) else 1.1))
     axes = fig.subplots(len(sites), 1, sharex=True, squeeze=False)[:, 0]
     if numeric:
         v = np.asarray(values, dtype=float)
@@ -518,10 +518,9 @@ def _one_distribution(frame, site_col: str, sites: Sequence[str], feature: str, 
         ax.set_yticks([])
         for sp in ("top", "right", "left"):
             ax.spines[sp].set_visible(False)
-        if label:
-            ax.text(0.99, 0.9, label, transform=ax.transAxes, ha="right", va="top", fontsize=FONT["note"] + 0.5,
-                    fontweight="bold", color="#000000",
-                    bbox=dict(boxstyle="round,pad=0.2", facecolor="white", edgecolor="#999999", alpha=0.9))
+        if label:  # above the site's panel, so it never hides a bar
+            ax.set_title(label, loc="right", fontsize=FONT["note"] + 0.5, fontweight="bold", color="#000000",
+                         pad=2)
     axes[-1].tick_params(axis="x", labelsize=FONT["tick"])
     if numeric and drawn:
         lines = [ln.get_xdata()[0] for a in axes for ln in a.get_lines()]
@@ -535,8 +534,8 @@ def _one_distribution(frame, site_col: str, sites: Sequence[str], feature: str, 
                         fontsize=FONT["label"])
     fig.suptitle(feature, fontsize=FONT["title"], fontweight="bold", x=0.02, ha="left")
     height = fig.get_figheight()
-    fig.subplots_adjust(left=0.2, right=0.98, top=1 - 0.45 / height, bottom=(0.95 if not numeric else 0.62) / height,
-                        hspace=0.15)
+    fig.subplots_adjust(left=0.2, right=0.96, top=1 - 0.45 / height, bottom=(0.95 if not numeric else 0.62) / height,
+                        hspace=0.45)
     item = _save_png(fig, out_dir, f"distribution_{index:02d}")
     words = "; ".join(f"{f.get('site')}: {artefact(f.get('kind'))}" for f in findings) or "a top leaking feature"
     item.update(id=f"fig-dist-{index:02d}", feature=feature,
