@@ -88,12 +88,12 @@ def _hygiene_lines(doc: Dict[str, Any], fp_keys) -> List[Dict[str, Any]]:
     return out
 
 
-def _gap_lines(doc: Dict[str, Any]) -> List[Dict[str, Any]]:
+def _gap_lines(doc: Dict[str, Any], min_cell: int) -> List[Dict[str, Any]]:
     covs = _covariates(doc)
     fix = (f"check calibration and method at this site; the covariates ({', '.join(covs)}) do not explain it"
            if covs else "give case-mix covariates (--covariate) to tell case mix from measurement")
     out = []
-    for r in fp_section.gap_rollup(doc):
+    for r in fp_section.gap_rollup(doc, min_cell):
         n = r["n_features"]
         out.append({"severity": "review", "site": r["site"], "column": f"{n} feature{'s' if n != 1 else ''}",
                     "what": f"location or spread gaps (largest: {r['largest']})",
@@ -127,7 +127,7 @@ def model(doc: Dict[str, Any], min_cell: int) -> Dict[str, Any]:
     fps = sorted(doc.get("fingerprints") or [], key=fp_section.order_key)
     mech = _rolled(fps, sites, min_cell, rec)
     hyg = _hygiene_lines(doc, {(f.get("feature"), f.get("site")) for f in fps})
-    gaps = _gap_lines(doc)
+    gaps = _gap_lines(doc, min_cell)
     out_line = _outcome_line(doc)
     tail = gaps + ([out_line] if out_line else [])
     first = hyg + mech

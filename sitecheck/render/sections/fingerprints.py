@@ -123,7 +123,7 @@ def model(doc: Dict[str, Any], min_cell: int) -> Optional[Dict[str, Any]]:
     return {"id": ID, "title": TITLE, "alpha": f"{alpha:g}" if isinstance(alpha, (int, float)) else "the chosen level",
             "mechanical": Table(list(_COLS), mech, row_ids=mech_ids), "gaps": gap_table,
             "md_table": Table([Col("severity"), Col("feature"), Col("site"), Col("artefact")], md_rows[:MD_MAX]),
-            "md_more": max(0, len(md_rows) - MD_MAX), "rollup": gap_rollup(doc),
+            "md_more": max(0, len(md_rows) - MD_MAX), "rollup": gap_rollup(doc, min_cell),
             "n_mech": len(mech), "n_gaps": len(gaps), "any_rec": bool(rec),
             "tests": [{"kind": artefact(k), "test": KIND_TEST.get(k, "")} for k in tests],
             "figures": figures_of(doc, "distributions")}
@@ -141,7 +141,7 @@ def _gap_size(f: Dict[str, Any]):
     return (0, 0.0)
 
 
-def gap_rollup(doc: Dict[str, Any]) -> List[Dict[str, Any]]:
+def gap_rollup(doc: Dict[str, Any], min_cell: int = 10) -> List[Dict[str, Any]]:
     """Location and spread gaps rolled up per site: how many features, and the largest (by the
     finding's own effect size), in the order of the sites' counts."""
     per: Dict[str, Dict[str, Any]] = {}
@@ -157,9 +157,12 @@ def gap_rollup(doc: Dict[str, Any]) -> List[Dict[str, Any]]:
     out = []
     for site, e in per.items():
         big = e["largest"] or {}
+        sites = (doc.get("input") or {}).get("sites") or {}
+        detail = (f"details withheld: fewer than {min_cell} rows behind this finding"
+                  if big and small(big, sites, min_cell) else big.get("detail", ""))
         out.append({"site": site, "n_shift": len(e["shift"]), "n_scale": len(e["scale"]),
                     "n_features": len(e["shift"] | e["scale"]), "largest": big.get("feature"),
-                    "largest_kind": artefact(big.get("kind")), "largest_detail": big.get("detail", ""),
+                    "largest_kind": artefact(big.get("kind")), "largest_detail": detail,
                     "href": "#" + finding_id(big) if big else "#fingerprints-gaps"})
     out.sort(key=lambda e: (-e["n_features"], e["site"]))
     return out
