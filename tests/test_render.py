@@ -237,3 +237,22 @@ def test_findings_md_stays_short_on_a_wide_open_table(opt_report):
     # every location/spread gap is rolled up: one checklist line per site at most
     gap_sites = {f["site"] for f in doc["fingerprints"] if f["kind"] in ("shift", "scale")}
     assert sum(1 for ln in todo if "location or spread gaps" in ln) <= len(gap_sites)
+
+
+def test_every_template_is_shipped_as_package_data():
+    # `pip install .` must carry the templates: every file under render/templates matches a
+    # [options.package_data] pattern of setup.cfg (checked on the files, not assumed)
+    import configparser
+    import fnmatch
+    from pathlib import Path
+
+    import sitecheck.render as render
+
+    root = Path(__file__).resolve().parents[1]
+    cfg = configparser.ConfigParser()
+    cfg.read(root / "setup.cfg")
+    patterns = [p.strip() for p in cfg["options.package_data"]["sitecheck.render"].split(",")]
+    base = Path(render.__file__).parent
+    files = [str(p.relative_to(base)) for p in (base / "templates").rglob("*") if p.is_file()]
+    assert len(files) >= 15
+    assert [f for f in files if not any(fnmatch.fnmatch(f, pat) for pat in patterns)] == []
