@@ -248,6 +248,15 @@ def _small(n, min_cell: int) -> bool:
     return not isinstance(n, int) or 0 < n < min_cell
 
 
+def _tight(fig) -> None:
+    """Tight layout where it fits; very long labels (data text) keep the default margins, without a warning."""
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", UserWarning)
+        fig.tight_layout()
+
+
 def _forest(doc: dict, out_dir: str, sites: Sequence[str], *, min_cell: int) -> List[dict]:
     probe = doc.get("probe") or {}
     per = probe.get("per_site") or {}
@@ -285,7 +294,7 @@ def _forest(doc: dict, out_dir: str, sites: Sequence[str], *, min_cell: int) -> 
     ax.tick_params(axis="x", labelsize=FONT["tick"])
     ax.set_xlabel(f"AUC against the rest (95% CI)", fontsize=FONT["label"])
     ax.text(0.0, 1.02, note, transform=ax.transAxes, fontsize=FONT["note"], color="#444444")
-    fig.tight_layout()
+    _tight(fig)
     item = _save_png(fig, out_dir, "probe_forest")
     item.update(id="fig-probe-forest", caption="Site probe AUC of each site against the rest, with 95% intervals; "
                 "the bottom row is the macro AUC over all sites. 0.5 is chance.")
@@ -323,7 +332,7 @@ def _leak_chart(doc: dict, out_dir: str) -> List[dict]:
     ax.legend([Line2D([], [], color="#D55E00", marker="s", lw=2), Line2D([], [], color="#0072B2", marker="o", lw=2)],
               ["* has a fingerprint (a recorded artefact or gap)", "no fingerprint"], fontsize=FONT["legend"],
               loc="lower right", frameon=False)
-    fig.tight_layout()
+    _tight(fig)
     item = _save_png(fig, out_dir, "leak_ranking")
     n_near = len(extra)
     item.update(id="fig-leak-ranking", caption="Leak ranking: features whose shuffling lowers the site probe's AUC, "
@@ -361,7 +370,7 @@ def _missing_heatmap(doc: dict, out_dir: str, sites: Sequence[str]) -> List[dict
     cb = fig.colorbar(im, ax=ax, fraction=0.04, pad=0.02)
     cb.set_label("% of the site's rows missing", fontsize=FONT["label"])
     cb.ax.tick_params(labelsize=FONT["tick"])
-    fig.tight_layout()
+    _tight(fig)
     item = _save_png(fig, out_dir, "missing_by_site")
     item.update(id="fig-missing", caption="Share of each site's rows missing, for the features with any missing "
                 "value (numbers in %).")
