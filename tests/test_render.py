@@ -88,6 +88,12 @@ def test_every_mechanical_finding_has_its_distribution_plot(demo_report, demo_tr
     ids = {el.get("id") for el in tree.iter() if el.get("id")}
     for it in doc["figures"]["distributions"]:
         assert it["id"] in ids
+    # each plot names the artefact it marks, in the words the other sections use
+    from sitecheck.render.words import artefact
+
+    captions = {it["feature"]: it["caption"] for it in doc["figures"]["distributions"]}
+    for f in doc["fingerprints"]:
+        assert f"{f['site']}: {artefact(f['kind'])}" in captions[f["feature"]]
 
 
 def test_no_external_resource_is_referenced(demo_report):

@@ -157,10 +157,6 @@ def anchor(*parts: Any) -> str:
     return re.sub(r"[^0-9A-Za-z_-]+", "-", s).strip("-").lower() or "x"
 
 
-def first(seq: Optional[Sequence[Any]], default: Any = None) -> Any:
-    return seq[0] if seq else default
-
-
 @dataclass(frozen=True)
 class Figure:
     """A figure as the page shows it: an anchor, the embedded image (our own markup), a caption in words."""

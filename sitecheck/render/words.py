@@ -87,16 +87,3 @@ def missing_code_label(code: Any) -> str:
 
 def hygiene_word(kind: Optional[str]) -> str:
     return HYGIENE.get(kind or "", (kind or "").replace("_", " "))
-
-
-def site_word(site: Any) -> str:
-    return "" if site is None else str(site)
-
-
-def lookup(d: Dict[str, Any], *keys: str, default: Any = None) -> Any:
-    cur: Any = d
-    for k in keys:
-        if not isinstance(cur, dict):
-            return default
-        cur = cur.get(k)
-    return default if cur is None else cur
