@@ -193,7 +193,8 @@ def test_older_style_section_still_renders(monkeypatch, demo_report):
 
     mod = types.ModuleType("sitecheck.render.sections.oldstyle")
     mod.html = lambda doc, min_cell: "<h2>Drift over time</h2><p>" + "&lt;x&gt;" + "</p>"
-    mod.markdown = lambda doc, min_cell: "## Drift over time\n\nstable"
+    mod.markdown = lambda doc, min_cell: "## Drift over time\n\nstable\n" + "\n".join(f"| month {i} | 0.5 |"
+                                                                                       for i in range(400))
     monkeypatch.setitem(sys.modules, "sitecheck.render.sections.oldstyle", mod)
     monkeypatch.setattr(sections, "ORDER", sections.ORDER + ["oldstyle"])
     _, _, _, doc = demo_report
@@ -201,7 +202,10 @@ def test_older_style_section_still_renders(monkeypatch, demo_report):
     tree = _parse(html)
     nav = [a.get("href") for a in tree.find(".//nav[@id='contents']").iter("a")]
     assert "#sec-oldstyle" in nav and tree.find(".//h2[@id='sec-oldstyle']") is not None
-    assert "## Drift over time" in render_markdown(doc, min_cell=10)
+    md = render_markdown(doc, min_cell=10)
+    assert "## Drift over time" in md and "| month 3 | 0.5 |" in md
+    # a long older-style section is cut at a line, so the note keeps its length limit
+    assert "| month 399 |" not in md and "The full section is in report.html" in md and len(md) <= 8000
 
 
 def test_templates_escape_data_text():

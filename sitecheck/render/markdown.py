@@ -22,6 +22,16 @@ def md_table(headers: List[str], rows: List[List[Any]]) -> str:
 
 #: sections of the page that findings.md leaves out (full tables: HTML, CSV, JSON)
 MD_SKIP = ("maps",)
+#: an older-style section's Markdown is cut (at a line) beyond this many characters, so that the
+#: note stays about two printed pages whatever sections are added
+LEGACY_MD_MAX = 1500
+
+
+def _capped(text: str) -> str:
+    if len(text) <= LEGACY_MD_MAX:
+        return text
+    cut = text.rfind("\n", 0, LEGACY_MD_MAX)
+    return text[:cut if cut > 0 else LEGACY_MD_MAX].rstrip() + "\n\n(The full section is in report.html.)"
 
 
 def _sections_md(doc: Dict[str, Any], min_cell: int) -> List[Md]:
@@ -40,7 +50,7 @@ def _sections_md(doc: Dict[str, Any], min_cell: int) -> List[Md]:
         elif hasattr(mod, "markdown"):
             text = mod.markdown(doc, min_cell)
             if text:
-                out.append(Md(str(text).strip("\n")))
+                out.append(Md(_capped(str(text).strip("\n"))))
     return [s for s in out if s]
 
 
