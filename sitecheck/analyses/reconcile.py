@@ -104,9 +104,9 @@ def reconcile(leakage, fingerprints) -> Reconciliation:
     Parameters
     ----------
     leakage : LeakageResult
-        :func:`sitecheck.leakage.rank_leakage`'s result.
+        :func:`sitecheck.analyses.leakage.rank_leakage`'s result.
     fingerprints : FingerprintResult
-        :func:`sitecheck.fingerprints.find_fingerprints`'s result.
+        :func:`sitecheck.analyses.fingerprints.find_fingerprints`'s result.
 
     Returns
     -------
