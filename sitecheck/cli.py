@@ -126,7 +126,8 @@ def _run_scan(data, *, site, outcome, covariates, groups, identifiers, excluded,
     _check_gate_kinds(tuple(fail_on) or tuple(cfg.options.get("fail_on", ())))
     progress(f"reading {data}")
     raw = read_table(data, sep=sep if sep is not None else cfg.options.get("sep"),
-                     encoding=encoding if encoding != "utf-8" else cfg.options.get("encoding", "utf-8"))
+                     encoding=encoding if encoding != "utf-8" else cfg.options.get("encoding", "utf-8"),
+                     site=site or cfg.roles.site)
     options = _options_from(cfg.options, **flags)
     table, _ = build_table(raw, spec, config_path=config, min_site_rows=options.min_site_rows,
                            include_datetime=options.include_datetime)

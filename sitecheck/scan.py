@@ -273,8 +273,9 @@ def scan_file(path: str, *, site: Optional[str] = None, outcome: Optional[str] =
               config: Optional[str] = None, sep: Optional[str] = None, encoding: str = "utf-8",
               options: Optional[ScanOptions] = None, progress: Optional[Progress] = None) -> ScanResult:
     """Read a file and scan it. Role arguments override the config file's."""
-    raw = read_table(path, sep=sep, encoding=encoding)
     roles = _spec(site, outcome, covariates, groups, identifiers, excluded)
+    site_col = site if site is not None else load_config(config).roles.site
+    raw = read_table(path, sep=sep, encoding=encoding, site=site_col)
     opts = options or ScanOptions()
     table, _ = build_table(raw, roles, config_path=config, min_site_rows=opts.min_site_rows,
                            include_datetime=opts.include_datetime)
@@ -286,7 +287,7 @@ def scan_frame(frame: pd.DataFrame, *, site: str, outcome: Optional[str] = None,
                identifiers: Optional[Sequence[str]] = None, excluded: Optional[Sequence[str]] = None,
                options: Optional[ScanOptions] = None, progress: Optional[Progress] = None) -> ScanResult:
     """Scan an in-memory DataFrame (intake's missing-code rules apply to text columns)."""
-    raw = frame_to_raw(frame)
+    raw = frame_to_raw(frame, site=site)
     opts = options or ScanOptions()
     table = assign_roles(raw, _spec(site, outcome, covariates, groups, identifiers, excluded),
                          min_site_rows=opts.min_site_rows, include_datetime=opts.include_datetime)

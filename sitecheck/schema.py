@@ -61,7 +61,12 @@ def report_schema() -> Dict[str, Any]:
     column = _obj({"name": {"type": "string"}, "role": {"enum": ["site", "outcome", "covariate", "group", "identifier",
                                                                  "excluded", "feature"]},
                    "kind": {"enum": ["numeric", "binary", "categorical", "datetime", "text"]},
-                   "reason": {"type": "string"}}, ["name", "role", "kind", "reason"])
+                   "reason": {"type": "string"},
+                   "idioms": {"type": "object", "description": "site -> lab-export idiom -> cells",
+                              "additionalProperties": {"type": "object", "additionalProperties": COUNT}},
+                   "units": {"type": "object", "description": "site -> unit written after the number -> cells",
+                             "additionalProperties": {"type": "object", "additionalProperties": COUNT}}},
+                  ["name", "role", "kind", "reason"])
     return {
         "$schema": "https://json-schema.org/draft/2020-12/schema",
         "$id": f"urn:sitecheck:{SCHEMA_VERSION}",

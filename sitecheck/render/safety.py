@@ -86,7 +86,8 @@ def shareable_document(doc: Any, *, min_cell: int, small_sites: frozenset = froz
                     out[k] = "withheld"
                     continue
                 child_counts = counts or k in ("sites", "missing_codes", "dropped_sites", "confusion_matrix",
-                                               "site_counts", "counts", "legend_counts")
+                                               "site_counts", "counts", "legend_counts", "idioms", "units",
+                                               "cells_by_site")
                 out[k] = walk(v, k, child_counts and not isinstance(v, str))
             return out
         if isinstance(obj, list):
