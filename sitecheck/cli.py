@@ -145,11 +145,9 @@ def _run_scan(data, *, site, outcome, covariates, groups, identifiers, excluded,
     return result
 
 
-FINGERPRINT_KINDS = ("unit_ratio", "precision", "heaping", "floor", "ceiling", "missing_code", "site_missing",
-                     "exclusive_level", "shift", "scale")
-
-
 def _check_gate_kinds(kinds) -> None:
+    from .fingerprints import KINDS as FINGERPRINT_KINDS  # the one list of kinds (schema and repair plan too)
+
     for k in kinds:
         if k not in FINGERPRINT_KINDS:
             raise InputError(f"--fail-on {k!r}: unknown fingerprint kind; choose from {', '.join(FINGERPRINT_KINDS)}")

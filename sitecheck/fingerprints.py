@@ -16,7 +16,13 @@ cleaned by earlier ones and skip what is already explained:
 4. ``unit_ratio`` -- the site's quantiles are a published conversion factor
    times the others' (:mod:`sitecheck.units`), or Fahrenheit against Celsius.
    Sites with a unit finding leave the reference of later detectors.
-5. ``floor`` / ``ceiling`` -- a point mass at the site's minimum/maximum that
+5. ``censored_below`` / ``censored_above`` -- the site writes cells as ``<5`` or
+   ``>20`` (read by intake as the limit with a flag) while the other sites censor
+   less often; its censored cells leave the values of later detectors.
+   ``number_format`` -- the site writes decimal commas, a unit after the number
+   or thousands separators where the others do not (per-site cell counts from
+   intake).
+   ``floor`` / ``ceiling`` -- a point mass at the site's minimum/maximum that
    the other sites do not show at that value, while they do have values
    beyond it (a detection or reporting limit).
 6. ``precision`` -- the recording grid (0.1, 0.5, 1, ...) differs by site.
@@ -46,8 +52,10 @@ from .result import to_jsonable as _jsonable
 from .errors import InputError, ParameterError
 from .units import TEMPERATURE, candidate_factors, conversions_for, is_temperature
 
+#: Every fingerprint kind, in report order: the one list that ``--fail-on``, the report
+#: schema and the repair plan use. Names are a contract; new kinds are appended.
 KINDS = ("unit_ratio", "precision", "heaping", "floor", "ceiling", "missing_code", "site_missing",
-         "exclusive_level", "shift", "scale")
+         "exclusive_level", "shift", "scale", "censored_below", "censored_above", "number_format")
 
 #: Candidate recording steps, coarsest last.
 GRID_STEPS = (0.001, 0.002, 0.005, 0.01, 0.02, 0.025, 0.05, 0.1, 0.2, 0.25, 0.5, 1.0, 2.0, 5.0, 10.0,
@@ -320,16 +328,31 @@ def detect_missing_codes(vals: Sequence[np.ndarray], *, min_count: int = 10) -> 
         if not tested:
             continue
         m = len(tested)
+        kept = []
         for code, cnt, c_rest, p in tested:
             share_s, share_r = cnt / len(v), c_rest / len(rest)
-            ev = {"value": code, "p_value": _r(min(1.0, p * m)),
-                  "at_site": {"n": int(len(v)), "count": int(cnt), "share": _r(share_s)},
-                  "elsewhere": {"n": int(len(rest)), "count": int(c_rest), "share": _r(share_r)},
-                  "reference_range": [_r(q005), _r(q995)]}
-            detail = (f"the value {code:g} appears {cnt} times ({share_s:.1%} of recorded values) at this site, "
-                      f"far outside the range of the other sites ({q005:.4g} to {q995:.4g})")
-            out.append(_Cand(-1, s, "missing_code", min(1.0, p * m), share_s > 2 * share_r + 0.005, detail, ev,
-                             "high", f"treat {code:g} as missing at this site before analysis", payload=code))
+            if share_s > 2 * share_r + 0.005:
+                kept.append({"value": code, "count": int(cnt), "share": _r(share_s), "count_elsewhere": int(c_rest),
+                             "share_elsewhere": _r(share_r), "p_value": _r(min(1.0, p * m)), "_p": min(1.0, p * m)})
+        if not kept:
+            continue
+        # one finding per feature x site: the codes listed, the most frequent first
+        kept.sort(key=lambda e: (-e["count"], e["value"]))
+        top = kept[0]
+        cnt = sum(e["count"] for e in kept)
+        c_rest = sum(e["count_elsewhere"] for e in kept)
+        p_min = min(e.pop("_p") for e in kept)
+        codes = [e["value"] for e in kept]
+        ev = {"value": top["value"], "codes": kept, "p_value": _r(p_min),
+              "at_site": {"n": int(len(v)), "count": int(cnt), "share": _r(cnt / len(v))},
+              "elsewhere": {"n": int(len(rest)), "count": int(c_rest), "share": _r(c_rest / len(rest))},
+              "reference_range": [_r(q005), _r(q995)]}
+        shown = ", ".join(f"{c:g}" for c in codes)
+        detail = (f"the value{'s' if len(codes) > 1 else ''} {shown} appear{'' if len(codes) > 1 else 's'} {cnt} times "
+                  f"({cnt / len(v):.1%} of recorded values) at this site, far outside the range of the other sites "
+                  f"({q005:.4g} to {q995:.4g})")
+        out.append(_Cand(-1, s, "missing_code", p_min, True, detail, ev,
+                         "high", f"treat {shown} as missing at this site before analysis", payload=tuple(codes)))
     return out
 
 
@@ -814,14 +837,145 @@ def detect_exclusive_levels(values: np.ndarray, site_code: np.ndarray, k: int, *
         if len(nz) == 1 and int(nz.iloc[0]) >= min_count:
             per_site.setdefault(int(nz.index[0]), []).append((str(level), int(nz.iloc[0])))
     for s, levels in sorted(per_site.items()):
+        # one finding per feature x site listing its levels, the most frequent first
         m = len(levels)
-        for level, c in sorted(levels):
+        rows, ps = [], []
+        for level, c in sorted(levels, key=lambda t: (-t[1], t[0])):
             p = float(_st.hypergeom.pmf(c, N, int(n_site[s]), c))
-            ev = {"level": level, "p_value": _r(min(1.0, p * m)), "count": int(c), "n": int(n_site[s]),
-                  "n_reference": int(N - n_site[s])}
-            detail = f"level {level!r} occurs only at this site ({c} rows) and never at the other sites"
-            out.append(_Cand(-1, s, "exclusive_level", min(1.0, p * m), True, detail, ev, "medium",
-                             "map the level to the common coding used elsewhere, or confirm it is a local category"))
+            ps.append(min(1.0, p * m))
+            rows.append({"level": level, "count": int(c), "p_value": _r(ps[-1])})
+        p_min = min(ps)
+        total = sum(r["count"] for r in rows)
+        ev = {"level": rows[0]["level"], "levels": rows, "p_value": _r(p_min), "count": int(total),
+              "n": int(n_site[s]), "n_reference": int(N - n_site[s])}
+        shown = ", ".join(repr(r["level"]) for r in rows[:5]) + (f" and {m - 5} more" if m > 5 else "")
+        detail = (f"level {shown} occurs only at this site ({total} rows) and never at the other sites" if m == 1 else
+                  f"{m} levels occur only at this site ({total} rows) and never at the other sites: {shown}")
+        out.append(_Cand(-1, s, "exclusive_level", p_min, True, detail, ev, "medium",
+                         "map the level to the common coding used elsewhere, or confirm it is a local category",
+                         payload=tuple(r["level"] for r in rows)))
+    return out
+
+
+def detect_censoring(vals: Sequence[np.ndarray], flags: Sequence[np.ndarray], *, min_count: int = 10,
+                     min_share_gap: float = 0.02) -> List[_Cand]:
+    """Censored cells (``<5``, ``>20``) written at one site more than at the others.
+
+    ``vals[s]`` are the site's recorded values and ``flags[s]`` their censoring
+    flags from intake (-1 below a limit, +1 above, 0 none); a censored cell holds
+    its limit. For each site and side: the share of the site's values censored on
+    that side against the other sites' share (Fisher's one-sided exact test). The
+    effect must be at least ``min_share_gap`` and three times the others' share,
+    with at least ``min_count`` censored cells. The evidence gives the limits (the
+    most frequent first) with the share of the site's values at each, and the
+    other sites' behaviour at the main limit: how many of their values lie beyond
+    it as measured numbers and how many they censor there. False-positive rate per
+    feature x site x side: at most the per-test level (exact conditional test).
+    """
+    out: List[_Cand] = []
+    k = len(vals)
+    for side, kind in ((-1, "censored_below"), (1, "censored_above")):
+        cnt = np.array([int(np.sum(flags[t] == side)) for t in range(k)])
+        tot = np.array([len(vals[t]) for t in range(k)])
+        for s in range(k):
+            if cnt[s] < min_count or tot[s] == 0:
+                continue
+            k_r, n_r = int(cnt.sum() - cnt[s]), int(tot.sum() - tot[s])
+            if n_r == 0:
+                continue
+            sh_s, sh_r = cnt[s] / tot[s], k_r / n_r
+            lim, lim_n = np.unique(vals[s][flags[s] == side], return_counts=True)
+            order = np.lexsort((lim, -lim_n))
+            limits = [{"limit": _r(lim[i]), "count": int(lim_n[i]), "share": _r(lim_n[i] / tot[s])} for i in order]
+            L = float(lim[order[0]])
+            rest_v = np.concatenate([vals[t] for t in range(k) if t != s])
+            rest_f = np.concatenate([flags[t] for t in range(k) if t != s])
+            measured = rest_f == 0
+            beyond = int(np.sum(measured & ((rest_v < L) if side < 0 else (rest_v > L))))
+            at_cens = int(np.sum((rest_f == side) & (np.abs(rest_v - L) <= 1e-9 * max(1.0, abs(L)))))
+            p = _fisher_greater(int(cnt[s]), int(tot[s] - cnt[s]), k_r, n_r - k_r)
+            effect = sh_s - sh_r >= min_share_gap and sh_s >= 3 * sh_r
+            word, sign = ("below", "<") if side < 0 else ("above", ">")
+            ev = {"limit": _r(L), "limits": limits, "p_value": _r(p),
+                  "at_site": {"n": int(tot[s]), "count": int(cnt[s]), "share": _r(sh_s)},
+                  "elsewhere": {"n": n_r, "count": k_r, "share": _r(sh_r),
+                                f"share_measured_{word}": _r(beyond / n_r), "censored_at_limit": at_cens}}
+            listed = ", ".join(sign + format(e["limit"], "g") for e in limits)
+            more = f" (limits {listed})" if len(limits) > 1 else ""
+            detail = (f"{sh_s:.1%} of values are written as {sign}{L:g}{more} at this site, against {sh_r:.1%} "
+                      f"censored elsewhere, where {beyond / n_r:.1%} of values are measured {word} {L:g}")
+            fix = (f"choose one policy for the censored cells (keep the limit, limit / sqrt(2), or missing) and "
+                   f"consider censoring every site at {sign}{L:g}")
+            out.append(_Cand(-1, s, kind, p, effect, detail, ev, "medium", fix, payload=L))
+    return out
+
+
+#: Number-format idioms (from intake) that make a site's export differ.
+FORMAT_IDIOMS = ("decimal_comma", "unit_suffix", "thousands_separator")
+
+
+def detect_number_format(idioms: Dict[str, Dict[str, int]], units: Dict[str, Dict[str, int]],
+                         labels: Sequence[str], n_present: Sequence[int], *, min_count: int = 10,
+                         min_share_gap: float = 0.02) -> List[_Cand]:
+    """A site writes its numbers differently: decimal commas, a unit after the
+    number, thousands separators.
+
+    Intake reads such cells as numbers (:func:`sitecheck.intake.parse_idioms`)
+    and counts them per site; a pipeline that does not will see text or missing
+    values at that site only. For each site: the share of its recorded values in
+    each format against the other sites' (Fisher's one-sided exact test on the
+    most frequent format; effect at least ``min_share_gap`` and three times the
+    others' share, at least ``min_count`` cells). One finding per feature x site
+    lists the formats. A site that writes another unit than the others is named
+    in the evidence (``units``).
+    """
+    out: List[_Cand] = []
+    k = len(labels)
+    n_present = np.asarray(n_present, dtype=np.int64)
+    for s in range(k):
+        own = idioms.get(labels[s], {})
+        if n_present[s] == 0:
+            continue
+        formats, best = [], None
+        for key in FORMAT_IDIOMS:
+            c = int(own.get(key, 0))
+            if c < min_count:
+                continue
+            c_r = int(sum(idioms.get(labels[t], {}).get(key, 0) for t in range(k) if t != s))
+            n_r = int(n_present.sum() - n_present[s])
+            if n_r == 0:
+                continue
+            sh_s, sh_r = c / n_present[s], c_r / n_r
+            if not (sh_s - sh_r >= min_share_gap and sh_s >= 3 * sh_r):
+                continue
+            p = _fisher_greater(c, int(n_present[s] - c), c_r, n_r - c_r)
+            formats.append({"format": key, "count": c, "share": _r(sh_s), "count_elsewhere": c_r,
+                            "share_elsewhere": _r(sh_r), "p_value": _r(p)})
+            if best is None or p < best:
+                best = p
+        if not formats:
+            continue
+        own_units = dict(units.get(labels[s], {}))
+        other_units: Dict[str, int] = {}
+        for t in range(k):
+            if t != s:
+                for u, c in units.get(labels[t], {}).items():
+                    other_units[u] = other_units.get(u, 0) + int(c)
+        m = len(formats)
+        ev = {"formats": formats, "p_value": _r(min(1.0, best * m)),
+              "at_site": {"n": int(n_present[s]), "count": int(max(f["count"] for f in formats))},
+              "units": own_units, "units_elsewhere": other_units}
+        words = {"decimal_comma": "decimal commas", "unit_suffix": "a unit after the number",
+                 "thousands_separator": "thousands separators"}
+        said = "; ".join(f"{words[f['format']]} in {f['share']:.0%} of cells ({f['share_elsewhere']:.0%} elsewhere)"
+                         for f in formats)
+        if own_units:
+            said += "; units written: " + ", ".join(f"{u} ({c})" for u, c in sorted(own_units.items()))
+        detail = f"this site writes {said}"
+        out.append(_Cand(-1, s, "number_format", min(1.0, best * m), True, detail, ev, "low",
+                         "rewrite this site's cells as plain numbers with a decimal point (the repair plan's "
+                         "number_format entry); intake has already read them as numbers",
+                         payload=tuple(f["format"] for f in formats)))
     return out
 
 
@@ -840,6 +994,11 @@ _EXPLAIN = {
     "exclusive_level": "A category is used only at this site, so the level alone identifies it.",
     "shift": "Values are offset at this site beyond what the covariates explain (analyser, method or case mix).",
     "scale": "Values are more or less spread at this site beyond what the covariates explain.",
+    "censored_below": "The site writes values below a detection limit as '<limit' more often than the others: "
+                      "the censored cells sit at the limit, which marks the site.",
+    "censored_above": "The site writes values above a reporting limit as '>limit' more often than the others.",
+    "number_format": "The site's export writes numbers differently (decimal comma, unit, separators); read as "
+                     "text, the column would mark the site.",
 }
 
 
@@ -925,7 +1084,8 @@ def find_fingerprints(data, *, covariates: Optional[Sequence[str]] = None, alpha
     categorical = [f for f in features if kinds[f] == "categorical"]
     n_tests["site_missing"] = len(features) * k
     n_tests["exclusive_level"] = len(categorical) * k
-    for kd in ("unit_ratio", "precision", "heaping", "missing_code", "shift", "scale", "floor", "ceiling"):
+    for kd in ("unit_ratio", "precision", "heaping", "missing_code", "shift", "scale", "floor", "ceiling",
+               "censored_below", "censored_above", "number_format"):
         n_tests[kd] = len(numeric) * k
 
     for j, f in enumerate(features):
@@ -946,8 +1106,30 @@ def find_fingerprints(data, *, covariates: Optional[Sequence[str]] = None, alpha
         for s in range(k):
             v = x[site_rows[s]]
             vals.append(np.sort(v[~np.isnan(v)]))
+        column = table.column(f)
+        if column.idioms:
+            for c in detect_number_format(column.idioms, column.units, labels, [len(v) for v in vals],
+                                          min_count=min_count):
+                c.j = j
+                cands.append(c)
+        cens = table.censored(f) if hasattr(table, "censored") else None
+        cens_found: Dict[int, set] = {}
+        if cens is not None:
+            xs = [x[site_rows[s]] for s in range(k)]
+            fl = [cens[site_rows[s]][~np.isnan(xs[s])] for s in range(k)]
+            xv = [xs[s][~np.isnan(xs[s])] for s in range(k)]
+            for c in detect_censoring(xv, fl, min_count=min_count):
+                c.j = j
+                cands.append(c)
+                if c.p < alpha / max(n_tests[c.kind], 1) and c.passes_effect:
+                    cens_found.setdefault(c.s, set()).add(-1 if c.kind == "censored_below" else 1)
+            for s, sides in cens_found.items():
+                # censored cells are limits, not recorded values: out of the later detectors
+                vals[s] = np.sort(xv[s][~np.isin(fl[s], list(sides))])
         per_test = alpha / max(n_tests["missing_code"], 1)
         found: Dict[int, set] = {s: set() for s in range(k)}
+        for s in cens_found:
+            found[s].add("censored")
 
         mc = detect_missing_codes(vals, min_count=min_count)
         for c in mc:
@@ -955,7 +1137,7 @@ def find_fingerprints(data, *, covariates: Optional[Sequence[str]] = None, alpha
             cands.append(c)
             if c.p < per_test and c.passes_effect:
                 found[c.s].add("missing_code")
-                vals[c.s] = vals[c.s][vals[c.s] != c.payload]
+                vals[c.s] = vals[c.s][~np.isin(vals[c.s], c.payload)]
         ur = detect_unit_ratio(vals, f, min_count=min_count)
         for c in ur:
             c.j = j
@@ -988,14 +1170,14 @@ def find_fingerprints(data, *, covariates: Optional[Sequence[str]] = None, alpha
             if found[s] & {"unit_ratio"}:
                 y[site_code == s] = np.nan
             elif "missing_code" in found[s]:
-                codes = [c.payload for c in mc if c.s == s and c.p < per_test and c.passes_effect]
+                codes = [v for c in mc if c.s == s and c.p < per_test and c.passes_effect for v in c.payload]
                 y[(site_code == s) & np.isin(x, codes)] = np.nan
         y_adj, _ = adjust_for_covariates(y, site_code, Z, k, _gram=gram)
         adj_vals = []
         for s in range(k):
             v = y_adj[site_rows[s]]
             adj_vals.append(v[~np.isnan(v)])
-        act2 = [s for s in active if len(adj_vals[s]) > 0 and not found[s] & {"floor", "ceiling"}]
+        act2 = [s for s in active if len(adj_vals[s]) > 0 and not found[s] & {"floor", "ceiling", "censored"}]
         for c in detect_shift_scale(adj_vals, act2, min_count=min_count, min_smd=min_smd,
                                     min_sd_ratio=min_sd_ratio):
             c.j = j

@@ -517,14 +517,21 @@ def assign_roles(
                                         f"never recorded at site {lab!r} (all {int((site == lab).sum())} rows missing)",
                                         site=lab, count=int((site == lab).sum())))
         if col.kind == "categorical":
+            # one finding per column x site, listing the levels (most frequent first)
             ct = pd.crosstab(frame[col.name], site)
+            per_site: Dict[str, List[Tuple[str, int]]] = {}
             for level, row in ct.iterrows():
                 nz = row[row > 0]
                 if len(nz) == 1 and int(nz.iloc[0]) >= 5:
-                    lab = str(nz.index[0])
-                    findings.append(Finding(col.name, "exclusive_level",
-                                            f"level {str(level)!r} occurs only at site {lab!r}",
-                                            site=lab, count=int(nz.iloc[0])))
+                    per_site.setdefault(str(nz.index[0]), []).append((str(level), int(nz.iloc[0])))
+            for lab in kept:
+                lv = sorted(per_site.get(lab, []), key=lambda t: (-t[1], t[0]))
+                if not lv:
+                    continue
+                shown = ", ".join(repr(x) for x, _ in lv[:5]) + (f" and {len(lv) - 5} more" if len(lv) > 5 else "")
+                what = f"level {shown} occurs" if len(lv) == 1 else f"{len(lv)} levels occur ({shown})"
+                findings.append(Finding(col.name, "exclusive_level", f"{what} only at site {lab!r}",
+                                        site=lab, count=sum(c for _, c in lv)))
 
     usable = [c for c in columns if c.role == "feature"]
     if not usable:

@@ -38,7 +38,7 @@ def demo_run(request):
 def test_demo_truth_recovered_with_kind_and_site(demo_run):
     d, _, result = demo_run
     truth = {(e["feature"], e["site"], e["kind"]) for e in d.truth["effects"]}
-    assert len(truth) == 6
+    assert len(truth) == 8
     # every injected effect is found with the right kind and site, and nothing else is reported
     assert _keys(result) == truth
     for f in result.findings:
@@ -278,3 +278,112 @@ def test_welch_and_brown_forsythe_match_scipy():
     got_t = welch_test(a.mean(), a.var(ddof=1), len(a), b.mean(), b.var(ddof=1), len(b))
     assert got_t == pytest.approx(ref_t, rel=1e-9)
     assert brown_forsythe(a, b) == pytest.approx(stats.levene(a, b, center="median").pvalue, rel=1e-9)
+
+
+# -- issue 17: censoring, number formats, one finding per feature x site x kind --------------------
+
+def test_demo_censoring_and_number_format_evidence(demo_run):
+    d, table, result = demo_run
+    by = {(f.feature, f.kind): f.evidence for f in result.findings}
+    f = d.frame
+    t = by[("troponin", "censored_below")]
+    at = f.hospital == "Aldermoor"
+    n_cens = int((f.troponin[at] == "<5").sum())
+    n_rec = int(f.troponin[at].notna().sum())
+    assert t["limit"] == 5.0 and t["at_site"]["count"] == n_cens and t["at_site"]["n"] == n_rec
+    assert t["at_site"]["share"] == pytest.approx(n_cens / n_rec, rel=1e-5)
+    assert t["elsewhere"]["count"] == 0
+    # the other sites measure values below 5 (3 and 4 ng/L in the demo)
+    other = pd.to_numeric(f.troponin[~at], errors="coerce").dropna()
+    assert t["elsewhere"]["share_measured_below"] == pytest.approx((other < 5).mean(), rel=1e-5)
+    # the censored cells are not also reported as a floor at the same site
+    assert ("troponin", "floor") not in by
+    k = by[("potassium", "number_format")]
+    cin = f.hospital == "Cindervale"
+    assert k["formats"][0]["format"] == "decimal_comma"
+    assert k["formats"][0]["count"] == int(f.potassium[cin].astype(str).str.contains(",").sum())
+    assert k["formats"][0]["count_elsewhere"] == 0
+
+
+def test_exclusive_levels_aggregate_to_one_finding_per_feature_and_site():
+    # invented: one site writes 21 local ward codes that no other site uses
+    rng = np.random.default_rng(3)
+    site = np.repeat(["North", "South", "East"], 300).astype(object)
+    ward = rng.choice(["A", "B", "C"], 900).astype(object)
+    ward[:300] = np.array([f"N{i:02d}" for i in range(21)], dtype=object)[rng.integers(0, 21, 300)]
+    frame = pd.DataFrame({"site": site, "ward": ward, "x": np.round(rng.normal(5, 1, 900), 1)})
+    table = _table(frame)
+    result = find_fingerprints(table)
+    excl = result.of_kind("exclusive_level")
+    assert len(excl) == 1 and excl[0].site == "North"
+    ev = excl[0].evidence
+    assert len(ev["levels"]) == 21 and ev["count"] == 300
+    assert [r["count"] for r in ev["levels"]] == sorted((r["count"] for r in ev["levels"]), reverse=True)
+    # the hygiene finding before modelling is aggregated the same way
+    hyg = [h for h in table.findings if h.kind == "exclusive_level"]
+    assert len(hyg) == 1 and hyg[0].site == "North" and hyg[0].count == 300 and "21 levels" in hyg[0].detail
+
+
+def test_missing_codes_aggregate_with_every_code_listed():
+    rng = np.random.default_rng(9)
+    site = np.repeat(["North", "South", "East"], 400).astype(object)
+    x = np.round(rng.normal(1.4, 0.4, 1200), 1)
+    x[:30], x[30:55] = -99.0, 999.0
+    table = _table(pd.DataFrame({"site": site, "lactate": x}))
+    (mc,) = find_fingerprints(table).of_kind("missing_code")
+    assert mc.site == "North" and mc.evidence["value"] == -99.0
+    assert [c["value"] for c in mc.evidence["codes"]] == [-99.0, 999.0] and mc.evidence["at_site"]["count"] == 55
+
+
+def _censored_frame(rng, n_per_site, censor_sites, limit=5.0):
+    """Four invented sites with the same troponin distribution; some write values below
+    ``limit`` as '<limit' (text cells, as exported)."""
+    sites = ["North", "South", "East", "West"]
+    site = np.repeat(sites, n_per_site).astype(object)
+    trop = np.round(2 + np.exp(rng.normal(np.log(7.0), 0.9, len(site))))
+    cells = trop.astype(object)
+    for s in censor_sites:
+        m = (site == s) & (trop < limit)
+        cells[m] = f"<{limit:g}"
+    return pd.DataFrame({"site": site, "troponin": cells})
+
+
+def test_censoring_false_alarm_rate_when_every_site_censors_alike():
+    # every site writes '<5' below 5: censoring does not mark any site. Measured over 20 seeds.
+    fired = 0
+    for seed in range(20):
+        frame = _censored_frame(np.random.default_rng(seed), 300, ["North", "South", "East", "West"])
+        res = find_fingerprints(_table(frame))
+        fired += any(f.kind in ("censored_below", "censored_above", "floor") for f in res.findings)
+    assert fired <= 1        # family-wise level 0.01 per kind: at most 1 of 20 is allowed by chance
+    # and one censoring site among four is found every time, at that site only
+    for seed in range(5):
+        frame = _censored_frame(np.random.default_rng(100 + seed), 300, ["East"])
+        res = find_fingerprints(_table(frame))
+        assert {(f.site, f.kind) for f in res.findings if f.kind.startswith("censored")} == {("East", "censored_below")}
+
+
+def test_number_format_false_alarm_rate_when_every_site_writes_commas():
+    fired = 0
+    for seed in range(10):
+        rng = np.random.default_rng(seed)
+        site = np.repeat(["North", "South", "East"], 200).astype(object)
+        k = np.round(rng.normal(4.2, 0.45, 600), 1)
+        frame = pd.DataFrame({"site": site, "potassium": [f"{v:.1f}".replace(".", ",") for v in k]})
+        res = find_fingerprints(_table(frame))
+        fired += any(f.kind == "number_format" for f in res.findings)
+    assert fired == 0
+
+
+def test_kinds_are_one_list_for_gates_and_schema():
+    from sitecheck.cli import _check_gate_kinds
+    from sitecheck.schema import report_schema
+
+    enum = report_schema()["properties"]["fingerprints"]["items"]["properties"]["kind"]["enum"]
+    assert enum == list(KINDS)
+    assert KINDS[:10] == ("unit_ratio", "precision", "heaping", "floor", "ceiling", "missing_code", "site_missing",
+                          "exclusive_level", "shift", "scale")      # shipped names, a contract
+    for k in ("censored_below", "censored_above", "number_format"):
+        _check_gate_kinds([k])
+    with pytest.raises(InputError, match="censored_below"):
+        _check_gate_kinds(["censored"])
