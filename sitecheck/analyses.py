@@ -84,7 +84,10 @@ def _run_fingerprints(prep, options, objects):
 
 
 def _fingerprint_sections(result):
-    return {"fingerprints": [f.to_dict() for f in result.findings], "fingerprint_tests": result.tests}
+    out = {"fingerprints": [f.to_dict() for f in result.findings], "fingerprint_tests": result.tests}
+    if result.unit_columns:
+        out["unit_columns"] = result.unit_columns
+    return out
 
 
 

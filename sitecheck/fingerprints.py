@@ -55,7 +55,7 @@ from .units import TEMPERATURE, candidate_factors, conversions_for, is_temperatu
 #: Every fingerprint kind, in report order: the one list that ``--fail-on``, the report
 #: schema and the repair plan use. Names are a contract; new kinds are appended.
 KINDS = ("unit_ratio", "precision", "heaping", "floor", "ceiling", "missing_code", "site_missing",
-         "exclusive_level", "shift", "scale", "censored_below", "censored_above", "number_format")
+         "exclusive_level", "shift", "scale", "censored_below", "censored_above", "number_format", "unit_label")
 
 #: Candidate recording steps, coarsest last.
 GRID_STEPS = (0.001, 0.002, 0.005, 0.01, 0.02, 0.025, 0.05, 0.1, 0.2, 0.25, 0.5, 1.0, 2.0, 5.0, 10.0,
@@ -124,6 +124,8 @@ class FingerprintResult:
     features: Tuple[str, ...]
     covariates: Tuple[str, ...]
     params: Dict[str, Any]
+    #: unit column -> its link to the numeric column it qualifies (:func:`link_unit_columns`)
+    unit_columns: Dict[str, Dict[str, Any]] = field(default_factory=dict)
 
     def of_kind(self, kind: str) -> List[Fingerprint]:
         return [f for f in self.findings if f.kind == kind]
@@ -131,7 +133,8 @@ class FingerprintResult:
     def to_dict(self) -> dict:
         return {"findings": [f.to_dict() for f in self.findings], "tests": _jsonable(self.tests),
                 "n_rows": int(self.n_rows), "features": list(self.features),
-                "covariates": list(self.covariates), "params": _jsonable(self.params)}
+                "covariates": list(self.covariates), "params": _jsonable(self.params),
+                "unit_columns": _jsonable(self.unit_columns)}
 
 
 
@@ -980,6 +983,152 @@ def detect_number_format(idioms: Dict[str, Dict[str, int]], units: Dict[str, Dic
 
 
 # ---------------------------------------------------------------------------
+# unit columns: a text column whose levels are units, linked to the values
+# ---------------------------------------------------------------------------
+
+def _text_values(table, name: str) -> np.ndarray:
+    """A categorical or binary column's cells as text (binary columns are stored as 0/1)."""
+    x = table.frame[name]
+    if name in table.binary_levels:
+        lv0, lv1 = table.binary_levels[name]
+        v = x.to_numpy(dtype=float)
+        out = np.where(v == 1.0, lv1, lv0).astype(object)
+        out[np.isnan(v)] = None
+        return out
+    return x.to_numpy(dtype=object)
+
+
+def link_unit_columns(table, *, min_count: int = 10) -> Dict[str, Dict[str, Any]]:
+    """Find the text columns whose levels are units and the numeric column each qualifies.
+
+    A feature is a unit column when every level reads as a unit
+    (:func:`sitecheck.units.canonical_unit`: ``mg/dL``, ``umol/L``, ``µmol/l``,
+    ``g/L`` ...). It is linked to a numeric feature by name (``creat_unit`` ->
+    ``creatinine``; :func:`sitecheck.units.unit_column_base`) or, failing that, by
+    the values: the ratio of the numeric feature's medians between two unit levels
+    (at least ``min_count`` rows each) within 10% of the conversion factor between
+    those units (:func:`sitecheck.units.unit_factor`: the SI table for the named
+    analyte, else metric prefixes), with a factor of at least 1.8 either way so that
+    a ratio near 1 links nothing.
+
+    Returns
+    -------
+    dict
+        Unit column -> ``{"column", "linked_by", "levels", "ratio", "factor",
+        "factor_source", "from_unit", "to_unit"}`` (``column`` None when the levels
+        are units but no numeric feature matched).
+    """
+    from .units import canonical_unit, names_refer_to_same, unit_column_base, unit_factor
+
+    out: Dict[str, Dict[str, Any]] = {}
+    numeric = [f for f in table.features if table.kind(f) == "numeric"]
+    for col in table.columns:
+        if col.role != "feature" or col.kind not in ("categorical", "binary"):
+            continue
+        if col.kind == "binary" and col.name not in table.binary_levels:
+            continue
+        if col.levels and len(col.levels) > 30:
+            continue
+        raw = pd.Series(_text_values(table, col.name), dtype=object)
+        present = raw.notna().to_numpy()
+        if not present.any():
+            continue
+        levels = pd.unique(raw[present])
+        if len(levels) > 30:
+            continue
+        canon = {lv: canonical_unit(lv) for lv in levels}
+        if any(c is None for c in canon.values()) or len(set(canon.values())) < 2:
+            continue
+        units = raw.map(canon).where(raw.notna(), None).to_numpy(dtype=object)
+        counts = pd.Series(units[present]).value_counts()
+        ref_unit = str(counts.index[0])
+        base = unit_column_base(col.name)
+        by_name = [f for f in numeric if base is not None and names_refer_to_same(base, f)]
+        best = None
+        for f in (by_name or numeric):
+            x = table.frame[f].to_numpy(dtype=float)
+            ref_rows = (units == ref_unit) & ~np.isnan(x)
+            if ref_rows.sum() < min_count:
+                continue
+            m_ref = float(np.median(x[ref_rows]))
+            if m_ref <= 0:
+                continue
+            for u in counts.index[1:]:
+                rows = (units == u) & ~np.isnan(x)
+                if rows.sum() < min_count:
+                    continue
+                fac = unit_factor(ref_unit, str(u), f)
+                if fac is None:
+                    continue
+                ratio = float(np.median(x[rows])) / m_ref
+                if ratio <= 0 or abs(math.log(fac[0])) < math.log(1.8):
+                    continue
+                err = abs(math.log(ratio / fac[0]))
+                if err <= math.log(1.10) and (best is None or (f not in by_name, err) < (best[0] not in by_name, best[1])):
+                    best = (f, err, ratio, fac, str(u))
+        if best is not None:
+            f, err, ratio, fac, u = best
+            linked_by = "name and values" if f in by_name else "values"
+            out[col.name] = {"column": f, "linked_by": linked_by, "levels": {str(k): int(v) for k, v in counts.items()},
+                             "ratio": _r(ratio), "factor": _r(fac[0]), "factor_source": fac[1],
+                             "from_unit": ref_unit, "to_unit": u}
+        else:
+            out[col.name] = {"column": by_name[0] if len(by_name) == 1 else None,
+                             "linked_by": "name" if len(by_name) == 1 else None,
+                             "levels": {str(k): int(v) for k, v in counts.items()}, "ratio": None, "factor": None,
+                             "factor_source": None, "from_unit": ref_unit, "to_unit": None}
+    return out
+
+
+def detect_unit_label(units: np.ndarray, site_code: np.ndarray, k: int, link: Dict[str, Any], *,
+                      min_count: int = 10, min_share_gap: float = 0.02) -> List[_Cand]:
+    """A site writes another unit in a unit column than the other sites.
+
+    ``units`` holds the canonical unit of each row (None when missing). At site
+    ``s`` with main unit ``u`` that is not the others' main unit: the share of the
+    site's rows in ``u`` against the others' share (Fisher's one-sided exact test;
+    effect at least ``min_share_gap`` and three times the others' share, at least
+    ``min_count`` rows). False-positive rate: at most the per-test level.
+    """
+    out: List[_Cand] = []
+    ok = pd.notna(units)
+    for s in range(k):
+        at = ok & (site_code == s)
+        rest = ok & (site_code != s)
+        if at.sum() < min_count or rest.sum() == 0:
+            continue
+        own = pd.Series(units[at]).value_counts()
+        oth = pd.Series(units[rest]).value_counts()
+        u, u_ref = str(own.index[0]), str(oth.index[0])
+        if u == u_ref:
+            continue
+        c_s, n_s = int(own.iloc[0]), int(at.sum())
+        c_r, n_r = int(oth.get(u, 0)), int(rest.sum())
+        sh_s, sh_r = c_s / n_s, c_r / n_r
+        p = _fisher_greater(c_s, n_s - c_s, c_r, n_r - c_r)
+        effect = c_s >= min_count and sh_s - sh_r >= min_share_gap and sh_s >= 3 * sh_r
+        col = link.get("column")
+        ev = {"unit": u, "reference_unit": u_ref, "linked_column": col, "linked_by": link.get("linked_by"),
+              "ratio": link.get("ratio"), "factor": link.get("factor"), "factor_source": link.get("factor_source"),
+              "levels_at_site": {str(a): int(b) for a, b in own.items()},
+              "levels_elsewhere": {str(a): int(b) for a, b in oth.items()}, "p_value": _r(p),
+              "at_site": {"n": n_s, "count": c_s, "share": _r(sh_s)},
+              "elsewhere": {"n": n_r, "count": c_r, "share": _r(sh_r)}}
+        if col is not None:
+            how = {"name": "by name", "values": "by its values", "name and values": "by name and values"}[link["linked_by"]]
+            ratio = (f"; the values' ratio {link['ratio']:.4g} between {link['to_unit']} and {link['from_unit']} "
+                     f"matches the factor {link['factor']:.4g}" if link.get("ratio") is not None else "")
+            what = f"this column gives the unit of {col!r} (linked {how}{ratio}): "
+        else:
+            what = "this column's levels are units, linked to no numeric column: "
+        detail = f"{what}this site writes {u} in {sh_s:.0%} of rows, the other sites {u_ref} ({sh_r:.0%} {u})"
+        fix = (f"convert {col!r} at this site from {u} to {u_ref} and write {u_ref} in this column"
+               if col is not None else f"check which column this unit qualifies; the site writes {u}")
+        out.append(_Cand(-1, s, "unit_label", p, effect, detail, ev, "high", fix, payload=(u, u_ref, col)))
+    return out
+
+
+# ---------------------------------------------------------------------------
 # the public entry point
 # ---------------------------------------------------------------------------
 
@@ -999,7 +1148,31 @@ _EXPLAIN = {
     "censored_above": "The site writes values above a reporting limit as '>limit' more often than the others.",
     "number_format": "The site's export writes numbers differently (decimal comma, unit, separators); read as "
                      "text, the column would mark the site.",
+    "unit_label": "A column that names the unit of a measurement says another unit at this site.",
 }
+
+
+def _cross_reference_units(findings, unit_links, table):
+    """Name the unit column on the numeric column's ``unit_ratio`` finding (and the
+    units written in the cells, from intake), so that each finding says so."""
+    from dataclasses import replace
+
+    by_value = {link["column"]: name for name, link in unit_links.items() if link.get("column")}
+    out = []
+    for t in findings:
+        f = t[3]
+        if f.kind == "unit_ratio":
+            ev = dict(f.evidence)
+            detail = f.detail
+            if f.feature in by_value:
+                ev["unit_column"] = by_value[f.feature]
+                detail += f"; the unit column {by_value[f.feature]!r} gives this column's unit"
+            units = table.column(f.feature).units if hasattr(table, "column") else {}
+            if units:
+                ev["units_written"] = {s: dict(u) for s, u in units.items()}
+            f = replace(f, evidence=ev, detail=detail)
+        out.append((t[0], t[1], t[2], f))
+    return out
 
 
 def _table_of(data):
@@ -1083,7 +1256,9 @@ def find_fingerprints(data, *, covariates: Optional[Sequence[str]] = None, alpha
     numeric = [f for f in features if kinds[f] == "numeric"]
     categorical = [f for f in features if kinds[f] == "categorical"]
     n_tests["site_missing"] = len(features) * k
-    n_tests["exclusive_level"] = len(categorical) * k
+    unit_links = link_unit_columns(table, min_count=min_count)
+    n_tests["exclusive_level"] = len([f for f in categorical if f not in unit_links]) * k
+    n_tests["unit_label"] = len(unit_links) * k
     for kd in ("unit_ratio", "precision", "heaping", "missing_code", "shift", "scale", "floor", "ceiling",
                "censored_below", "censored_above", "number_format"):
         n_tests[kd] = len(numeric) * k
@@ -1094,6 +1269,16 @@ def find_fingerprints(data, *, covariates: Optional[Sequence[str]] = None, alpha
         for c in detect_site_missing(present, site_code, k):
             c.j = j
             cands.append(c)
+        if f in unit_links:
+            from .units import canonical_unit
+
+            texts = pd.Series(_text_values(table, f), dtype=object)
+            canon = {lv: canonical_unit(lv) for lv in pd.unique(texts.dropna())}
+            units = texts.map(canon).where(texts.notna(), None).to_numpy(dtype=object)
+            for c in detect_unit_label(units, site_code, k, unit_links[f], min_count=min_count):
+                c.j = j
+                cands.append(c)
+            continue
         if kinds[f] == "categorical":
             for c in detect_exclusive_levels(col.to_numpy(dtype=object), site_code, k):
                 c.j = j
@@ -1203,8 +1388,9 @@ def find_fingerprints(data, *, covariates: Optional[Sequence[str]] = None, alpha
     # a precision finding at a site that is explained by a unit change is dropped above
     # (unit sites leave 'active'); keep a stable order
     findings.sort(key=lambda t: (t[0], t[1], t[2], str(t[3].evidence.get("value", ""))))
+    findings = _cross_reference_units(findings, unit_links, table)
     return FingerprintResult(
         findings=tuple(t[3] for t in findings), tests=tests, n_rows=int(len(frame)),
-        features=tuple(features), covariates=tuple(covs),
+        features=tuple(features), covariates=tuple(covs), unit_columns=unit_links,
         params={"alpha": float(alpha), "min_count": int(min_count), "min_smd": float(min_smd),
                 "min_sd_ratio": float(min_sd_ratio), "min_tvd": float(min_tvd)})

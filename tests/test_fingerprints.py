@@ -387,3 +387,43 @@ def test_kinds_are_one_list_for_gates_and_schema():
         _check_gate_kinds([k])
     with pytest.raises(InputError, match="censored_below"):
         _check_gate_kinds(["censored"])
+
+
+def _creatinine_with_unit_column(seed=0, unit_name="creat_unit", value_name="creatinine"):
+    # invented: four sites; Westbrook reports creatinine in mg/dL and says so in a unit column
+    rng = np.random.default_rng(seed)
+    site = np.repeat(["North", "South", "East", "Westbrook"], 250).astype(object)
+    umol = np.round(np.exp(rng.normal(np.log(80), 0.3, 1000)))
+    west = site == "Westbrook"
+    values = umol.copy()
+    values[west] = np.round(umol[west] / 88.42, 2)            # mg/dL, two decimals as printed
+    unit = np.where(west, "mg/dL", rng.choice(["umol/L", "µmol/l"], 1000)).astype(object)
+    return pd.DataFrame({"site": site, value_name: values, unit_name: unit,
+                         "sodium": np.round(rng.normal(139, 3, 1000))})
+
+
+def test_unit_column_linked_by_name_and_values():
+    frame = _creatinine_with_unit_column()
+    table = _table(frame)
+    res = find_fingerprints(table)
+    link = res.unit_columns["creat_unit"]
+    assert link["column"] == "creatinine" and link["linked_by"] == "name and values"
+    # published factor: creatinine 1 mg/dL = 88.4 umol/L (AMA Manual of Style SI conversion table)
+    assert link["factor"] == pytest.approx(1 / 88.4, rel=1e-3)
+    assert link["ratio"] == pytest.approx(1 / 88.4, rel=0.05)
+    (lab,) = res.of_kind("unit_label")
+    assert lab.site == "Westbrook" and lab.evidence["unit"] == "mg/dL" and lab.evidence["reference_unit"] == "umol/L"
+    assert "unit of 'creatinine'" in lab.detail
+    (ur,) = res.of_kind("unit_ratio")
+    assert ur.site == "Westbrook" and ur.evidence["unit_column"] == "creat_unit" and "creat_unit" in ur.detail
+    assert not res.of_kind("exclusive_level")
+
+
+def test_unit_column_linked_by_values_alone():
+    frame = _creatinine_with_unit_column(seed=1, unit_name="lab_u", value_name="creatinine")
+    res = find_fingerprints(_table(frame))
+    assert res.unit_columns["lab_u"]["column"] == "creatinine"
+    assert res.unit_columns["lab_u"]["linked_by"] == "values"
+    # a text column that is not a unit column is left alone
+    frame["lab_u"] = np.where(frame.site == "Westbrook", "ward B", "ward A")
+    assert find_fingerprints(_table(frame)).unit_columns == {}
