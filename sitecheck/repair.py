@@ -687,3 +687,153 @@ def plan_schema() -> Dict[str, Any]:
                    "entries": {"type": "array", "items": entry},
                    "not_repaired": {"type": "array", "items": obj({"kind": s, "feature": s, "reason": s})}},
                   ["plan_version", "site_column", "entries"])}
+
+
+# ---------------------------------------------------------------------------
+# the site signal that remains after repair
+# ---------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class ResidualSignal:
+    """The site probe and the top of the leak ranking before and after the safe repairs.
+
+    Attributes
+    ----------
+    auc_given, auc_given_ci : float, (float, float)
+        The scan's probe on the values as given.
+    auc_repaired, auc_repaired_ci, p_value_repaired : float, (float, float), float or None
+        The same probe (same rows, folds, model and seed) on the repaired values.
+    difference, difference_ci : float, (float, float)
+        ``auc_given - auc_repaired`` with a paired stratified-bootstrap 95% interval
+        (the same resamples of the same out-of-fold rows for both).
+    explained_share : float or None
+        ``difference / (auc_given - 0.5)``: the share of the site signal above chance
+        that the repairs remove.
+    n_used : int
+    applied : tuple of dict
+        The entries applied in memory (id, kind, column, site, operation, cells).
+    top : tuple of dict
+        The top features of the leak ranking: score as given and after repair, with intervals.
+    statement : str
+    """
+
+    auc_given: float
+    auc_given_ci: Tuple[float, float]
+    auc_repaired: Optional[float]
+    auc_repaired_ci: Optional[Tuple[float, float]]
+    p_value_repaired: Optional[float]
+    difference: Optional[float]
+    difference_ci: Optional[Tuple[float, float]]
+    explained_share: Optional[float]
+    n_used: int
+    n_boot: int
+    applied: Tuple[Dict[str, Any], ...]
+    top: Tuple[Dict[str, Any], ...]
+    verdict_repaired: Optional[str]
+    statement: str
+
+    def to_dict(self) -> dict:
+        from .result import to_jsonable
+
+        return to_jsonable({
+            "auc_given": self.auc_given, "auc_given_ci": list(self.auc_given_ci),
+            "auc_repaired": self.auc_repaired,
+            "auc_repaired_ci": None if self.auc_repaired_ci is None else list(self.auc_repaired_ci),
+            "p_value_repaired": self.p_value_repaired, "difference": self.difference,
+            "difference_ci": None if self.difference_ci is None else list(self.difference_ci),
+            "explained_share": self.explained_share, "n_used": self.n_used, "n_boot": self.n_boot,
+            "verdict_repaired": self.verdict_repaired, "applied": list(self.applied), "top": list(self.top),
+            "statement": self.statement,
+            "method": ("the scan's boosting probe refitted on the values after the plan's safe repairs (same rows, "
+                       "folds and seed); difference with a paired stratified bootstrap of the out-of-fold "
+                       "predictions; the leak ranking's top features re-scored by held-out permutation on the "
+                       "refitted fold models"),
+        })
+
+
+def residual_signal(prep_repaired, probe, leakage, applied: Sequence[Dict[str, Any]], *, top: int = 10,
+                    n_boot: int = 500, n_permutations: int = 199, max_rows_per_fold: int = 4000,
+                    random_state: Optional[int] = None) -> ResidualSignal:
+    """Probe the repaired values again and compare with the scan's probe.
+
+    Parameters
+    ----------
+    prep_repaired : Prepared
+        The table after the safe repairs, prepared with the scan's seed (same rows
+        and folds as the probe's).
+    probe : ProbeResult
+        The scan's probe on the values as given.
+    leakage : LeakageResult or None
+        The scan's leak ranking; its ``top`` features are re-scored.
+    applied : sequence of dict
+        The repair entries applied (for the report).
+    top : int, default 10
+    n_boot : int, default 500
+    n_permutations : int, default 199
+        Label permutations per fold for the repaired probe's p-value.
+    max_rows_per_fold : int, default 4000
+    random_state : int, optional (default: the scan seed)
+
+    Returns
+    -------
+    ResidualSignal
+    """
+    from . import stats
+    from .leakage import grouped_permutation_importance
+    from .prepare import stratified_subsample
+    from .probe import site_probe, verdict
+
+    seed = int(prep_repaired.seed if random_state is None else random_state)
+    given = probe.score
+    if not applied:
+        return ResidualSignal(given.auc, tuple(given.auc_ci), None, None, None, None, None, None, int(given.n), 0,
+                              (), (), None, "no safe repair applied: the site signal is that of the values as given")
+    res = site_probe(prep_repaired, n_boot=n_boot, n_permutations=n_permutations, linear=False, case_mix=False,
+                     within_outcome=False, groups=False, random_state=seed)
+    y = prep_repaired.site
+    paired = len(probe.crossfit.proba) == len(y)
+    diff, diff_ci = None, None
+    if paired:
+        a, b = stats.bootstrap_class_aucs(y, [probe.crossfit.proba, res.crossfit.proba], n_boot=n_boot,
+                                          random_state=np.random.default_rng([seed, 1717]))
+        d = stats.macro_from_class_aucs(a) - stats.macro_from_class_aucs(b)
+        diff = float(given.auc - res.auc)
+        diff_ci = stats.percentile_ci(d)
+    share = None
+    if given.auc > 0.5 and diff is not None:
+        share = float(min(1.0, max(0.0, diff / (given.auc - 0.5))))
+    rows: List[Dict[str, Any]] = []
+    if leakage is not None:
+        names = list(prep_repaired.features.names)
+        entries = [e for e in leakage.entries if e.feature in names][:top]
+        groups = [[names.index(e.feature)] for e in entries]
+        if groups:
+            X = prep_repaired.features.X
+            rng = np.random.default_rng([seed, 4242])
+            drops = np.zeros((len(res.crossfit.models), len(groups)))
+            for f, ((tr, te), model) in enumerate(zip(res.crossfit.folds, res.crossfit.models)):
+                te = np.asarray(te)
+                if len(te) > max_rows_per_fold:
+                    te = te[stratified_subsample(y[te], max_rows_per_fold, rng)]
+                _, dr = grouped_permutation_importance(model, X[te], y[te], groups, n_repeats=leakage.n_repeats,
+                                                       random_state=seed + f)
+                drops[f] = dr.mean(axis=1)
+            from .leakage import _t_interval
+
+            for g, e in enumerate(entries):
+                rows.append({"feature": e.feature, "rank_given": e.rank, "score_given": e.score,
+                             "score_given_ci": list(e.score_ci), "score_repaired": float(drops[:, g].mean()),
+                             "score_repaired_ci": list(_t_interval(drops[:, g]))})
+    lo, hi = res.auc_ci
+    statement = (f"measurement artefacts explain this much of the site signal: AUC {given.auc:.3f} -> {res.auc:.3f} "
+                 f"(95% CI {lo:.3f} to {hi:.3f})")
+    if diff_ci is not None:
+        statement += f"; difference {diff:.3f} (95% CI {diff_ci[0]:.3f} to {diff_ci[1]:.3f})"
+    if share is not None:
+        statement += f", {share:.0%} of the signal above chance"
+    return ResidualSignal(
+        auc_given=float(given.auc), auc_given_ci=tuple(given.auc_ci), auc_repaired=float(res.auc),
+        auc_repaired_ci=(float(lo), float(hi)), p_value_repaired=res.p_value, difference=diff,
+        difference_ci=None if diff_ci is None else (float(diff_ci[0]), float(diff_ci[1])),
+        explained_share=share, n_used=int(res.n_used), n_boot=int(n_boot), applied=tuple(applied), top=tuple(rows),
+        verdict_repaired=res.verdict, statement=statement)
