@@ -89,6 +89,12 @@ def _common_scan_options(f):
                      help="Gate: exit 1 when the probe AUC's lower 95% bound exceeds AUC."),
         click.option("--fail-on", "fail_on", multiple=True, metavar="KIND",
                      help="Gate: exit 1 when a fingerprint of this kind is found (repeatable; e.g. unit_ratio, missing_code)."),
+        click.option("--as-given", "as_given", is_flag=True, default=None,
+                     help="Run the maps, the harmonisation check and the outcome analysis on the values as given "
+                          "(default: after the repair plan's safe entries, applied in memory)."),
+        click.option("--censor-policy", type=click.Choice(["limit", "limit_over_sqrt2", "limit_over_2", "missing"]),
+                     default=None, help="Value for censored cells such as '<5' in the repair plan (default: "
+                                        "limit / sqrt(2) below a limit, after Hornung & Reed 1990; the limit above)."),
         click.option("--quiet", "-q", is_flag=True, help="No progress messages on stderr."),
     ]
     for o in reversed(opts):
@@ -102,11 +108,15 @@ def _options_from(cfg_options: dict, **flags):
     base = ScanOptions()
     kw = {}
     for key in ("seed", "folds", "max_rows", "map_rows", "min_site_rows", "min_cell", "include_datetime",
-                "cluster_threshold", "threshold"):
+                "cluster_threshold", "threshold", "censor_policy"):
         val = flags.get(key)
         if val is None:
             val = cfg_options.get(key, getattr(base, key))
         kw[key] = val
+    as_given = flags.get("as_given")
+    if as_given is None:
+        as_given = bool(cfg_options.get("as_given", False))
+    kw["repair"] = not as_given
     return ScanOptions(**kw)
 
 
@@ -188,7 +198,11 @@ def summary_text(result, paths, failed=()) -> str:
                      f"p = {probe['p_value']:.3g}, verdict: {probe['verdict']}")
     for w in doc.get("warnings", [])[:5]:
         lines.append(f"warning: {w}")
-    lines.append("report: " + ", ".join(paths[k] for k in ("report.html", "report.json", "findings.md") if k in paths))
+    residual = doc.get("residual")
+    if residual and residual.get("statement"):
+        lines.append(residual["statement"])
+    lines.append("report: " + ", ".join(paths[k] for k in ("report.html", "report.json", "findings.md",
+                                                           "repair_plan.json") if k in paths))
     for msg in failed:
         lines.append(f"FAILED {msg}")
     return "\n".join(lines)
@@ -219,7 +233,7 @@ def demo_cmd(out_dir, rows, seed, quiet):
               covariates=DEMO_ROLES["covariates"], groups=(), identifiers=DEMO_ROLES["identifiers"], excluded=(),
               config=None, sep=None, encoding="utf-8", out_dir=os.path.join(out_dir, "report"), quiet=quiet,
               seed=None, folds=None, max_rows=None, map_rows=None, min_site_rows=None, min_cell=None,
-              include_datetime=None)
+              include_datetime=None, as_given=None, censor_policy=None)
 
 
 @main.command("schema", epilog="Example:\n\n  sitecheck schema > report.schema.json")
@@ -233,8 +247,11 @@ def schema_cmd():
 
 
 from .commands_harmonise import harmonise_cmd  # noqa: E402  (issue 6: the harmonise command)
+from .commands_repair import repair_cmd, repair_schema_cmd  # noqa: E402  (issue 17: the repair loop)
 
 main.add_command(harmonise_cmd)
+main.add_command(repair_cmd)
+main.add_command(repair_schema_cmd)
 
 
 if __name__ == "__main__":  # pragma: no cover

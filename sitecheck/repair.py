@@ -837,3 +837,114 @@ def residual_signal(prep_repaired, probe, leakage, applied: Sequence[Dict[str, A
         difference_ci=None if diff_ci is None else (float(diff_ci[0]), float(diff_ci[1])),
         explained_share=share, n_used=int(res.n_used), n_boot=int(n_boot), applied=tuple(applied), top=tuple(rows),
         verdict_repaired=res.verdict, statement=statement)
+
+
+# ---------------------------------------------------------------------------
+# applying a plan to a file
+# ---------------------------------------------------------------------------
+
+def _site_labels(values: pd.Series) -> np.ndarray:
+    """Site labels as the scan names them (text as written; whole numbers without '.0')."""
+    if pd.api.types.is_numeric_dtype(values):
+        v = values.to_numpy(dtype=float)
+        out = np.where(np.isnan(v), None, values.astype(object))
+        whole = ~np.isnan(v) & (np.mod(np.where(np.isnan(v), 0, v), 1) == 0)
+        out[whole] = v[whole].astype(np.int64).astype(str)
+        return out.astype(object)
+    return values.astype(object).to_numpy()
+
+
+def _as_text(values: np.ndarray, missing: str):
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    if values.dtype.kind == "f":
+        text = pc.cast(pa.array(values, from_pandas=True), pa.string())
+        return np.asarray(pc.fill_null(text, missing).to_numpy(zero_copy_only=False), dtype=object)
+    out = values.astype(object).copy()
+    out[pd.isna(out)] = missing
+    return out
+
+
+def repair_file(data: str, plan_path: str, out: str, *, sep: Optional[str] = None,
+                encoding: str = "utf-8") -> Dict[str, Any]:
+    """Apply a repair plan's enabled entries to a table file and write the repaired
+    table in the input's format; the input is never modified.
+
+    Cells no entry touches are written as they were read; touched cells are written
+    as plain numbers (a point as decimal separator) or as the mapped text; missing
+    values as the column's most used missing-value code. A ``drop_column`` entry
+    leaves its column out. A log (``OUT.repair_log.json``) lists per site and
+    column the cells each operation changed.
+
+    Raises
+    ------
+    InputError
+        One line when the plan does not fit the table (an unknown plan version, a
+        column or site the table lacks), when ``out`` is the input or has another
+        format, or when the input cannot be read.
+    """
+    import json
+    import os
+
+    from .intake import _read_parquet, _read_text_columns, detect_format, read_table
+
+    if os.path.exists(out) and os.path.exists(data) and os.path.samefile(out, data):
+        raise InputError("--out must not be the input file; the input is never overwritten")
+    plan = read_plan(plan_path)
+    fmt_in, fmt_out = detect_format(data), detect_format(out)
+    if fmt_in != fmt_out:
+        raise InputError(f"--out {out}: write the repaired table in the input's format ({fmt_in})")
+    raw = read_table(data, sep=sep, encoding=encoding, site=plan.site_column)
+    if plan.site_column not in raw.frame.columns:
+        raise InputError(f"repair plan: site column {plan.site_column!r} is not in {data}")
+    labels = _site_labels(raw.frame[plan.site_column])
+    sites = sorted({str(v) for v in labels if v is not None})
+    check_plan_fits(plan, list(raw.frame.columns), plan.site_column, sites)
+    frame, log, changed = repair_values(raw.frame, plan, site=labels, cells=raw.cells, safe_only=False)
+    missing_code = {}
+    for info in raw.columns:
+        codes = {k: v for k, v in info.missing_codes.items() if k != "(null)"}
+        missing_code[info.name] = max(sorted(codes), key=codes.get) if codes else ""
+    tmp = out + ".tmp"
+    if fmt_in == "parquet":
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+
+        table = pq.read_table(data)
+        for name, mask in changed.items():
+            if mask is None:
+                table = table.drop([name])
+                continue
+            i = table.column_names.index(name)
+            new = frame[name].to_numpy()
+            arr = (pa.array(new.astype(float), from_pandas=True) if new.dtype.kind == "f"
+                   else pa.array(pd.Series(new, dtype=object).where(pd.notna(new), None).to_numpy(dtype=object),
+                                 type=pa.string(), from_pandas=True))
+            table = table.set_column(i, name, arr)
+        pq.write_table(table, tmp)
+    else:
+        text_cols, names = _read_text_columns(data, fmt_in, sep, encoding)
+        cols = {}
+        for name in names:
+            mask = changed.get(name, False)
+            if mask is None:
+                continue
+            orig = np.asarray(text_cols.pop(name).to_numpy(zero_copy_only=False), dtype=object)
+            if mask is not False and mask.any():
+                orig = orig.copy()
+                orig[mask] = _as_text(frame[name].to_numpy()[mask], missing_code.get(name, ""))
+            cols[name] = orig
+        delim = sep if sep is not None else ("\t" if fmt_in.startswith("tsv") else ",")
+        pd.DataFrame(cols, columns=list(cols)).to_csv(tmp, sep=delim, index=False, encoding=encoding,
+                                                      compression="gzip" if fmt_in.endswith(".gz") else None)
+    os.replace(tmp, out)
+    log_doc = {"input": {"path": data, "sha256": raw.sha256}, "output": out, "plan": plan_path,
+               "plan_version": plan.version, "note": NOTE, **log.to_dict()}
+    log_path = out + ".repair_log.json"
+    with open(log_path + ".tmp", "w", encoding="utf-8") as fh:
+        json.dump(log_doc, fh, indent=2)
+        fh.write("\n")
+    os.replace(log_path + ".tmp", log_path)
+    return {"out": out, "log": log_path, "cells_by_site": log.cells_by_site, "cells_total": log.total,
+            "applied": list(log.applied), "skipped": list(log.skipped), "dropped_columns": list(log.dropped_columns)}
