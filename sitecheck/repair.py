@@ -161,9 +161,10 @@ def evident_mapping(level: str, common: Sequence[str]) -> Optional[str]:
     """The common level an exclusive ``level`` evidently stands for, or None.
 
     Evident means: equal after dropping case, spaces and punctuation
-    (``Walk in`` -> ``walk-in``), or a spelled-out word whose one-letter
-    abbreviation is exactly one common level (``Male`` -> ``M``), or the reverse
-    (``f`` -> ``Female``). Anything else is left to a person.
+    (``Walk in`` -> ``walk-in``), or a word of the short list of conventional
+    one-letter codes (male/female, yes/no, true/false; common practice) whose
+    letter is exactly one common level (``Male`` -> ``M``), or the reverse
+    (``f`` -> ``Female``). Anything else (``Mixed`` against ``M``) is left to a person.
 
     >>> evident_mapping("Male", ["M", "F"]), evident_mapping("walk in", ["walk-in", "ambulance"])
     ('M', 'walk-in')
@@ -176,13 +177,13 @@ def evident_mapping(level: str, common: Sequence[str]) -> Optional[str]:
     same = [c for c in common if _norm_level(c) == n]
     if len(same) == 1:
         return same[0]
-    short = _SYNONYMS.get(n, n[0] if len(n) > 1 and n.isalpha() else None)
+    short = _SYNONYMS.get(n)
     if short is not None:
         hits = [c for c in common if _norm_level(c) == short]
         if len(hits) == 1:
             return hits[0]
     if len(n) == 1:
-        hits = [c for c in common if len(_norm_level(c)) > 1 and _SYNONYMS.get(_norm_level(c), _norm_level(c)[0]) == n]
+        hits = [c for c in common if _SYNONYMS.get(_norm_level(c)) == n]
         if len(hits) == 1:
             return hits[0]
     return None
@@ -323,8 +324,13 @@ def plan_repairs(table, fingerprints, *, censor_policy: Optional[str] = None) ->
             x = frame[col].to_numpy(dtype=float)
             flags = table.censored(col)
             cells = int(np.sum(at & (flags == side))) if flags is not None else 0
-            measured = x[at & ~np.isnan(x) & ((flags == 0) if flags is not None else True) & (x > 0)]
-            gsd = float(np.exp(np.std(np.log(measured), ddof=1))) if len(measured) >= 3 else None
+            # geometric SD on a log-probit reading of the site's values (censored cells rank below the
+            # limit): Q(84.13%) / Q(50%) of a lognormal; only while less than half the cells are censored
+            vals_s = x[at & ~np.isnan(x)]
+            share_c = cells / max(len(vals_s), 1)
+            gsd = None
+            if side < 0 and len(vals_s) >= 20 and share_c < 0.5 and np.median(vals_s) > 0:
+                gsd = float(np.quantile(vals_s, 0.8413447) / np.median(vals_s))
             if censor_policy is not None:
                 policy = censor_policy
             elif side < 0:
@@ -825,7 +831,7 @@ def residual_signal(prep_repaired, probe, leakage, applied: Sequence[Dict[str, A
                              "score_given_ci": list(e.score_ci), "score_repaired": float(drops[:, g].mean()),
                              "score_repaired_ci": list(_t_interval(drops[:, g]))})
     lo, hi = res.auc_ci
-    statement = (f"measurement artefacts explain this much of the site signal: AUC {given.auc:.3f} -> {res.auc:.3f} "
+    statement = (f"measurement artefacts explain this much of the site signal: AUC {given.auc:.3f} \u2192 {res.auc:.3f} "
                  f"(95% CI {lo:.3f} to {hi:.3f})")
     if diff_ci is not None:
         statement += f"; difference {diff:.3f} (95% CI {diff_ci[0]:.3f} to {diff_ci[1]:.3f})"
@@ -918,9 +924,21 @@ def repair_file(data: str, plan_path: str, out: str, *, sep: Optional[str] = Non
                 continue
             i = table.column_names.index(name)
             new = frame[name].to_numpy()
-            arr = (pa.array(new.astype(float), from_pandas=True) if new.dtype.kind == "f"
-                   else pa.array(pd.Series(new, dtype=object).where(pd.notna(new), None).to_numpy(dtype=object),
-                                 type=pa.string(), from_pandas=True))
+            old = table.column(i)
+            if pa.types.is_string(old.type) or pa.types.is_large_string(old.type):
+                # a text column stays text: touched cells as plain numbers or mapped text, missing as null
+                text = np.asarray(old.to_numpy(zero_copy_only=False), dtype=object).copy()
+                vals = _as_text(new[mask], "")
+                vals[pd.isna(new[mask])] = None
+                text[mask] = vals
+                arr = pa.array(text, type=pa.string(), from_pandas=True)
+            elif new.dtype.kind == "f":
+                arr = pa.array(new.astype(float), from_pandas=True)
+                if not pa.types.is_floating(old.type):
+                    arr = arr.cast(pa.float64())
+            else:
+                arr = pa.array(pd.Series(new, dtype=object).where(pd.notna(new), None).to_numpy(dtype=object),
+                               type=pa.string(), from_pandas=True)
             table = table.set_column(i, name, arr)
         pq.write_table(table, tmp)
     else:

@@ -65,7 +65,8 @@ def suppress_count(n: Any, min_cell: int) -> Any:
 
 
 #: Keys whose integer values are counts of patients or rows.
-COUNT_KEYS = frozenset({"n", "count", "rows", "n_missing", "unparsed_count", "n_rows", "n_pos", "n_neg",
+COUNT_KEYS = frozenset({"n", "count", "rows", "n_missing", "unparsed_count", "n_rows", "n_pos", "n_neg", "cells",
+                        "cells_total", "count_elsewhere",
                         "positives", "negatives", "tp", "fp", "tn", "fn", "k", "cases", "n_events"})
 
 

@@ -24,6 +24,10 @@ _KIND_WORDS = {
     "exclusive_level": "site-only category",
     "shift": "location gap",
     "scale": "spread gap",
+    "censored_below": "written below a limit",
+    "censored_above": "written above a limit",
+    "number_format": "number format",
+    "unit_label": "unit column",
 }
 
 _HEAD = ["feature", "site", "fingerprint", "severity", "what we found", "what it usually means",
