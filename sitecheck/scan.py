@@ -261,7 +261,8 @@ def scan_table(table: Table, options: ScanOptions = ScanOptions(), *,
         values = "after repair" if (options.repair and repaired is not None) else "as given"
         for key in ("embedding", "harmonisation", "outcome"):
             if key in sections:
-                sections[key] = Labelled(sections[key], values)
+                # harmonisation is keyed by method: the label goes into each method's entry
+                sections[key] = Labelled(sections[key], values, per_entry=key == "harmonisation")
         sections["repair"] = plan_doc["summary"]
         objects["repair_plan"] = plan_doc["plan"]
         objects["repair_log"] = plan_doc["log"]
@@ -301,9 +302,10 @@ class Labelled:
     """A section result with the values it was computed on (``"after repair"`` or
     ``"as given"``) added to its ``report.json`` dict; attributes pass through."""
 
-    def __init__(self, inner: Any, values: str):
+    def __init__(self, inner: Any, values: str, per_entry: bool = False):
         self.__dict__["inner"] = inner
         self.__dict__["values"] = values
+        self.__dict__["per_entry"] = per_entry
 
     def __getattr__(self, name: str) -> Any:
         return getattr(self.__dict__["inner"], name)
@@ -312,6 +314,8 @@ class Labelled:
         from .result import to_jsonable
 
         d = to_jsonable(self.__dict__["inner"])
+        if isinstance(d, dict) and self.__dict__["per_entry"]:
+            return {k: ({"values": self.__dict__["values"], **v} if isinstance(v, dict) else v) for k, v in d.items()}
         if isinstance(d, dict):
             d = {"values": self.__dict__["values"], **d}
         return d
