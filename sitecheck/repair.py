@@ -51,7 +51,7 @@ from typing import Any, Dict, List, Optional, Sequence, Tuple
 import numpy as np
 import pandas as pd
 
-from .errors import InputError
+from sitecheck.errors import InputError
 
 #: Version of the plan document. Minor versions add keys; a major version renames
 #: or removes one. :func:`read_plan` refuses a major version it does not know.
@@ -110,7 +110,7 @@ class RepairEntry:
     reason: str
 
     def to_dict(self) -> dict:
-        from .result import to_jsonable
+        from sitecheck.report.result import to_jsonable
 
         return to_jsonable({"id": self.id, "finding": {"kind": self.kind, "feature": self.column, "site": self.site},
                             "column": self.column, "site": self.site, "operation": self.operation,
@@ -136,8 +136,8 @@ class RepairPlan:
         return [e for e in self.entries if e.safe]
 
     def to_dict(self) -> dict:
-        from . import __version__
-        from .result import to_jsonable
+        from sitecheck import __version__
+        from sitecheck.report.result import to_jsonable
 
         return to_jsonable({"plan_version": self.version, "generated_by": f"sitecheck {__version__}",
                             "note": NOTE, "input": self.input, "site_column": self.site_column,
@@ -190,7 +190,7 @@ def evident_mapping(level: str, common: Sequence[str]) -> Optional[str]:
 
 
 def _grid_step(values: np.ndarray) -> Optional[float]:
-    from .fingerprints import grid_step
+    from sitecheck.analyses.fingerprints import grid_step
 
     v = values[~np.isnan(values)]
     return grid_step(v) if len(v) >= 2 else None
@@ -239,7 +239,7 @@ def plan_repairs(table, fingerprints, *, censor_policy: Optional[str] = None) ->
     >>> sorted({(e.column, e.operation) for e in plan.entries})[:2]
     [('albumin', 'drop_column'), ('glucose', 'convert_unit')]
     """
-    from .units import CONVERSIONS, TEMPERATURE
+    from sitecheck.table.units import CONVERSIONS, TEMPERATURE
 
     if censor_policy is not None and censor_policy not in CENSOR_POLICIES:
         raise InputError(f"censor policy {censor_policy!r} is not known; choose from {', '.join(CENSOR_POLICIES)}")
@@ -299,7 +299,7 @@ def plan_repairs(table, fingerprints, *, censor_policy: Optional[str] = None) ->
                     skipped.append({"kind": f.kind, "feature": col, "site": f.site,
                                     "reason": "the unit column is linked to no numeric column"})
                 continue
-            from .units import unit_factor
+            from sitecheck.table.units import unit_factor
 
             fac = unit_factor(u, u_ref, linked)
             if fac is None:
@@ -349,7 +349,7 @@ def plan_repairs(table, fingerprints, *, censor_policy: Optional[str] = None) ->
             notes = table.cells.get(col)
             cells = 0
             if notes is not None:
-                from .intake import IDIOM_BITS
+                from sitecheck.reading.intake import IDIOM_BITS
 
                 bits = sum(IDIOM_BITS[k] for k in formats) | IDIOM_BITS["whitespace"]
                 cells = int(np.sum(at & ((notes.idiom & bits) != 0) & (notes.censor == 0)))
@@ -403,7 +403,7 @@ def _codes_at(fingerprints, col: str, site: Optional[str]) -> List[float]:
 
 
 def _unit_text(table, col: str) -> pd.Series:
-    from .fingerprints import _text_values
+    from sitecheck.analyses.fingerprints import _text_values
 
     return pd.Series(_text_values(table, col), dtype=object)
 
@@ -419,7 +419,7 @@ def _label_params(table, unit_col: str, site: Optional[str], at: np.ndarray) -> 
 
 
 def _label_rows(table, unit_col: str, at: np.ndarray, unit: str) -> np.ndarray:
-    from .units import canonical_unit
+    from sitecheck.table.units import canonical_unit
 
     text = _unit_text(table, unit_col)
     canon = {lv: canonical_unit(lv) for lv in text.dropna().unique()}
@@ -486,7 +486,7 @@ def repair_values(frame: pd.DataFrame, plan: RepairPlan, *, site: np.ndarray, ce
     ``changed`` maps column -> boolean mask of the cells whose value or written
     form changes (for writing a file), ``None`` for a dropped column.
     """
-    from .intake import IDIOM_BITS
+    from sitecheck.reading.intake import IDIOM_BITS
 
     out = frame.copy()
     changed: Dict[str, Optional[np.ndarray]] = {}
@@ -598,7 +598,7 @@ def apply_repairs(table, plan: RepairPlan, *, safe_only: bool = True):
     their ``enabled`` flag; otherwise the enabled ones. The table is not changed.
     A dropped column becomes an excluded column (reason: the plan entry).
     """
-    from .roles import Column
+    from sitecheck.table.roles import Column
 
     check_plan_fits(plan, list(table.frame.columns), table.site, table.site_labels)
     frame, log, changed = repair_values(table.frame, plan, site=table.site_values(), cells=table.cells,
@@ -629,7 +629,7 @@ def plan_from_dict(doc: Any) -> RepairPlan:
     major = PLAN_VERSION.rsplit("/", 1)[-1].split(".")[0]
     if not ver.startswith("sitecheck.repair/") or ver.rsplit("/", 1)[-1].split(".")[0] != major:
         raise InputError(f"repair plan: version {ver!r} is not known; this sitecheck reads {PLAN_VERSION}")
-    from .schema import validate
+    from sitecheck.report.schema import validate
 
     errs = validate(doc, plan_schema())
     if errs:
@@ -665,7 +665,7 @@ def read_plan(path: str) -> RepairPlan:
 
 def plan_schema() -> Dict[str, Any]:
     """The JSON Schema (draft 2020-12) of the repair plan document."""
-    from .fingerprints import KINDS
+    from sitecheck.analyses.fingerprints import KINDS
 
     def obj(props, required=()):
         return {"type": "object", "properties": props, "required": list(required), "additionalProperties": True}
@@ -739,7 +739,7 @@ class ResidualSignal:
     statement: str
 
     def to_dict(self) -> dict:
-        from .result import to_jsonable
+        from sitecheck.report.result import to_jsonable
 
         return to_jsonable({
             "auc_given": self.auc_given, "auc_given_ci": list(self.auc_given_ci),
@@ -784,10 +784,11 @@ def residual_signal(prep_repaired, probe, leakage, applied: Sequence[Dict[str, A
     -------
     ResidualSignal
     """
-    from . import stats
-    from .leakage import grouped_permutation_importance
-    from .prepare import stratified_subsample
-    from .probe import site_probe, verdict
+    from sitecheck._runtime import derived_seed, stream
+    from sitecheck.analyses import stats
+    from sitecheck.analyses.leakage import grouped_permutation_importance
+    from sitecheck.table.prepare import stratified_subsample
+    from sitecheck.analyses.probe import site_probe, verdict
 
     seed = int(prep_repaired.seed if random_state is None else random_state)
     given = probe.score
@@ -801,7 +802,7 @@ def residual_signal(prep_repaired, probe, leakage, applied: Sequence[Dict[str, A
     diff, diff_ci = None, None
     if paired:
         a, b = stats.bootstrap_class_aucs(y, [probe.crossfit.proba, res.crossfit.proba], n_boot=n_boot,
-                                          random_state=np.random.default_rng([seed, 1717]))
+                                          random_state=stream(seed, "residual.bootstrap"))
         d = stats.macro_from_class_aucs(a) - stats.macro_from_class_aucs(b)
         diff = float(given.auc - res.auc)
         diff_ci = stats.percentile_ci(d)
@@ -815,16 +816,16 @@ def residual_signal(prep_repaired, probe, leakage, applied: Sequence[Dict[str, A
         groups = [[names.index(e.feature)] for e in entries]
         if groups:
             X = prep_repaired.features.X
-            rng = np.random.default_rng([seed, 4242])
+            rng = stream(seed, "leakage.permutations")   # the leak ranking's held-out rows and repeats
             drops = np.zeros((len(res.crossfit.models), len(groups)))
             for f, ((tr, te), model) in enumerate(zip(res.crossfit.folds, res.crossfit.models)):
                 te = np.asarray(te)
                 if len(te) > max_rows_per_fold:
                     te = te[stratified_subsample(y[te], max_rows_per_fold, rng)]
                 _, dr = grouped_permutation_importance(model, X[te], y[te], groups, n_repeats=leakage.n_repeats,
-                                                       random_state=seed + f)
+                                                       random_state=derived_seed(seed, "leakage.fold_repeats", f))
                 drops[f] = dr.mean(axis=1)
-            from .leakage import _t_interval
+            from sitecheck.analyses.leakage import _t_interval
 
             for g, e in enumerate(entries):
                 rows.append({"feature": e.feature, "rank_given": e.rank, "score_given": e.score,
@@ -850,14 +851,13 @@ def residual_signal(prep_repaired, probe, leakage, applied: Sequence[Dict[str, A
 # ---------------------------------------------------------------------------
 
 def _site_labels(values: pd.Series) -> np.ndarray:
-    """Site labels as the scan names them (text as written; whole numbers without '.0')."""
-    if pd.api.types.is_numeric_dtype(values):
-        v = values.to_numpy(dtype=float)
-        out = np.where(np.isnan(v), None, values.astype(object))
-        whole = ~np.isnan(v) & (np.mod(np.where(np.isnan(v), 0, v), 1) == 0)
-        out[whole] = v[whole].astype(np.int64).astype(str)
-        return out.astype(object)
-    return values.astype(object).to_numpy()
+    """Site labels as the scan names them (:func:`sitecheck.table.roles.value_label`), one call per
+    distinct value."""
+    from sitecheck.table.roles import value_label
+
+    codes, uniq = pd.factorize(values, use_na_sentinel=True)
+    labels = np.array([value_label(u) for u in uniq] + [None], dtype=object)
+    return labels[codes]
 
 
 def _as_text(values: np.ndarray, missing: str):
@@ -893,7 +893,7 @@ def repair_file(data: str, plan_path: str, out: str, *, sep: Optional[str] = Non
     import json
     import os
 
-    from .intake import _read_parquet, _read_text_columns, detect_format, read_table
+    from sitecheck.reading.intake import _read_parquet, _read_text_columns, detect_format, read_table
 
     if os.path.exists(out) and os.path.exists(data) and os.path.samefile(out, data):
         raise InputError("--out must not be the input file; the input is never overwritten")

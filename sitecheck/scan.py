@@ -14,13 +14,14 @@ from typing import Any, Callable, Dict, Optional, Sequence
 import numpy as np
 import pandas as pd
 
-from . import __version__
-from .config import load_config
-from .errors import InputError
-from .intake import RawTable, frame_to_raw, read_table
-from .prepare import Prepared, prepare
-from .result import ScanResult
-from .roles import RoleSpec, Table, assign_roles
+from sitecheck import __version__
+from sitecheck._runtime import SINGLE_THREAD_BELOW, thread_limit
+from sitecheck.reading.config import RunConfig, resolve_config
+from sitecheck.errors import InputError
+from sitecheck.reading.intake import RawTable, frame_to_raw, read_table
+from sitecheck.table.prepare import Prepared, prepare
+from sitecheck.report.result import ScanResult
+from sitecheck.table.roles import RoleSpec, Table, assign_roles
 
 Progress = Callable[[str], None]
 
@@ -102,16 +103,14 @@ def _run_specs(preps, options: ScanOptions, names, objects: Dict[str, Any],
     """Run the named analyses in turn with native thread pools limited to ``threads``
     (None: no limit); fill ``objects``. ``preps`` is one Prepared or {"given", "repaired",
     "residual"}: each analysis reads the one its ``on`` names."""
-    from threadpoolctl import threadpool_limits
-
-    from . import analyses
+    from sitecheck.analyses import registry as analyses
 
     for spec in analyses.REGISTRY:
         if spec.name not in names:
             continue
         say(f"{spec.name}...")
         t0 = time.perf_counter()
-        with threadpool_limits(limits=threads):
+        with thread_limit(threads):
             objects[spec.name] = spec.run(_prep_for(preps, spec), options, objects)
         timings[spec.name] = round(time.perf_counter() - t0, 3)
     return objects
@@ -125,7 +124,7 @@ def _side_lane(prep: Prepared, options: ScanOptions, names) -> tuple:
 
 
 #: Above this many rows the scan runs in one process (a second one would copy the table).
-PARALLEL_MAX_ROWS = 200_000
+PARALLEL_MAX_ROWS = SINGLE_THREAD_BELOW
 
 
 def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Progress] = None,
@@ -150,7 +149,7 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
     """
     import multiprocessing as mp
 
-    from . import analyses
+    from sitecheck.analyses import registry as analyses
 
     if getattr(mp.current_process(), "_inheriting", False):
         # This is the spawned second process re-running a script that scans at import time:
@@ -311,7 +310,7 @@ class Labelled:
         return getattr(self.__dict__["inner"], name)
 
     def to_dict(self) -> Dict[str, Any]:
-        from .result import to_jsonable
+        from sitecheck.report.result import to_jsonable
 
         d = to_jsonable(self.__dict__["inner"])
         if isinstance(d, dict) and self.__dict__["per_entry"]:
@@ -328,8 +327,8 @@ def _repair_stage(table: Table, prep: Prepared, options: ScanOptions, say: Progr
     """
     if not options.wants("fingerprints"):
         return {}, None, None
-    from .fingerprints import find_fingerprints
-    from .repair import apply_repairs, plan_repairs
+    from sitecheck.analyses.fingerprints import find_fingerprints
+    from sitecheck.repair import apply_repairs, plan_repairs
 
     say("fingerprints...")
     t0 = time.perf_counter()
@@ -364,28 +363,48 @@ def _repair_stage(table: Table, prep: Prepared, options: ScanOptions, say: Progr
 
 def build_table(raw: RawTable, roles: RoleSpec, *, config_path: Optional[str] = None,
                 min_site_rows: Optional[int] = None, include_datetime: Optional[bool] = None):
-    """Merge roles over a config file and validate; return (Table, file options)."""
-    cfg = load_config(config_path)
-    merged = roles.merged_over(cfg.roles)
-    msr = min_site_rows if min_site_rows is not None else int(cfg.options.get("min_site_rows", 20))
-    inc = include_datetime if include_datetime is not None else bool(cfg.options.get("include_datetime", False))
-    table = assign_roles(raw, merged, min_site_rows=msr, include_datetime=inc)
-    return table, cfg.options
+    """Merge roles over a config file and validate; return (Table, the file's options)."""
+    run = resolve_config(config_path, roles=roles,
+                         options={"min_site_rows": min_site_rows, "include_datetime": include_datetime})
+    return _table_for(raw, run), run.file_options
+
+
+def _table_for(raw: RawTable, run: RunConfig) -> Table:
+    return assign_roles(raw, run.roles, min_site_rows=run.options.min_site_rows,
+                        include_datetime=run.options.include_datetime)
+
+
+def scan_configured(path: str, run: RunConfig, *, progress: Optional[Progress] = None) -> ScanResult:
+    """Read ``path`` and scan it as ``run`` (from :func:`sitecheck.reading.config.resolve_config`) says.
+
+    The one path of a file scan, shared by :func:`scan_file` and the command line.
+    """
+    if not isinstance(run, RunConfig):
+        raise TypeError(f"run must be a RunConfig (see sitecheck.reading.config.resolve_config), got {type(run).__name__}")
+    say = progress or (lambda msg: None)
+    say(f"reading {path}")
+    raw = read_table(path, sep=run.sep, encoding=run.encoding, site=run.roles.site)
+    table = _table_for(raw, run)
+    say(f"{len(table.frame)} rows, {len(table.site_labels)} sites, {len(table.features)} features")
+    return scan_table(table, run.options, progress=progress, config=run.record())
 
 
 def scan_file(path: str, *, site: Optional[str] = None, outcome: Optional[str] = None,
               covariates: Optional[Sequence[str]] = None, groups: Optional[Sequence[str]] = None,
               identifiers: Optional[Sequence[str]] = None, excluded: Optional[Sequence[str]] = None,
-              config: Optional[str] = None, sep: Optional[str] = None, encoding: str = "utf-8",
+              config: Optional[str] = None, sep: Optional[str] = None, encoding: Optional[str] = None,
               options: Optional[ScanOptions] = None, progress: Optional[Progress] = None) -> ScanResult:
-    """Read a file and scan it. Role arguments override the config file's."""
-    roles = _spec(site, outcome, covariates, groups, identifiers, excluded)
-    site_col = site if site is not None else load_config(config).roles.site
-    raw = read_table(path, sep=sep, encoding=encoding, site=site_col)
-    opts = options or ScanOptions()
-    table, _ = build_table(raw, roles, config_path=config, min_site_rows=opts.min_site_rows,
-                           include_datetime=opts.include_datetime)
-    return scan_table(table, opts, progress=progress)
+    """Read a file and scan it.
+
+    Role arguments override the config file's roles; ``options`` fields set to
+    other than their default (or the keys of a mapping) override the file's
+    ``[options]``; ``sep`` and ``encoding`` override the file's. The command
+    line goes through the same loader (:func:`sitecheck.reading.config.resolve_config`),
+    so a config file gives the same report from either.
+    """
+    run = resolve_config(config, roles=_spec(site, outcome, covariates, groups, identifiers, excluded),
+                         options=options, sep=sep, encoding=encoding)
+    return scan_configured(path, run, progress=progress)
 
 
 def scan_frame(frame: pd.DataFrame, *, site: str, outcome: Optional[str] = None,

@@ -58,7 +58,7 @@ def test_version_and_help_show_example():
 def test_demo_report_has_the_repair_loop(demo_run):
     # issue 17: every scan writes the repair plan; the report shows the residual probe and the plan
     from sitecheck.repair import plan_schema
-    from sitecheck.schema import report_schema, validate
+    from sitecheck.report.schema import report_schema, validate
 
     out, res = demo_run
     rep = out / "report"

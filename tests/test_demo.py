@@ -2,12 +2,12 @@ import numpy as np
 import pandas as pd
 
 from sitecheck.demo import GLUCOSE_MGDL_PER_MMOLL, SITES, generate_demo
-from sitecheck.intake import read_table
+from sitecheck.reading.intake import read_table
 
 
 def test_fixture_is_the_generators_output(demo_small_path, demo_truth):
     # fixtures/demo_small.csv is write_demo(dir, n_rows=1200, seed=7)'s demo.csv
-    from sitecheck.intake import frame_to_raw
+    from sitecheck.reading.intake import frame_to_raw
 
     fixture = read_table(demo_small_path, site="hospital").frame
     fresh = generate_demo(1200, seed=7)

@@ -5,7 +5,7 @@ import pandas as pd
 import pytest
 
 from sitecheck.errors import InputError
-from sitecheck.intake import read_table
+from sitecheck.reading.intake import read_table
 
 from .conftest import write
 
@@ -61,7 +61,7 @@ def test_decimal_comma_read_per_site_and_reported(tmp_path):
     assert raw.column("potassium").storage == "numeric" and x.notna().all()
     assert x[50:100].tolist() == [4 + (i % 9) / 10 for i in range(50)]
     assert raw.column("potassium").idioms == {"decimal_comma": 50}     # "4,0" ... "4,8": every cell at B
-    from sitecheck.roles import RoleSpec, assign_roles
+    from sitecheck.table.roles import RoleSpec, assign_roles
 
     t = assign_roles(raw, RoleSpec(site="site"))
     assert t.column("potassium").idioms == {"B": {"decimal_comma": 50}}
@@ -71,7 +71,7 @@ def test_decimal_comma_read_per_site_and_reported(tmp_path):
 def test_ambiguous_comma_is_decided_by_the_site_or_left_unparsed():
     import pyarrow as pa
 
-    from sitecheck.intake import parse_idioms
+    from sitecheck.reading.intake import parse_idioms
 
     # site 0 writes 4,2 (a comma cannot group one digit): its 1,250 reads 1.25
     # site 1 writes points: its 1,250 is a thousands group; site 2 gives no evidence: unparsed
@@ -92,7 +92,7 @@ def test_unit_suffix_kept_per_site_and_codes_stay_text(tmp_path):
     rows = ([f"A,{60 + i % 50} umol/L" for i in range(40)] + [f"B,{0.7 + (i % 9) / 10:.1f}mg/dL" for i in range(40)])
     raw = read_table(write(tmp_path, "t.csv", "site,creat\n" + "\n".join(rows) + "\n"), site="site")
     assert raw.frame["creat"].iloc[0] == 60.0 and raw.frame["creat"].iloc[40] == 0.7
-    from sitecheck.roles import RoleSpec, assign_roles
+    from sitecheck.table.roles import RoleSpec, assign_roles
 
     t = assign_roles(raw, RoleSpec(site="site"))
     assert t.column("creat").units == {"A": {"umol/L": 40}, "B": {"mg/dL": 40}}
@@ -121,7 +121,7 @@ def test_parquet_and_frames_read_the_same_idioms(tmp_path):
     p = tmp_path / "t.parquet"
     df.to_parquet(p)
     a = read_table(str(p), site="site")
-    from sitecheck.intake import frame_to_raw
+    from sitecheck.reading.intake import frame_to_raw
 
     b = frame_to_raw(df, site="site")
     for raw in (a, b):
@@ -159,8 +159,9 @@ def test_non_utf8_names_offset_and_suggests_encoding(tmp_path):
     data = "site,name\nA,ok\nB,caf".encode() + b"\xe9\n"
     path = write(tmp_path, "t.csv", data, mode="wb")
     # "site,name\n" (10 bytes) + "A,ok\n" (5) + "B,caf" (5): the bad byte is at offset 20
-    with pytest.raises(InputError, match=r"offset 20 .*--encoding"):
+    with pytest.raises(InputError, match=r"offset 20 .*give the file's encoding") as info:
         read_table(path)
+    assert info.value.option == "encoding"  # the command line names its --encoding flag
     raw = read_table(path, encoding="latin-1")
     assert raw.frame["name"].tolist() == ["ok", "café"]
 

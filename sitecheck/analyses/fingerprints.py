@@ -14,7 +14,7 @@ cleaned by earlier ones and skip what is already explained:
 3. ``missing_code`` -- sentinel values (-1, -9, -99, -999, 99, 999, 9999, ...)
    far outside the feature's range at one site; removed before step 4.
 4. ``unit_ratio`` -- the site's quantiles are a published conversion factor
-   times the others' (:mod:`sitecheck.units`), or Fahrenheit against Celsius.
+   times the others' (:mod:`sitecheck.table.units`), or Fahrenheit against Celsius.
    Sites with a unit finding leave the reference of later detectors.
 5. ``censored_below`` / ``censored_above`` -- the site writes cells as ``<5`` or
    ``>20`` (read by intake as the limit with a flag) while the other sites censor
@@ -48,14 +48,11 @@ import numpy as np
 import pandas as pd
 from scipy import stats as _st
 
-from .result import to_jsonable as _jsonable
-from .errors import InputError, ParameterError
-from .units import TEMPERATURE, candidate_factors, conversions_for, is_temperature
+from sitecheck.report.result import to_jsonable as _jsonable
+from sitecheck.errors import InputError, ParameterError
+from sitecheck.table.units import TEMPERATURE, candidate_factors, conversions_for, is_temperature
 
-#: Every fingerprint kind, in report order: the one list that ``--fail-on``, the report
-#: schema and the repair plan use. Names are a contract; new kinds are appended.
-KINDS = ("unit_ratio", "precision", "heaping", "floor", "ceiling", "missing_code", "site_missing",
-         "exclusive_level", "shift", "scale", "censored_below", "censored_above", "number_format", "unit_label")
+from sitecheck.report.gates import FINGERPRINT_KINDS as KINDS  # noqa: E402  (the one list of kinds)
 
 #: Candidate recording steps, coarsest last.
 GRID_STEPS = (0.001, 0.002, 0.005, 0.01, 0.02, 0.025, 0.05, 0.1, 0.2, 0.25, 0.5, 1.0, 2.0, 5.0, 10.0,
@@ -381,7 +378,7 @@ def detect_unit_ratio(vals: Sequence[np.ndarray], name: Optional[str] = None, *,
     median is within a factor 1.5 of the median of the other sites' medians.
     The ratio of the site's quantiles (10, 25, 50, 75, 90%) to the reference's
     must be near-constant (a unit change scales every quantile) and its median
-    ratio must match a factor ``f`` or ``1/f`` of :mod:`sitecheck.units`: within
+    ratio must match a factor ``f`` or ``1/f`` of :mod:`sitecheck.table.units`: within
     10% (quantile spread within 30%) for the analyte named by the column, within
     5% (spread 15%) for the table's other factors on any positive feature.
     Temperature is affine: the site's median between 86 and 113 against a
@@ -1018,7 +1015,7 @@ def link_unit_columns(table, *, min_count: int = 10) -> Dict[str, Dict[str, Any]
         "factor_source", "from_unit", "to_unit"}`` (``column`` None when the levels
         are units but no numeric feature matched).
     """
-    from .units import canonical_unit, names_refer_to_same, unit_column_base, unit_factor
+    from sitecheck.table.units import canonical_unit, names_refer_to_same, unit_column_base, unit_factor
 
     out: Dict[str, Dict[str, Any]] = {}
     numeric = [f for f in table.features if table.kind(f) == "numeric"]
@@ -1176,8 +1173,8 @@ def _cross_reference_units(findings, unit_links, table):
 
 
 def _table_of(data):
-    from .prepare import Prepared
-    from .roles import Table
+    from sitecheck.table.prepare import Prepared
+    from sitecheck.table.roles import Table
 
     if isinstance(data, Prepared):
         return data.table
@@ -1270,7 +1267,7 @@ def find_fingerprints(data, *, covariates: Optional[Sequence[str]] = None, alpha
             c.j = j
             cands.append(c)
         if f in unit_links:
-            from .units import canonical_unit
+            from sitecheck.table.units import canonical_unit
 
             texts = pd.Series(_text_values(table, f), dtype=object)
             canon = {lv: canonical_unit(lv) for lv in pd.unique(texts.dropna())}
