@@ -90,7 +90,7 @@ def test_as_given_keeps_values_and_says_so(tmp_path, demo_small_path):
     r = CliRunner().invoke(main, ["scan", demo_small_path, "--site", "hospital", "--id", "attendance_id",
                                   "--exclude", "admitted_hdu", "--as-given", "--map-rows", "300", "--folds", "3", "--out", str(out),
                                   "-q", "--fail-on", "censored_below"], catch_exceptions=False)
-    assert r.exit_code == 1 and "gate --fail-on censored_below: 1 finding(s) (troponin at Aldermoor)" in r.output
+    assert r.exit_code == 1 and "FAILED gate --fail-on censored_below: 1 censored_below fingerprint(s): 'troponin' at site 'Aldermoor'" in r.output
     doc = json.loads((out / "report.json").read_text())
     assert doc["embedding"]["values"] == "as given" and doc["repair"]["values_for_maps_harmonisation_outcome"] == "as given"
     assert doc["residual"]["auc_repaired"] is not None      # the residual probe still reads the repaired values
