@@ -96,6 +96,15 @@ def _fingerprint_sections(result):
 
 
 
+def _run_reconcile(prep, options, objects):
+    from .reconcile import reconcile
+
+    leakage, fingerprints = objects.get("leakage"), objects.get("fingerprints")
+    if leakage is None or fingerprints is None:
+        return None
+    return reconcile(leakage, fingerprints)
+
+
 def _run_maps(prep, options, objects):
     from sitecheck.analyses.maps import compute_maps
 
@@ -162,6 +171,9 @@ REGISTRY: List[Analysis] = [
              sections=lambda result: {"harmonisation": result}, priority=1, on="repaired"),
     Analysis("outcome", _run_outcome, applies=lambda prep: prep.outcome is not None,
              sections=lambda result: {"outcome": result}, needs=("leakage",), on="repaired"),
+    # reads the leak ranking and the fingerprints only (no fit): why a fingerprinted feature ranks near 0
+    Analysis("reconcile", _run_reconcile, sections=lambda result: {"reconciliation": result},
+             needs=("leakage", "fingerprints")),
     # the probe and the top of the leak ranking again, on the values after the plan's safe repairs
     Analysis("residual", _run_residual, sections=lambda result: {"residual": result}, needs=("probe", "leakage"),
              on="residual"),
