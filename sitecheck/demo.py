@@ -51,6 +51,10 @@ def _effects() -> List[dict]:
          "detail": "missing values coded as -99"},
         {"feature": "albumin", "site": "Duskwater", "kind": "site_missing",
          "detail": "never measured at this site"},
+        {"feature": "troponin", "site": "Aldermoor", "kind": "censored_below",
+         "detail": "values below 5 ng/L written as '<5' in the export"},
+        {"feature": "potassium", "site": "Cindervale", "kind": "number_format",
+         "detail": "written with a decimal comma ('4,2')"},
     ]
 
 
@@ -72,7 +76,10 @@ def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> D
         ``frame`` has columns ``attendance_id`` (site-prefixed code),
         ``hospital``, ``arrival_date``, ``age``, ``sex``, ``arrival_mode``,
         vital signs, a blood panel and ``admitted_hdu``; ``truth`` lists the
-        injected effects (empty for the null variant).
+        injected effects (empty for the null variant). Two columns are written as
+        laboratory exports write them: ``troponin`` at Aldermoor as ``<5`` below the
+        detection limit, ``potassium`` at Cindervale with a decimal comma; they are
+        text (object) columns, read as numbers by :mod:`sitecheck.intake`.
     """
     if n_rows < 80:
         raise ValueError("n_rows must be at least 80")
@@ -150,6 +157,15 @@ def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> D
         lactate[b & np.isnan(lactate)] = -99.0
         albumin[d] = np.nan
 
+    # export idioms: written into the cells as text (no random draw, so the values above are unchanged)
+    trop_out = trop.astype(object)
+    potassium_out = potassium.astype(object)
+    if not null:
+        a, c = is_["Aldermoor"], is_["Cindervale"]
+        low = a & (trop < 5)
+        trop_out[low] = "<5"
+        potassium_out[c] = [f"{v:.1f}".replace(".", ",") for v in potassium[c]]
+
     order = rng.permutation(n)
     start = pd.Timestamp("2025-01-01")
     days = rng.integers(0, 365, n)
@@ -171,7 +187,7 @@ def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> D
         "wbc": wbc,
         "platelets": plt_.astype(int),
         "sodium": sodium.astype(int),
-        "potassium": potassium,
+        "potassium": potassium_out,
         "creatinine": creat.astype(int),
         "urea": urea,
         "glucose": glucose,
@@ -179,7 +195,7 @@ def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> D
         "albumin": albumin,
         "bilirubin": bili,
         "lactate": lactate,
-        "troponin": trop,
+        "troponin": trop_out,
         "admitted_hdu": outcome,
     }).iloc[order].reset_index(drop=True)
 

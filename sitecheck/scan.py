@@ -17,7 +17,7 @@ import pandas as pd
 from sitecheck import __version__
 from sitecheck._runtime import SINGLE_THREAD_BELOW, thread_limit
 from sitecheck.reading.config import RunConfig, resolve_config
-from .errors import InputError
+from sitecheck.errors import InputError
 from sitecheck.reading.intake import RawTable, frame_to_raw, read_table
 from sitecheck.table.prepare import Prepared, prepare
 from sitecheck.report.result import ScanResult
@@ -51,6 +51,14 @@ class ScanOptions:
     n_jobs : int, default 2
         2 runs the independent analyses in a second process (tables up to 200,000
         rows); 1 runs everything in turn in this process.
+    repair : bool, default True
+        The maps, the harmonisation check and the outcome analysis read the values
+        after the repair plan's safe entries (:mod:`sitecheck.repair`); False keeps
+        the values as given. The probe, the leak ranking and the fingerprints always
+        read the values as given; the residual probe always the repaired ones.
+    censor_policy : str, optional
+        Policy of the plan's censoring entries (:data:`sitecheck.repair.CENSOR_POLICIES`);
+        default after Hornung & Reed (1990).
     """
 
     seed: int = 0
@@ -64,6 +72,8 @@ class ScanOptions:
     threshold: Optional[float] = None
     analyses: Optional[tuple] = None
     n_jobs: int = 2
+    repair: bool = True
+    censor_policy: Optional[str] = None
 
     def wants(self, name: str) -> bool:
         return self.analyses is None or name in self.analyses
@@ -81,10 +91,18 @@ def _versions() -> Dict[str, str]:
     return out
 
 
-def _run_specs(prep: Prepared, options: ScanOptions, names, objects: Dict[str, Any],
+def _prep_for(preps, spec) -> Prepared:
+    """The prepared table an analysis reads (``Analysis.on``)."""
+    if isinstance(preps, dict):
+        return preps.get(spec.on, preps["given"])
+    return preps
+
+
+def _run_specs(preps, options: ScanOptions, names, objects: Dict[str, Any],
                say: Progress, timings: Dict[str, float], threads: Optional[int] = 1) -> Dict[str, Any]:
     """Run the named analyses in turn with native thread pools limited to ``threads``
-    (None: no limit); fill ``objects``."""
+    (None: no limit); fill ``objects``. ``preps`` is one Prepared or {"given", "repaired",
+    "residual"}: each analysis reads the one its ``on`` names."""
     from sitecheck.analyses import registry as analyses
 
     for spec in analyses.REGISTRY:
@@ -93,7 +111,7 @@ def _run_specs(prep: Prepared, options: ScanOptions, names, objects: Dict[str, A
         say(f"{spec.name}...")
         t0 = time.perf_counter()
         with thread_limit(threads):
-            objects[spec.name] = spec.run(prep, options, objects)
+            objects[spec.name] = spec.run(_prep_for(preps, spec), options, objects)
         timings[spec.name] = round(time.perf_counter() - t0, 3)
     return objects
 
@@ -110,7 +128,8 @@ PARALLEL_MAX_ROWS = SINGLE_THREAD_BELOW
 
 
 def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Progress] = None,
-                 timings: Optional[Dict[str, float]] = None) -> Dict[str, Any]:
+                 timings: Optional[Dict[str, float]] = None, repaired: Optional[Prepared] = None,
+                 done: Optional[Dict[str, Any]] = None) -> Dict[str, Any]:
     """Run the registered analyses on a prepared table; return {"sections", "objects"}.
 
     With ``options.n_jobs > 1`` (and at most :data:`PARALLEL_MAX_ROWS` rows) the
@@ -122,6 +141,11 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
     thread pools and its own seeded generators, so the results are the same whatever
     the schedule; parts are merged (``Analysis.part_of``) and sections assembled in
     registry order.
+
+    ``repaired`` is the table after the repair plan's safe entries: analyses with
+    ``on="repaired"`` read it when ``options.repair`` (else the values as given), those
+    with ``on="residual"`` always. ``done`` holds results computed before (the
+    fingerprints, from which the plan was built; the plan itself as ``"repair"``).
     """
     import multiprocessing as mp
 
@@ -134,11 +158,17 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
                            "put the script's scan under `if __name__ == \"__main__\":`")
     say = progress or (lambda msg: None)
     timings = timings if timings is not None else {}
-    todo = [a for a in analyses.REGISTRY if options.wants(a.part_of or a.name) and a.applies(prep)]
-    names = {a.name for a in todo}
+    done = dict(done or {})
+    preps = {"given": prep, "repaired": repaired if (repaired is not None and options.repair) else prep,
+             "residual": repaired if repaired is not None else prep}
+    todo = [a for a in analyses.REGISTRY if options.wants(a.part_of or a.name) and a.applies(_prep_for(preps, a))
+            and (a.on != "residual" or repaired is not None)]
+    names = {a.name for a in todo} - set(done)
     needed = {d for a in todo for d in a.needs}
-    side = [a.name for a in sorted(todo, key=lambda a: -a.priority) if not a.needs and a.name not in needed]
-    objects: Dict[str, Any] = {}
+    side = [a.name for a in sorted(todo, key=lambda a: -a.priority)
+            if not a.needs and a.name not in needed and a.name in names]
+    spec_of = {a.name: a for a in todo}
+    objects: Dict[str, Any] = dict(done)
     if int(options.n_jobs) > 1 and side and len(side) < len(todo) and prep.n_total <= PARALLEL_MAX_ROWS:
         from concurrent.futures import ProcessPoolExecutor
 
@@ -154,7 +184,7 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
                     if queue and not broken:
                         name = queue[0]
                         try:
-                            future = pool.submit(_side_lane, prep, options, [name])
+                            future = pool.submit(_side_lane, _prep_for(preps, spec_of[name]), options, [name])
                         except (BrokenProcessPool, RuntimeError):
                             broken.append(name)
                             return
@@ -163,13 +193,13 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
                         future.add_done_callback(submit_next)
 
             submit_next()
-            _run_specs(prep, options, names - set(side), objects, say, timings)
+            _run_specs(preps, options, names - set(side), objects, say, timings)
             while True:  # list scheduling: both processes take the next queued task when free
                 with lock:
                     if not queue:
                         break
                     name = queue.pop(0)
-                _run_specs(prep, options, {name}, objects, say, timings)
+                _run_specs(preps, options, {name}, objects, say, timings)
             remote = [name for name in side if name in futures]
             if any(not futures[name].done() for name in remote):
                 say(f"waiting for {', '.join(remote)}")
@@ -187,7 +217,7 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
             # scan at import time, without an ``if __name__ == "__main__":`` guard, is run again
             # by the spawned process): its analyses run here instead, with the same results.
             say(f"the second process stopped; running {', '.join(lost)} here")
-            _run_specs(prep, options, set(lost), objects, say, timings)
+            _run_specs(preps, options, set(lost), objects, say, timings)
             remote = [name for name in remote if name not in lost]
         if remote:
             say(", ".join(f"{k} {timings[k]:.1f}s" for k in remote) + " (second process)")
@@ -195,7 +225,7 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
         # Large tables stay in one process and may use every core; small ones keep one
         # thread per analysis so that n_jobs=1 and n_jobs=2 give the same numbers.
         threads = None if prep.n_total > PARALLEL_MAX_ROWS else 1
-        _run_specs(prep, options, names, objects, say, timings, threads=threads)
+        _run_specs(preps, options, names, objects, say, timings, threads=threads)
     for spec in todo:  # fold parts computed apart into their analysis
         if spec.part_of is not None and spec.name in objects:
             part, whole = objects.pop(spec.name), objects.get(spec.part_of)
@@ -222,7 +252,19 @@ def scan_table(table: Table, options: ScanOptions = ScanOptions(), *,
     t0 = time.perf_counter()
     prep = prepare(table, n_splits=options.folds, max_rows=options.max_rows, random_state=options.seed)
     timings["prepare"] = round(time.perf_counter() - t0, 3)
-    out = run_analyses(prep, options, progress=progress, timings=timings)
+    done, repaired, plan_doc = _repair_stage(table, prep, options, say, timings)
+    out = run_analyses(prep, options, progress=progress, timings=timings, repaired=repaired, done=done)
+    sections = dict(out["sections"])
+    objects = dict(out["objects"])
+    if plan_doc is not None:
+        values = "after repair" if (options.repair and repaired is not None) else "as given"
+        for key in ("embedding", "harmonisation", "outcome"):
+            if key in sections:
+                # harmonisation is keyed by method: the label goes into each method's entry
+                sections[key] = Labelled(sections[key], values, per_entry=key == "harmonisation")
+        sections["repair"] = plan_doc["summary"]
+        objects["repair_plan"] = plan_doc["plan"]
+        objects["repair_log"] = plan_doc["log"]
     raw = table.source
     input_doc = {
         "path": raw.path,
@@ -250,9 +292,73 @@ def scan_table(table: Table, options: ScanOptions = ScanOptions(), *,
         findings=tuple(f.to_dict() for f in table.findings),
         warnings=tuple(table.warnings),
         run=run,
-        sections=out["sections"],
-        objects={"table": table, "prepared": prep, **out["objects"]},
+        sections=sections,
+        objects={"table": table, "prepared": prep, **objects},
     )
+
+
+class Labelled:
+    """A section result with the values it was computed on (``"after repair"`` or
+    ``"as given"``) added to its ``report.json`` dict; attributes pass through."""
+
+    def __init__(self, inner: Any, values: str, per_entry: bool = False):
+        self.__dict__["inner"] = inner
+        self.__dict__["values"] = values
+        self.__dict__["per_entry"] = per_entry
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self.__dict__["inner"], name)
+
+    def to_dict(self) -> Dict[str, Any]:
+        from sitecheck.report.result import to_jsonable
+
+        d = to_jsonable(self.__dict__["inner"])
+        if isinstance(d, dict) and self.__dict__["per_entry"]:
+            return {k: ({"values": self.__dict__["values"], **v} if isinstance(v, dict) else v) for k, v in d.items()}
+        if isinstance(d, dict):
+            d = {"values": self.__dict__["values"], **d}
+        return d
+
+
+def _repair_stage(table: Table, prep: Prepared, options: ScanOptions, say: Progress, timings: Dict[str, float]):
+    """Fingerprints first, then the repair plan and the table after its safe entries.
+
+    Returns (results computed here, the repaired Prepared or None, the plan's documents or None).
+    """
+    if not options.wants("fingerprints"):
+        return {}, None, None
+    from sitecheck.analyses.fingerprints import find_fingerprints
+    from sitecheck.repair import apply_repairs, plan_repairs
+
+    say("fingerprints...")
+    t0 = time.perf_counter()
+    fp = find_fingerprints(prep)
+    timings["fingerprints"] = round(time.perf_counter() - t0, 3)
+    t0 = time.perf_counter()
+    plan = plan_repairs(table, fp, censor_policy=options.censor_policy)
+    repaired_table, log = apply_repairs(table, plan, safe_only=True)
+    applied = [e for e in plan.entries if e.id in log.applied]
+    repaired = None
+    if applied:
+        repaired = prepare(repaired_table, n_splits=options.folds, max_rows=options.max_rows,
+                           random_state=options.seed)
+    timings["repair"] = round(time.perf_counter() - t0, 3)
+    applied_doc = [{"id": e.id, "kind": e.kind, "column": e.column, "site": e.site, "operation": e.operation,
+                    "cells": int(sum(log.cells_by_site.get(str(e.site), {}).get(e.column, {}).values()))
+                    if e.operation != "drop_column" else e.cells} for e in applied]
+    say(f"repair plan: {len(plan.entries)} entries, {len(applied)} safe ones applied in memory")
+    summary = {
+        "plan_file": "repair_plan.json", "plan_version": plan.version, "n_entries": len(plan.entries),
+        "n_safe": len(plan.safe()),
+        "values_for_maps_harmonisation_outcome": "after repair" if (options.repair and repaired is not None)
+        else "as given",
+        "entries": [{"id": e.id, "kind": e.kind, "column": e.column, "site": e.site, "operation": e.operation,
+                     "cells": e.cells, "rows": e.rows, "safe": e.safe, "enabled": e.enabled, "reason": e.reason}
+                    for e in plan.entries],
+        "applied_in_scan": applied_doc, "log": log.to_dict(), "not_repaired": list(plan.not_repaired),
+    }
+    return ({"fingerprints": fp, "repair": {"plan": plan, "log": log, "applied": applied_doc}}, repaired,
+            {"summary": summary, "plan": plan, "log": log})
 
 
 def build_table(raw: RawTable, roles: RoleSpec, *, config_path: Optional[str] = None,
@@ -277,7 +383,7 @@ def scan_configured(path: str, run: RunConfig, *, progress: Optional[Progress] =
         raise TypeError(f"run must be a RunConfig (see sitecheck.reading.config.resolve_config), got {type(run).__name__}")
     say = progress or (lambda msg: None)
     say(f"reading {path}")
-    raw = read_table(path, sep=run.sep, encoding=run.encoding)
+    raw = read_table(path, sep=run.sep, encoding=run.encoding, site=run.roles.site)
     table = _table_for(raw, run)
     say(f"{len(table.frame)} rows, {len(table.site_labels)} sites, {len(table.features)} features")
     return scan_table(table, run.options, progress=progress, config=run.record())
@@ -333,7 +439,7 @@ def scan_frame(frame: pd.DataFrame, *, site: str, outcome: Optional[str] = None,
                identifiers: Optional[Sequence[str]] = None, excluded: Optional[Sequence[str]] = None,
                options: Optional[ScanOptions] = None, progress: Optional[Progress] = None) -> ScanResult:
     """Scan an in-memory DataFrame (intake's missing-code rules apply to text columns)."""
-    raw = frame_to_raw(frame)
+    raw = frame_to_raw(frame, site=site)
     opts = options or ScanOptions()
     table = assign_roles(raw, _spec(site, outcome, covariates, groups, identifiers, excluded),
                          min_site_rows=opts.min_site_rows, include_datetime=opts.include_datetime)

@@ -33,6 +33,10 @@ class Analysis:
     #: Order of the queue for the second process (higher first): the longest tasks go first,
     #: so that the short ones fill the gaps (longest-processing-time-first list scheduling).
     priority: int = 0
+    #: Which values the analysis reads: "given" (the diagnosis: probe, ranking, fingerprints),
+    #: "repaired" (after the repair plan's safe entries, unless ScanOptions.repair is False:
+    #: maps, harmonisation check, outcome) or "residual" (always the repaired values).
+    on: str = "given"
 
 
 def _run_probe(prep, options, objects):
@@ -84,7 +88,10 @@ def _run_fingerprints(prep, options, objects):
 
 
 def _fingerprint_sections(result):
-    return {"fingerprints": [f.to_dict() for f in result.findings], "fingerprint_tests": result.tests}
+    out = {"fingerprints": [f.to_dict() for f in result.findings], "fingerprint_tests": result.tests}
+    if result.unit_columns:
+        out["unit_columns"] = result.unit_columns
+    return out
 
 
 
@@ -131,6 +138,15 @@ def _run_harmonise(prep, options, objects):
     return harmonisation_check(prep, random_state=options.seed)
 
 
+def _run_residual(prep, options, objects):
+    from sitecheck.repair import residual_signal
+
+    probe, repair = objects.get("probe"), objects.get("repair")
+    if probe is None or repair is None:
+        return None
+    return residual_signal(prep, probe, objects.get("leakage"), repair["applied"], random_state=options.seed)
+
+
 def _harmonise_applies(prep) -> bool:
     return any(k == "numeric" for k in prep.features.kinds) and prep.n_used >= 50
 
@@ -146,15 +162,19 @@ REGISTRY: List[Analysis] = [
     Analysis("probe", _run_probe, sections=_probe_sections),
     Analysis("leakage", _run_leakage, sections=lambda result: result.sections(), needs=("probe",)),
     Analysis("fingerprints", _run_fingerprints, sections=_fingerprint_sections),
-    Analysis("maps", _run_maps, applies=_maps_applies, sections=lambda result: {"embedding": result}),
+    Analysis("maps", _run_maps, applies=_maps_applies, sections=lambda result: {"embedding": result}, on="repaired"),
     # t-SNE is the longest single map (about 3/4 of the maps' time at 10,000 rows, measured):
     # computed apart, it runs beside the probe while PCA and UMAP fill the other lane.
-    Analysis("maps_tsne", _run_tsne, applies=_maps_applies, part_of="maps", merge=_merge_maps, priority=2),
+    Analysis("maps_tsne", _run_tsne, applies=_maps_applies, part_of="maps", merge=_merge_maps, priority=2,
+             on="repaired"),
     Analysis("harmonise", _run_harmonise, applies=_harmonise_applies,
-             sections=lambda result: {"harmonisation": result}, priority=1),
+             sections=lambda result: {"harmonisation": result}, priority=1, on="repaired"),
     Analysis("outcome", _run_outcome, applies=lambda prep: prep.outcome is not None,
-             sections=lambda result: {"outcome": result}, needs=("leakage",)),
+             sections=lambda result: {"outcome": result}, needs=("leakage",), on="repaired"),
     # reads the leak ranking and the fingerprints only (no fit): why a fingerprinted feature ranks near 0
     Analysis("reconcile", _run_reconcile, sections=lambda result: {"reconciliation": result},
              needs=("leakage", "fingerprints")),
+    # the probe and the top of the leak ranking again, on the values after the plan's safe repairs
+    Analysis("residual", _run_residual, sections=lambda result: {"residual": result}, needs=("probe", "leakage"),
+             on="residual"),
 ]

@@ -101,6 +101,12 @@ def _common_scan_options(f):
         click.option("--fail-on", "fail_on", multiple=True, metavar="KIND", type=click.Choice(FINGERPRINT_KINDS),
                      help="Gate: exit 1 when a fingerprint of this kind is found (repeatable; one of "
                           + ", ".join(FINGERPRINT_KINDS) + ")."),
+        click.option("--as-given", "as_given", is_flag=True, default=None,
+                     help="Run the maps, the harmonisation check and the outcome analysis on the values as given "
+                          "(default: after the repair plan's safe entries, applied in memory)."),
+        click.option("--censor-policy", type=click.Choice(["limit", "limit_over_sqrt2", "limit_over_2", "missing"]),
+                     default=None, help="Value for censored cells such as '<5' in the repair plan (default: "
+                                        "limit / sqrt(2) below a limit, after Hornung & Reed 1990; the limit above)."),
         click.option("--quiet", "-q", is_flag=True, help="No progress messages on stderr."),
     ]
     for o in reversed(opts):
@@ -134,6 +140,8 @@ def _run_scan(data, *, site, outcome, covariates, groups, identifiers, excluded,
             raise InputError(f"--encoding {encoding!r}: not a known text encoding (for example utf-8, latin-1)") from None
     if sep is not None and len(sep) != 1:
         raise InputError(f"--sep {sep!r}: must be a single character")
+    if flags.pop("as_given", None):
+        flags["repair"] = False
     run = resolve_config(config, roles=spec, options=flags, sep=sep, encoding=encoding,
                          fail_above=fail_above, fail_on=tuple(fail_on) or None)
     if run.roles.site is None:
@@ -143,8 +151,12 @@ def _run_scan(data, *, site, outcome, covariates, groups, identifiers, excluded,
     progress(f"writing report to {out_dir}")
     paths = write_report(result, out_dir, min_cell=run.options.min_cell, shareable=shareable)
     failed = check_gates(result, run.gates)
-    lines = [result.summary(),
-             "report: " + ", ".join(paths[k] for k in ("report.html", "report.json", "findings.md") if k in paths)]
+    residual = result.sections.get("residual")
+    lines = [result.summary()]
+    if residual is not None and getattr(residual, "statement", None):
+        lines.append(residual.statement)
+    lines.append("report: " + ", ".join(paths[k] for k in ("report.html", "report.json", "findings.md",
+                                                           "repair_plan.json") if k in paths))
     for f in failed:
         setting = f"{f.setting:g}" if isinstance(f.setting, float) else f.setting
         lines.append(f"FAILED gate {GATE_FLAGS[f.gate]} {setting}: {f.message}")
@@ -186,7 +198,7 @@ def demo_cmd(out_dir, rows, seed, quiet):
               covariates=DEMO_ROLES["covariates"], groups=(), identifiers=DEMO_ROLES["identifiers"], excluded=(),
               config=None, sep=None, encoding=None, out_dir=os.path.join(out_dir, "report"), quiet=quiet,
               seed=None, folds=None, max_rows=None, map_rows=None, min_site_rows=None, min_cell=None,
-              include_datetime=None)
+              include_datetime=None, as_given=None, censor_policy=None)
 
 
 @main.command("schema", epilog="Example:\n\n  sitecheck schema > report.schema.json")
@@ -200,8 +212,11 @@ def schema_cmd():
 
 
 from sitecheck.cli.harmonise import harmonise_cmd  # noqa: E402  (issue 6: the harmonise command)
+from sitecheck.cli.repair import repair_cmd, repair_schema_cmd  # noqa: E402  (issue 17: the repair loop)
 
 main.add_command(harmonise_cmd)
+main.add_command(repair_cmd)
+main.add_command(repair_schema_cmd)
 
 
 if __name__ == "__main__":  # pragma: no cover

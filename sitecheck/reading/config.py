@@ -35,10 +35,11 @@ if TYPE_CHECKING:  # pragma: no cover
 
 _ROLE_KEYS = {"site", "outcome", "covariates", "groups", "identifiers", "excluded", "features", "panels"}
 _OPTION_KEYS = {"seed", "min_site_rows", "min_cell", "folds", "max_rows", "map_rows", "sep", "encoding",
-                "cluster_threshold", "include_datetime", "fail_above", "fail_on", "threshold"}
+                "cluster_threshold", "include_datetime", "fail_above", "fail_on", "threshold", "repair",
+                "censor_policy"}
 #: [options] keys that are fields of :class:`~sitecheck.scan.ScanOptions`.
 SCAN_OPTION_KEYS = ("seed", "folds", "max_rows", "map_rows", "min_site_rows", "min_cell", "include_datetime",
-                    "cluster_threshold", "threshold")
+                    "cluster_threshold", "threshold", "repair", "censor_policy")
 
 
 def _int(lo: Optional[int] = None, hi: Optional[int] = None):
@@ -85,6 +86,14 @@ def _encoding(v):
     return v
 
 
+def _censor_policy(v):
+    from sitecheck.repair import CENSOR_POLICIES
+
+    if not isinstance(v, str) or v not in CENSOR_POLICIES:
+        raise ValueError(f"must be one of {', '.join(CENSOR_POLICIES)}, got {v!r}")
+    return v
+
+
 _OPTION_CHECKS = {
     "seed": _int(),
     "folds": _int(2, 20),
@@ -99,6 +108,8 @@ _OPTION_CHECKS = {
     "encoding": _encoding,
     "fail_above": check_fail_above,
     "fail_on": check_fail_on,
+    "repair": _bool,
+    "censor_policy": _censor_policy,
 }
 
 

@@ -15,11 +15,15 @@ ARTEFACT = {
     "exclusive_level": "site-only category",
     "shift": "location gap",
     "scale": "spread gap",
+    "censored_below": "written below a limit",
+    "censored_above": "written above a limit",
+    "number_format": "number format",
+    "unit_label": "unit column",
 }
 
 #: kinds that are about how values were recorded, not about patients: acted on first
 MECHANICAL = ("unit_ratio", "missing_code", "site_missing", "floor", "ceiling", "precision", "exclusive_level",
-              "heaping")
+              "heaping", "censored_below", "censored_above", "number_format", "unit_label")
 #: kinds that may be case mix as well as measurement
 DISTRIBUTION = ("shift", "scale")
 
@@ -37,6 +41,10 @@ KIND_TEST = {
     "exclusive_level": "level count at the site",
     "shift": "mean difference, covariate-adjusted",
     "scale": "variance ratio",
+    "censored_below": "share of cells written '<limit'",
+    "censored_above": "share of cells written '>limit'",
+    "number_format": "share of cells in another number format",
+    "unit_label": "share of rows in another unit",
 }
 
 #: harmonisation reasons -> the artefact words above (one name across sections)

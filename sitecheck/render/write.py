@@ -61,4 +61,14 @@ def write_report(result: ScanResult, out_dir: str, *, min_cell: int = 10, figure
         paths["leakage.csv"] = atomic_write(out_dir, "leakage.csv", leakage_csv(shared, min_cell=min_cell))
     if "fingerprints" in shared:
         paths["fingerprints.csv"] = atomic_write(out_dir, "fingerprints.csv", fingerprints_csv(shared, min_cell=min_cell))
+    plan = result.objects.get("repair_plan") if result.objects else None
+    if plan is not None:
+        # the repair plan (sitecheck.repair): exact counts, for use inside the data enclave;
+        # with --shareable its counts are suppressed like report.json's
+        plan_doc = plan.to_dict()
+        if shareable:
+            plan_doc = shareable_document(plan_doc, min_cell=min_cell, small_sites=small)
+            plan_doc.pop("shareable", None)
+        paths["repair_plan.json"] = atomic_write(out_dir, "repair_plan.json",
+                                                 json.dumps(plan_doc, indent=2, allow_nan=False) + "\n")
     return paths

@@ -43,7 +43,7 @@ def report_schema() -> Dict[str, Any]:
                         "kind": {"enum": list(FINGERPRINT_KINDS)},
                         "detail": {"type": "string"}, "evidence": {"type": "object"}},
                        ["feature", "site", "kind", "detail", "evidence"])
-    embedding = _obj({"n_used": COUNT, "methods": {"type": "array"}, "mixing": {"type": "object"},
+    embedding = _obj({"values": {"enum": ["after repair", "as given"]}, "n_used": COUNT, "methods": {"type": "array"}, "mixing": {"type": "object"},
                       "silhouette": {}, "figures": {"type": "array", "items": {"type": "string"}}},
                      ["n_used", "methods", "mixing", "silhouette"])
     harm_method = _obj({"probe_auc": NUM, "probe_auc_ci": CI,
@@ -82,7 +82,12 @@ def report_schema() -> Dict[str, Any]:
     column = _obj({"name": {"type": "string"}, "role": {"enum": ["site", "outcome", "covariate", "group", "identifier",
                                                                  "excluded", "feature"]},
                    "kind": {"enum": ["numeric", "binary", "categorical", "datetime", "text"]},
-                   "reason": {"type": "string"}}, ["name", "role", "kind", "reason"])
+                   "reason": {"type": "string"},
+                   "idioms": {"type": "object", "description": "site -> lab-export idiom -> cells",
+                              "additionalProperties": {"type": "object", "additionalProperties": COUNT}},
+                   "units": {"type": "object", "description": "site -> unit written after the number -> cells",
+                             "additionalProperties": {"type": "object", "additionalProperties": COUNT}}},
+                  ["name", "role", "kind", "reason"])
     return {
         "$schema": "https://json-schema.org/draft/2020-12/schema",
         "$id": f"urn:sitecheck:{SCHEMA_VERSION}",
@@ -111,6 +116,27 @@ def report_schema() -> Dict[str, Any]:
             "embedding": embedding,
             "harmonisation": {"type": "object", "additionalProperties": harm_method},
             "outcome": outcome,
+            "residual": _obj({"auc_given": NUM, "auc_given_ci": CI, "auc_repaired": NUM,
+                              "auc_repaired_ci": {"anyOf": [CI, {"type": "null"}]},
+                              "difference": NUM, "difference_ci": {"anyOf": [CI, {"type": "null"}]},
+                              "explained_share": NUM, "n_used": COUNT, "statement": {"type": "string"},
+                              "applied": {"type": "array"}, "top": {"type": "array"}},
+                             ["auc_given", "auc_given_ci", "auc_repaired", "statement"],
+                             description="the site probe again after the repair plan's safe entries"),
+            "repair": _obj({"plan_file": {"type": "string"}, "plan_version": {"type": "string"},
+                            "n_entries": {"type": "integer"}, "n_safe": {"type": "integer"},
+                            "values_for_maps_harmonisation_outcome": {"enum": ["after repair", "as given"]},
+                            "entries": {"type": "array", "items": _obj({
+                                "id": {"type": "string"}, "kind": {"enum": list(FINGERPRINT_KINDS)},
+                                "column": {"type": "string"}, "site": {"type": ["string", "null"]},
+                                "operation": {"type": "string"}, "cells": COUNT, "safe": {"type": "boolean"},
+                                "enabled": {"type": "boolean"}},
+                                ["id", "kind", "column", "site", "operation", "cells", "safe", "enabled"])},
+                            "applied_in_scan": {"type": "array"}, "log": {"type": "object"},
+                            "not_repaired": {"type": "array"}},
+                           ["plan_file", "plan_version", "entries", "values_for_maps_harmonisation_outcome"],
+                           description="the repair plan (repair_plan.json; its schema: sitecheck repair-schema)"),
+            "unit_columns": {"type": "object", "description": "unit column -> the numeric column it qualifies"},
             "shareable": _obj({"min_cell": {"type": "integer"}, "withheld_sites": {"type": "array"}}),
         }, ["schema", "input", "columns", "warnings", "run"]),
     }

@@ -18,7 +18,7 @@ import numpy as np
 import pandas as pd
 
 from sitecheck.errors import InputError
-from sitecheck.reading.intake import ColumnIntake, RawTable
+from sitecheck.reading.intake import IDIOM_BITS, CellNotes, ColumnIntake, RawTable
 
 ROLES = ("site", "outcome", "covariate", "group", "identifier", "excluded", "feature")
 KINDS = ("numeric", "binary", "categorical", "datetime", "text")
@@ -146,6 +146,10 @@ class Column:
     unparsed_count: int = 0
     unparsed_examples: Tuple[str, ...] = ()
     levels: Tuple[str, ...] = ()
+    #: site -> lab-export idiom -> cells (censored_below, decimal_comma, unit_suffix, ...)
+    idioms: Dict[str, Dict[str, int]] = field(default_factory=dict)
+    #: site -> unit written after the number -> cells
+    units: Dict[str, Dict[str, int]] = field(default_factory=dict)
 
     def to_dict(self) -> dict:
         d = {
@@ -158,6 +162,10 @@ class Column:
         }
         if self.unparsed_count:
             d["unparsed"] = {"count": int(self.unparsed_count), "examples": list(self.unparsed_examples)}
+        if self.idioms:
+            d["idioms"] = {s: dict(v) for s, v in self.idioms.items()}
+        if self.units:
+            d["units"] = {s: dict(v) for s, v in self.units.items()}
         return d
 
 
@@ -185,6 +193,9 @@ class Table:
     source : RawTable
     dropped_sites : dict
         Site label -> rows, for sites left out below the minimum row count.
+    cells : dict
+        Column -> :class:`~sitecheck.intake.CellNotes` of the retained rows, for the
+        columns whose cells used a lab-export idiom (censoring flags, units).
     """
 
     frame: pd.DataFrame
@@ -198,6 +209,14 @@ class Table:
     source: RawTable
     dropped_sites: Dict[str, int]
     outcome: Optional[str] = None
+    cells: Dict[str, CellNotes] = field(default_factory=dict)
+
+    def censored(self, name: str) -> Optional[np.ndarray]:
+        """-1/0/+1 per row (below a limit / not censored / above), or None without censoring."""
+        notes = self.cells.get(name)
+        if notes is None or not notes.censor.any():
+            return None
+        return notes.censor
 
     def names(self, role: str) -> List[str]:
         return [c.name for c in self.columns if c.role == role]
@@ -397,13 +416,18 @@ def assign_roles(
     intake = {c.name: c for c in raw.columns}
     columns: List[Column] = []
     binary_levels: Dict[str, Tuple[str, str]] = {}
+    cells = {name: notes.take(keep_mask) for name, notes in raw.cells.items()}
+    site_code = np.searchsorted(np.array(kept, dtype=object), frame[spec.site].to_numpy(dtype=object))
+    idioms_of, units_of = {}, {}
+    for name, notes in cells.items():
+        idioms_of[name], units_of[name] = _per_site_idioms(notes, site_code, kept)
 
     def make(name, role, kind, reason, levels=()):
         info: ColumnIntake = intake[name]
         return Column(name=name, role=role, kind=kind, reason=reason,
                       n_missing=int(frame[name].isna().sum()), missing_codes=dict(info.missing_codes),
                       unparsed_count=info.unparsed_count, unparsed_examples=info.unparsed_examples,
-                      levels=tuple(levels))
+                      levels=tuple(levels), idioms=idioms_of.get(name, {}), units=units_of.get(name, {}))
 
     for name in names:
         info = intake[name]
@@ -513,14 +537,21 @@ def assign_roles(
                                         f"never recorded at site {lab!r} (all {int((site == lab).sum())} rows missing)",
                                         site=lab, count=int((site == lab).sum())))
         if col.kind == "categorical":
+            # one finding per column x site, listing the levels (most frequent first)
             ct = pd.crosstab(frame[col.name], site)
+            per_site: Dict[str, List[Tuple[str, int]]] = {}
             for level, row in ct.iterrows():
                 nz = row[row > 0]
                 if len(nz) == 1 and int(nz.iloc[0]) >= 5:
-                    lab = str(nz.index[0])
-                    findings.append(Finding(col.name, "exclusive_level",
-                                            f"level {str(level)!r} occurs only at site {lab!r}",
-                                            site=lab, count=int(nz.iloc[0])))
+                    per_site.setdefault(str(nz.index[0]), []).append((str(level), int(nz.iloc[0])))
+            for lab in kept:
+                lv = sorted(per_site.get(lab, []), key=lambda t: (-t[1], t[0]))
+                if not lv:
+                    continue
+                shown = ", ".join(repr(x) for x, _ in lv[:5]) + (f" and {len(lv) - 5} more" if len(lv) > 5 else "")
+                what = f"level {shown} occurs" if len(lv) == 1 else f"{len(lv)} levels occur ({shown})"
+                findings.append(Finding(col.name, "exclusive_level", f"{what} only at site {lab!r}",
+                                        site=lab, count=sum(c for _, c in lv)))
 
     usable = [c for c in columns if c.role == "feature"]
     if not usable:
@@ -545,7 +576,30 @@ def assign_roles(
         source=raw,
         dropped_sites=dropped,
         outcome=spec.outcome,
+        cells=cells,
     )
+
+
+def _per_site_idioms(notes: CellNotes, site_code: np.ndarray, labels: Sequence[str]):
+    """(site -> idiom -> cells, site -> unit -> cells) from per-cell notes (vectorised)."""
+    k = len(labels)
+    idioms: Dict[str, Dict[str, int]] = {}
+    for key, bit in IDIOM_BITS.items():
+        hit = (notes.idiom & bit) != 0
+        if not hit.any():
+            continue
+        counts = np.bincount(site_code[hit], minlength=k)
+        for s in np.flatnonzero(counts):
+            idioms.setdefault(labels[s], {})[key] = int(counts[s])
+    units: Dict[str, Dict[str, int]] = {}
+    has = notes.unit >= 0
+    if has.any():
+        nl = len(notes.unit_levels)
+        counts = np.bincount(site_code[has] * nl + notes.unit[has], minlength=k * nl).reshape(k, nl)
+        for s, u in zip(*np.nonzero(counts)):
+            units.setdefault(labels[s], {})[notes.unit_levels[u]] = int(counts[s, u])
+    return ({lab: idioms[lab] for lab in labels if lab in idioms},
+            {lab: units[lab] for lab in labels if lab in units})
 
 
 _POSITIVE = ("1", "yes", "y", "true", "t", "positive", "pos", "died", "dead", "event", "admitted")
