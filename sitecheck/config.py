@@ -13,7 +13,7 @@ else:  # pragma: no cover
 from .errors import InputError
 from .roles import RoleSpec
 
-_ROLE_KEYS = {"site", "outcome", "covariates", "groups", "identifiers", "excluded", "features", "panels"}
+_ROLE_KEYS = {"site", "outcome", "time", "covariates", "groups", "identifiers", "excluded", "features", "panels"}
 _OPTION_KEYS = {"seed", "min_site_rows", "min_cell", "folds", "max_rows", "map_rows", "sep", "encoding",
                 "cluster_threshold", "include_datetime", "fail_above", "fail_on", "threshold"}
 
@@ -37,7 +37,7 @@ def _tuple_of_str(value, key: str, path: str) -> Tuple[str, ...]:
 def load_config(path: Optional[str]) -> FileConfig:
     """Read a TOML config file.
 
-    The file may hold the role keys ``site``, ``outcome``, ``covariates``,
+    The file may hold the role keys ``site``, ``outcome``, ``time``, ``covariates``,
     ``groups``, ``identifiers``, ``excluded``, ``features``, a ``[panels]``
     table (panel name -> list of columns) and an ``[options]`` table.
     Unknown keys are an error, so that typos do not pass silently.
@@ -57,7 +57,7 @@ def load_config(path: Optional[str]) -> FileConfig:
     if unknown:
         raise InputError(f"{path}: unknown key {sorted(unknown)[0]!r}; expected one of {sorted(_ROLE_KEYS | {'options'})}")
     kw: Dict[str, Any] = {}
-    for key in ("site", "outcome"):
+    for key in ("site", "outcome", "time"):
         if key in data:
             if not isinstance(data[key], str):
                 raise InputError(f"{path}: {key!r} must be a column name")

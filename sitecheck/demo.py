@@ -54,6 +54,18 @@ def _effects() -> List[dict]:
     ]
 
 
+#: The arrival dates cover two years, drawn uniformly.
+DEMO_START, DEMO_DAYS = "2025-01-01", 730
+
+
+def _recalibration() -> dict:
+    """The one change over time: an analyser recalibration at one site, mid-period. Too small over
+    the whole period to mark the site (about 0.15 SD, under the fingerprints' 0.2), clear from its
+    month on."""
+    return {"feature": "creatinine", "site": "Duskwater", "kind": "recalibration", "from": "2026-01-01",
+            "factor": 1.10, "detail": "analyser recalibrated: creatinine reads 10% higher from 2026-01-01"}
+
+
 def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> DemoData:
     """Generate the invented four-hospital emergency-attendance table.
 
@@ -70,9 +82,10 @@ def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> D
     -------
     DemoData
         ``frame`` has columns ``attendance_id`` (site-prefixed code),
-        ``hospital``, ``arrival_date``, ``age``, ``sex``, ``arrival_mode``,
-        vital signs, a blood panel and ``admitted_hdu``; ``truth`` lists the
-        injected effects (empty for the null variant).
+        ``hospital``, ``arrival_date`` (two years from 2025-01-01), ``age``,
+        ``sex``, ``arrival_mode``, vital signs, a blood panel and
+        ``admitted_hdu``; ``truth`` lists the injected effects and, under
+        ``drift``, the one change over time (both empty for the null variant).
     """
     if n_rows < 80:
         raise ValueError("n_rows must be at least 80")
@@ -151,8 +164,12 @@ def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> D
         albumin[d] = np.nan
 
     order = rng.permutation(n)
-    start = pd.Timestamp("2025-01-01")
-    days = rng.integers(0, 365, n)
+    start = pd.Timestamp(DEMO_START)
+    days = rng.integers(0, DEMO_DAYS, n)
+    if not null:  # drawn last, so every other column is the same with or without it
+        r = _recalibration()
+        after = is_[r["site"]] & (start + pd.to_timedelta(days, unit="D") >= pd.Timestamp(r["from"]))
+        creat[after] = np.round(creat[after] * r["factor"])
     ids = np.array([f"{PREFIX[s]}-{100000 + i:06d}" for i, s in enumerate(site)], dtype=object)
     frame = pd.DataFrame({
         "attendance_id": ids,
@@ -198,6 +215,9 @@ def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> D
                                       "detail": "patients about 8 years older on average"}],
         "outcome_prevalence": {"varies_by_site": not null,
                                "baseline_logit": base, "observed": prevalence},
+        "time_column": "arrival_date",
+        "period": {"first": DEMO_START, "last": f"{start + pd.Timedelta(days=DEMO_DAYS - 1):%Y-%m-%d}"},
+        "drift": [] if null else [_recalibration()],
     }
     return DemoData(frame=frame, truth=truth)
 
@@ -221,4 +241,4 @@ def write_demo(out_dir: str, *, n_rows: int = 6000, seed: int = 7) -> Dict[str, 
 
 #: Settings for the scan the ``demo`` command runs.
 DEMO_ROLES = {"site": "hospital", "outcome": "admitted_hdu", "covariates": ("age", "sex"),
-              "identifiers": ("attendance_id",)}
+              "identifiers": ("attendance_id",), "time": "arrival_date"}

@@ -237,6 +237,8 @@ def scan_table(table: Table, options: ScanOptions = ScanOptions(), *,
         "dropped_sites": dict(table.dropped_sites),
         "outcome": table.outcome,
     }
+    if table.time:
+        input_doc["time_column"] = table.time
     timings["total"] = round(time.perf_counter() - t_start, 3)
     run = {
         "seed": int(options.seed),
@@ -271,10 +273,12 @@ def scan_file(path: str, *, site: Optional[str] = None, outcome: Optional[str] =
               covariates: Optional[Sequence[str]] = None, groups: Optional[Sequence[str]] = None,
               identifiers: Optional[Sequence[str]] = None, excluded: Optional[Sequence[str]] = None,
               config: Optional[str] = None, sep: Optional[str] = None, encoding: str = "utf-8",
-              options: Optional[ScanOptions] = None, progress: Optional[Progress] = None) -> ScanResult:
-    """Read a file and scan it. Role arguments override the config file's."""
+              options: Optional[ScanOptions] = None, progress: Optional[Progress] = None,
+              time: Optional[str] = None) -> ScanResult:
+    """Read a file and scan it. Role arguments override the config file's; ``time`` names
+    the date column that adds the drift analysis."""
     raw = read_table(path, sep=sep, encoding=encoding)
-    roles = _spec(site, outcome, covariates, groups, identifiers, excluded)
+    roles = _spec(site, outcome, covariates, groups, identifiers, excluded, time)
     opts = options or ScanOptions()
     table, _ = build_table(raw, roles, config_path=config, min_site_rows=opts.min_site_rows,
                            include_datetime=opts.include_datetime)
@@ -284,16 +288,17 @@ def scan_file(path: str, *, site: Optional[str] = None, outcome: Optional[str] =
 def scan_frame(frame: pd.DataFrame, *, site: str, outcome: Optional[str] = None,
                covariates: Optional[Sequence[str]] = None, groups: Optional[Sequence[str]] = None,
                identifiers: Optional[Sequence[str]] = None, excluded: Optional[Sequence[str]] = None,
-               options: Optional[ScanOptions] = None, progress: Optional[Progress] = None) -> ScanResult:
+               options: Optional[ScanOptions] = None, progress: Optional[Progress] = None,
+               time: Optional[str] = None) -> ScanResult:
     """Scan an in-memory DataFrame (intake's missing-code rules apply to text columns)."""
     raw = frame_to_raw(frame)
     opts = options or ScanOptions()
-    table = assign_roles(raw, _spec(site, outcome, covariates, groups, identifiers, excluded),
+    table = assign_roles(raw, _spec(site, outcome, covariates, groups, identifiers, excluded, time),
                          min_site_rows=opts.min_site_rows, include_datetime=opts.include_datetime)
     return scan_table(table, opts, progress=progress)
 
 
-def _spec(site, outcome, covariates, groups, identifiers, excluded) -> RoleSpec:
+def _spec(site, outcome, covariates, groups, identifiers, excluded, time=None) -> RoleSpec:
     t = lambda v: None if v is None else tuple(v)  # noqa: E731
     return RoleSpec(site=site, outcome=outcome, covariates=t(covariates), groups=t(groups),
-                    identifiers=t(identifiers), excluded=t(excluded))
+                    identifiers=t(identifiers), excluded=t(excluded), time=time)

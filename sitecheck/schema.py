@@ -59,7 +59,7 @@ def report_schema() -> Dict[str, Any]:
                    ["prevalence", "site_only_auc", "pooled_auc", "loso", "transport_gap", "shortcut_candidates",
                     "equalized_odds"])
     column = _obj({"name": {"type": "string"}, "role": {"enum": ["site", "outcome", "covariate", "group", "identifier",
-                                                                 "excluded", "feature"]},
+                                                                 "excluded", "feature", "time"]},
                    "kind": {"enum": ["numeric", "binary", "categorical", "datetime", "text"]},
                    "reason": {"type": "string"}}, ["name", "role", "kind", "reason"])
     return {
