@@ -59,11 +59,11 @@ DEMO_START, DEMO_DAYS = "2025-01-01", 730
 
 
 def _recalibration() -> dict:
-    """The one change over time: an analyser recalibration at one site, mid-period. Too small over
-    the whole period to mark the site (about 0.15 SD, under the fingerprints' 0.2), clear from its
-    month on."""
-    return {"feature": "creatinine", "site": "Duskwater", "kind": "recalibration", "from": "2026-01-01",
-            "factor": 1.10, "detail": "analyser recalibrated: creatinine reads 10% higher from 2026-01-01"}
+    """The one change over time: an analyser recalibration at one site in the second year (month 16
+    of 24). About 0.33 SD from its month on, so about 0.12 SD over the whole period: under the
+    fingerprints' 0.2, so that only the drift analysis sees it."""
+    return {"feature": "potassium", "site": "Aldermoor", "kind": "recalibration", "from": "2026-04-01",
+            "offset": 0.15, "detail": "analyser recalibrated: potassium reads 0.15 mmol/L higher from 2026-04-01"}
 
 
 def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> DemoData:
@@ -121,7 +121,8 @@ def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> D
     wbc = np.round(np.exp(rng.normal(np.log(8.2), 0.32, n) + 0.18 * sev), 1)
     plt_ = np.round(np.clip(rng.normal(255, 65, n), 20, 900))
     sodium = np.round(rng.normal(138.5, 3.0, n) - 0.8 * np.maximum(sev, 0))
-    potassium = np.round(rng.normal(4.2, 0.45, n), 1)
+    potassium_exact = rng.normal(4.2, 0.45, n)
+    potassium = np.round(potassium_exact, 1)
     creat = np.round(np.exp(rng.normal(np.log(78), 0.28, n) + 0.006 * (age - 55) + 0.12 * male + 0.1 * np.maximum(sev, 0)))
     urea = np.round(np.exp(rng.normal(np.log(5.8), 0.35, n) + 0.008 * (age - 55) + 0.1 * np.maximum(sev, 0)), 1)
     glucose = np.round(np.exp(rng.normal(np.log(6.0), 0.22, n) + 0.06 * sev), 1)
@@ -169,7 +170,7 @@ def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> D
     if not null:  # drawn last, so every other column is the same with or without it
         r = _recalibration()
         after = is_[r["site"]] & (start + pd.to_timedelta(days, unit="D") >= pd.Timestamp(r["from"]))
-        creat[after] = np.round(creat[after] * r["factor"])
+        potassium[after] = np.round(potassium_exact[after] + r["offset"], 1)  # the analyser reads higher, then rounds
     ids = np.array([f"{PREFIX[s]}-{100000 + i:06d}" for i, s in enumerate(site)], dtype=object)
     frame = pd.DataFrame({
         "attendance_id": ids,

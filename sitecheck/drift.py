@@ -20,9 +20,10 @@ variance, whatever the units, rounding or outliers:
 * missing and artefact shares: ``z_t = (k_t - n_t p) / sqrt(n_t p (1 - p))``, whose squares sum to
   Pearson's chi-square of the 2 x T table.
 
-Each standardised series is divided by a robust estimate of its own period-to-period noise (the
-median absolute difference of neighbouring periods, ``/ (0.6745 sqrt 2)``, never below 1, so
-seasonal or case-mix wobble that is not a step does not raise alarms) and segmented with PELT
+Each standardised series is divided by an estimate of its own period-to-period noise (the root mean
+square difference of neighbouring periods over ``sqrt 2``, von Neumann 1941, leaving out the largest
+difference, never below 1, so that seasonal or case-mix wobble that is not a step does not raise
+alarms) and segmented with PELT
 (Killick, Fearnhead & Eckley 2012) as implemented by ``ruptures``, with a squared-error cost and
 one penalty per change.
 
@@ -33,8 +34,10 @@ chi-square(1), so by Bonferroni over the split points a series without a change 
 with probability at most about ``alpha``. The measured rate on null series is in the
 contributor guide and in ``tests/test_drift.py``.
 
-Each change point gets a p-value (the gain at the change point within its segment, Bonferroni
-over that segment's split points), adjusted by Benjamini-Hochberg over every series searched;
+Each change point gets a p-value: the larger of the series' scan test (its largest single-split gain,
+Bonferroni over all split points; valid whatever segmentation PELT chose) and the gain at the change
+point within its segment (Bonferroni over that segment's split points). P-values are adjusted by
+Benjamini-Hochberg over every series searched (series without a change point count as p = 1);
 a change point is a finding when the adjusted p-value is below ``alpha`` and its size is of
 practical weight (0.2 SD for a level, a spread ratio of 1.25, 5 percentage points for a share).
 Sizes come with 95% intervals: the difference of 20% trimmed means after minus before with
@@ -46,13 +49,16 @@ other sites at the same date. When every other site covering that date changed t
 once, the change is network-wide (a new guideline, a shared coding change) and is not counted
 as a site effect.
 
-Period probe: within each site, a cheap linear score (ridge regression) predicts the later half of
-the site's collection period from the features, beside one from the covariates alone; the AUC
-increment (with a paired bootstrap interval) says whether the features tell the period apart
-beyond a trend in case mix.
+Period probe: within each site, a cheap linear score (ridge regression, fitted on half the rows and
+scored on the other half) predicts the later half of the site's collection period from the
+features, beside one from the covariates alone; the AUC
+increment (with DeLong's interval for two correlated AUCs) says whether the features tell the
+period apart beyond a trend in case mix. Features with a network-wide change are left out of it.
 
 References
 ----------
+von Neumann, J. (1941). Distribution of the ratio of the mean square successive difference to the
+variance. Annals of Mathematical Statistics 12(4), 367-395.
 Kruskal, W. H. & Wallis, W. A. (1952). Use of ranks in one-criterion variance analysis. JASA 47, 583-621.
 Conover, W. J., Johnson, M. E. & Johnson, M. M. (1981). A comparative study of tests for homogeneity of
 variances. Technometrics 23(4), 351-361.
@@ -66,6 +72,8 @@ difference effect size. Psychological Methods 10(3), 317-328.
 Newcombe, R. G. (1998). Interval estimation for the difference between independent proportions:
 comparison of eleven methods. Statistics in Medicine 17, 873-890.
 Benjamini, Y. & Hochberg, Y. (1995). Controlling the false discovery rate. JRSS B 57(1), 289-300.
+DeLong, E. R., DeLong, D. M. & Clarke-Pearson, D. L. (1988). Comparing the areas under two or more
+correlated ROC curves: a nonparametric approach. Biometrics 44(3), 837-845.
 
 Examples
 --------
@@ -77,7 +85,7 @@ Examples
 ...                      covariates=("age", "sex"), identifiers=("attendance_id",), outcome="admitted_hdu"))
 >>> result = drift_check(table, random_state=0)
 >>> [(c.site, c.feature, c.period) for c in result.findings]
-[('Duskwater', 'creatinine', '2026-01')]
+[('Aldermoor', 'potassium', '2026-04')]
 """
 from __future__ import annotations
 
@@ -166,6 +174,41 @@ def newcombe_diff(k0: int, n0: int, k1: int, n1: int, *, alpha: float = 0.05) ->
     return d, (lo, hi)
 
 
+def delong(y01, scores: Sequence[np.ndarray]) -> Tuple[np.ndarray, np.ndarray]:
+    """ROC AUCs of several scores of the same rows and their covariance matrix (DeLong, DeLong &
+    Clarke-Pearson 1988), by mid-ranks as in Sun & Xu (2014); ties count 1/2.
+
+    Returns ``(aucs, cov)``; ``cov[a, a] - 2 cov[a, b] + cov[b, b]`` is the variance of the
+    difference of two AUCs of the same rows.
+
+    References
+    ----------
+    DeLong, E. R., DeLong, D. M. & Clarke-Pearson, D. L. (1988). Comparing the areas under two or
+    more correlated receiver operating characteristic curves: a nonparametric approach.
+    Biometrics 44(3), 837-845.
+    Sun, X. & Xu, W. (2014). Fast implementation of DeLong's algorithm for comparing the areas under
+    correlated receiver operating characteristic curves. IEEE Signal Processing Letters 21(11), 1389-1393.
+    """
+    y = np.asarray(y01).astype(bool)
+    m, n = int(y.sum()), int((~y).sum())
+    if m < 2 or n < 2:
+        raise ParameterError("DeLong's variance needs at least two rows of each class")
+    k = len(scores)
+    aucs = np.empty(k)
+    V10 = np.empty((k, m))
+    V01 = np.empty((k, n))
+    for a, sc in enumerate(scores):
+        sc = np.asarray(sc, dtype=float)
+        x, z = sc[y], sc[~y]
+        tx, tz = _st.rankdata(x), _st.rankdata(z)
+        t_all = _st.rankdata(np.concatenate([x, z]))
+        aucs[a] = (t_all[:m].sum() - m * (m + 1) / 2.0) / (m * n)
+        V10[a] = (t_all[:m] - tx) / n
+        V01[a] = 1.0 - (t_all[m:] - tz) / m
+    cov = np.atleast_2d(np.cov(V10)) / m + np.atleast_2d(np.cov(V01)) / n
+    return aucs, cov
+
+
 def period_scores_level(X: np.ndarray, starts: np.ndarray) -> Tuple[np.ndarray, np.ndarray]:
     """Standardised mean mid-rank per period (rows sorted by period, ``starts`` = first row of each).
 
@@ -173,8 +216,7 @@ def period_scores_level(X: np.ndarray, starts: np.ndarray) -> Tuple[np.ndarray, 
     column j over the periods (NaN where a column has no variation), n (T, p) present values.
     """
     present = ~np.isnan(X)
-    R = _st.rankdata(X, axis=0, nan_policy="omit")
-    R = np.where(present, R, 0.0)
+    R = _ranks(X, present)
     n_t = np.add.reduceat(present.astype(np.int64), starts, axis=0).astype(float)
     S_t = np.add.reduceat(R, starts, axis=0)
     N = present.sum(axis=0).astype(float)
@@ -194,13 +236,20 @@ def period_scores_level(X: np.ndarray, starts: np.ndarray) -> Tuple[np.ndarray, 
     return Z, n_t
 
 
+def _ranks(X: np.ndarray, present: np.ndarray) -> np.ndarray:
+    """Mid-ranks of the present values of each column (0 where missing): missing values are ranked
+    last as +inf, which leaves the present values' ranks as they are."""
+    R = _st.rankdata(np.where(present, X, np.inf), axis=0)
+    return np.where(present, R, 0.0)
+
+
 def period_scores_spread(X: np.ndarray, starts: np.ndarray, medians: np.ndarray) -> np.ndarray:
     """Standardised mean Fligner-Killeen score per period: ``sum_t Z[t, j]^2`` is the Fligner-Killeen
     statistic (deviations from each period's median), as ``scipy.stats.fligner(center="median")``."""
     present = ~np.isnan(X)
     counts = np.diff(np.append(starts, len(X)))
     D = np.abs(X - np.repeat(medians, counts, axis=0))
-    R = _st.rankdata(D, axis=0, nan_policy="omit")
+    R = _ranks(D, present)
     N = present.sum(axis=0).astype(float)
     with np.errstate(invalid="ignore", divide="ignore"):
         A = _st.norm.ppf(R / (2.0 * (N + 1.0)) + 0.5)
@@ -231,10 +280,11 @@ def period_scores_share(k_t: np.ndarray, n_t: np.ndarray) -> np.ndarray:
 
 
 def noise_scale(Z: np.ndarray) -> np.ndarray:
-    """Robust period-to-period noise of each row of ``Z`` (series x periods, no NaN): the median
-    absolute difference of neighbouring periods over ``0.6745 sqrt(2)``, never below 1."""
-    d = np.abs(np.diff(Z, axis=1))
-    return np.maximum(1.0, np.median(d, axis=1) / (_MAD * math.sqrt(2.0)))
+    """Period-to-period noise of each row of ``Z`` (series x periods, no NaN), never below 1: the root
+    mean square of the differences of neighbouring periods over ``sqrt 2`` (von Neumann's mean square
+    successive difference), leaving out the largest difference so that one step does not inflate it."""
+    d2 = np.sort(np.diff(Z, axis=1) ** 2, axis=1)[:, :-1]
+    return np.maximum(1.0, np.sqrt(d2.mean(axis=1) / 2.0))
 
 
 def penalty(n_periods: int, *, alpha: float = 0.05, min_segment: int = 2) -> float:
@@ -408,13 +458,15 @@ class PeriodProbe:
     increment_ci: List[Optional[float]]
     increment_ci_adjusted: List[Optional[float]]
     flagged: bool
+    left_out: Tuple[str, ...] = ()
 
     def to_dict(self) -> dict:
         return {"site": self.site, "n": int(self.n), "split_date": self.split_date, "auc": _r(self.auc),
                 "auc_ci": [_r(v) for v in self.auc_ci], "covariate_auc": _r(self.covariate_auc),
                 "covariate_auc_ci": [_r(v) for v in self.covariate_auc_ci], "increment": _r(self.increment),
                 "increment_ci": [_r(v) for v in self.increment_ci],
-                "increment_ci_adjusted": [_r(v) for v in self.increment_ci_adjusted], "flagged": bool(self.flagged)}
+                "increment_ci_adjusted": [_r(v) for v in self.increment_ci_adjusted], "flagged": bool(self.flagged),
+                "left_out": list(self.left_out)}
 
 
 @dataclass(frozen=True)
@@ -571,8 +623,7 @@ def _table_of(data):
 def drift_check(data, *, fingerprints=None, unit: str = "auto", min_period_rows: int = 30,
                 min_periods: int = 6, min_values: int = 5, min_segment: int = 2, alpha: float = 0.05,
                 min_smd: float = 0.2, min_sd_ratio: float = 1.25, min_share_change: float = 0.05,
-                probe: bool = True, probe_max_rows: int = 10_000, n_boot: int = 500,
-                random_state=0) -> DriftResult:
+                probe: bool = True, probe_max_rows: int = 10_000, random_state=0) -> DriftResult:
     """Find when and where each site's measurements changed over the collection period.
 
     Parameters
@@ -599,10 +650,8 @@ def drift_check(data, *, fingerprints=None, unit: str = "auto", min_period_rows:
         Run the period probe.
     probe_max_rows : int, default 10000
         Rows per site for the period probe (a seeded subsample above it).
-    n_boot : int, default 500
-        Bootstrap resamples of the period probe's intervals.
     random_state : int
-        Seed of the period probe's folds and bootstrap (the change points use no randomness).
+        Seed of the period probe's folds and subsample (the change points use no randomness).
 
     Returns
     -------
@@ -623,7 +672,7 @@ def drift_check(data, *, fingerprints=None, unit: str = "auto", min_period_rows:
     if unit not in ("auto",) + tuple(u for u, _ in UNITS):
         raise ParameterError(f"unit must be 'auto' or one of {[u for u, _ in UNITS]}, got {unit!r}")
     for nm, val, lo in (("min_period_rows", min_period_rows, 1), ("min_periods", min_periods, 4),
-                        ("min_values", min_values, 2), ("min_segment", min_segment, 1), ("n_boot", n_boot, 10),
+                        ("min_values", min_values, 2), ("min_segment", min_segment, 1),
                         ("probe_max_rows", probe_max_rows, 100)):
         if not isinstance(val, (int, np.integer)) or isinstance(val, bool) or val < lo:
             raise ParameterError(f"{nm} must be an integer of at least {lo}, got {val!r}")
@@ -754,9 +803,13 @@ def drift_check(data, *, fingerprints=None, unit: str = "auto", min_period_rows:
                 continue
             bkps, _ = segment(Zn[r], alpha=alpha, min_segment=min_segment)
             bounds = [0] + bkps + [T]
+            # the series' own scan test (largest single split, Bonferroni over the splits) is valid
+            # whatever PELT chose; each change point's p-value is at least that
+            p_series = float(min(1.0, (T - 2 * min_segment + 1) * _st.chi2.sf(g1[r], 1)))
             for k, b in enumerate(bkps):
                 gain, p = local_pvalue(Zn[r], bounds[k], b, bounds[k + 2], min_segment)
-                cand.append({"series": i, "t": b, "a": bounds[k], "b": bounds[k + 2], "gain": gain, "p": p})
+                cand.append({"series": i, "t": b, "a": bounds[k], "b": bounds[k + 2], "gain": gain,
+                             "p": max(p, p_series)})
     pvals = np.array([c["p"] for c in cand] + [1.0] * max(0, n_series - len(cand)))
     padj = bh_adjust(pvals)[:len(cand)] if len(cand) else np.array([])
 
@@ -800,9 +853,9 @@ def drift_check(data, *, fingerprints=None, unit: str = "auto", min_period_rows:
         covering = [o for o in others.values() if o.get("covered")]
         changed = [o for o in covering if o.get("changed")]
         if covering and len(changed) == len(covering):
-            scope = "network"
-        elif changed:
-            scope = "several_sites"
+            scope = "network"  # every other site covering the date changed the same way (each p < 0.05)
+        elif any(o.get("own_change_point") or (o.get("p_value") or 1.0) < 0.05 / len(covering) for o in changed):
+            scope = "several_sites"  # some did (Bonferroni over the other sites)
         else:
             scope = "site"
         finding = bool(d["p_adj"] < alpha and d["practical"] and scope != "network")
@@ -814,16 +867,18 @@ def drift_check(data, *, fingerprints=None, unit: str = "auto", min_period_rows:
             noise=fitted[d["series"]]["noise"]))
     change_points.sort(key=lambda c: (c.p_adj, c.p_value, c.site, c.feature, c.aspect, c.artefact or "", c.date))
     network = _network_groups(change_points, alpha)
+    net_feats = sorted({c.feature for c in change_points if c.scope == "network" and c.p_adj < alpha})
     probes = tuple(_period_probes(table, idx_by_site={lab: np.flatnonzero((site_all == lab) & dated)
                                                       for lab in ctx}, num=num, t=t, alpha=alpha,
-                                  max_rows=probe_max_rows, n_boot=n_boot, seed=int(random_state))) if probe else ()
+                                  max_rows=probe_max_rows, seed=int(random_state),
+                                  left_out=net_feats)) if probe else ()
     top = _top_features(change_points, series, fitted, num)
     calibration = {
         "penalty": "chi-square(1) quantile at 1 - alpha / S for S admissible split points (Bonferroni over the "
                    "splits of a unit-variance series)",
         "alpha": float(alpha),
-        "noise": "each standardised series divided by max(1, median |difference of neighbouring periods| / "
-                 "(0.6745 sqrt 2))",
+        "noise": "each standardised series divided by max(1, root mean square difference of neighbouring "
+                 "periods (largest left out) / sqrt 2)",
         "family": f"Benjamini-Hochberg over {n_series} series searched",
         "penalty_by_periods": {str(T): _r(penalty(T, alpha=alpha, min_segment=min_segment))
                                for T in sorted({T for _, T in by_len})},
@@ -832,7 +887,7 @@ def drift_check(data, *, fingerprints=None, unit: str = "auto", min_period_rows:
               "min_values": int(min_values), "min_segment": int(min_segment), "alpha": float(alpha),
               "min_smd": float(min_smd), "min_sd_ratio": float(min_sd_ratio),
               "min_share_change": float(min_share_change), "probe_max_rows": int(probe_max_rows),
-              "n_boot": int(n_boot), "search": "ruptures.Pelt(model='l2', jump=1)"}
+              "search": "ruptures.Pelt(model='l2', jump=1)"}
     return DriftResult(time_column=tcol, sites=tuple(sites), change_points=tuple(change_points), network=network,
                        probes=probes, n_series=int(n_series), calibration=calibration, params=params,
                        time_notes=dict(getattr(table, "time_notes", {}) or {}), top_features=tuple(top))
@@ -987,15 +1042,16 @@ def _top_features(cps: Sequence[ChangePoint], series: List[_Series], fitted, num
     return out[:k]
 
 
-def _period_probes(table, *, idx_by_site, num, t, alpha, max_rows, n_boot, seed) -> List[PeriodProbe]:
-    """Per site: out-of-fold ridge scores for "later half" from covariates alone and from covariates
-    plus features; AUCs and the increment with paired stratified-bootstrap intervals."""
+def _period_probes(table, *, idx_by_site, num, t, alpha, max_rows, seed, left_out=()) -> List[PeriodProbe]:
+    """Per site: ridge scores for "later half" from covariates alone and from covariates plus features
+    (less ``left_out``, the features with a network-wide change), fitted on one half of the rows and
+    scored on the other; AUCs and the increment with DeLong intervals (the increment's also
+    Bonferroni-adjusted over the sites)."""
     from sklearn.linear_model import Ridge
-    from sklearn.model_selection import StratifiedKFold
-
-    from .stats import binary_auc, bootstrap_class_aucs, percentile_ci
+    from sklearn.model_selection import train_test_split
 
     frame = table.frame
+    num = [f for f in num if f not in left_out]
     covs = list(table.covariates)
     out: List[PeriodProbe] = []
     k_sites = max(1, len(idx_by_site))
@@ -1011,25 +1067,27 @@ def _period_probes(table, *, idx_by_site, num, t, alpha, max_rows, n_boot, seed)
         C = _design(frame.iloc[idx], covs, table)
         F = _design(frame.iloc[idx], list(num), table)
         full = np.hstack([C, F])
-        folds = StratifiedKFold(n_splits=3, shuffle=True, random_state=seed).split(np.zeros(len(y)), y)
-        p_full = np.zeros(len(y))
-        p_cov = np.full(len(y), 0.5)
-        for tr, te in folds:
-            p_full[te] = Ridge(alpha=1.0).fit(full[tr], y[tr]).predict(full[te])
-            if C.shape[1]:
-                p_cov[te] = Ridge(alpha=1.0).fit(C[tr], y[tr]).predict(C[te])
-        auc_f = binary_auc(y, p_full)
-        auc_c = binary_auc(y, p_cov) if C.shape[1] else 0.5
-        boot_f, boot_c = bootstrap_class_aucs(y, [np.column_stack([-p_full, p_full]), np.column_stack([-p_cov, p_cov])],
-                                              n_boot=n_boot, random_state=rng)
-        inc = boot_f[:, 1] - boot_c[:, 1]
-        ci_adj = percentile_ci(inc, alpha / k_sites)
+        # one split in halves: the models are fitted on one half and scored on the other, so that
+        # DeLong's variance applies to the held-out half as it stands (cross-fitted scores are not
+        # independent rows)
+        tr, te = train_test_split(np.arange(len(y)), test_size=0.5, stratify=y, random_state=seed)
+        p_full = Ridge(alpha=1.0).fit(full[tr], y[tr]).predict(full[te])
+        p_cov = Ridge(alpha=1.0).fit(C[tr], y[tr]).predict(C[te]) if C.shape[1] else np.full(len(te), 0.5)
+        y_te = y[te]
+        (auc_f, auc_c), cov = delong(y_te, [p_full, p_cov])
+        if not C.shape[1]:
+            auc_c, cov[1, :], cov[:, 1] = 0.5, 0.0, 0.0
+        z95, z_adj = _st.norm.isf(0.025), _st.norm.isf(alpha / (2 * k_sites))
+        se_f, se_c = math.sqrt(max(cov[0, 0], 0.0)), math.sqrt(max(cov[1, 1], 0.0))
+        se_d = math.sqrt(max(cov[0, 0] + cov[1, 1] - 2 * cov[0, 1], 0.0))
+        inc = auc_f - auc_c
+        ci_adj = [inc - z_adj * se_d, inc + z_adj * se_d]
         out.append(PeriodProbe(
-            site=lab, n=int(len(y)), split_date=f"{pd.Timestamp(split):%Y-%m-%d}", auc=auc_f,
-            auc_ci=list(percentile_ci(boot_f[:, 1])), covariate_auc=auc_c,
-            covariate_auc_ci=list(percentile_ci(boot_c[:, 1])) if C.shape[1] else [0.5, 0.5],
-            increment=auc_f - auc_c, increment_ci=list(percentile_ci(inc)), increment_ci_adjusted=list(ci_adj),
-            flagged=bool(ci_adj[0] > 0 and auc_f - auc_c >= 0.05)))
+            site=lab, n=int(len(te)), split_date=f"{pd.Timestamp(split):%Y-%m-%d}", auc=auc_f,
+            auc_ci=[max(0.0, auc_f - z95 * se_f), min(1.0, auc_f + z95 * se_f)], covariate_auc=auc_c,
+            covariate_auc_ci=[max(0.0, auc_c - z95 * se_c), min(1.0, auc_c + z95 * se_c)],
+            increment=inc, increment_ci=[inc - z95 * se_d, inc + z95 * se_d], increment_ci_adjusted=ci_adj,
+            left_out=tuple(left_out), flagged=bool(ci_adj[0] > 0 and inc >= 0.05)))
     return out
 
 
