@@ -18,7 +18,8 @@ variance, whatever the units, rounding or outliers:
 * spread: normal scores of the ranks of ``|x - period median|``, standardised the same way, so that
   ``sum z_t^2`` is the Fligner-Killeen statistic (Conover, Johnson & Johnson 1981);
 * missing and artefact shares: ``z_t = (k_t - n_t p) / sqrt(n_t p (1 - p))``, whose squares sum to
-  Pearson's chi-square of the 2 x T table.
+  Pearson's chi-square of the 2 x T table (searched only where the table meets Cochran's rule for
+  the chi-square approximation).
 
 Each standardised series is divided by an estimate of its own period-to-period noise (the root mean
 square difference of neighbouring periods over ``sqrt 2``, von Neumann 1941, leaving out the largest
@@ -71,6 +72,8 @@ Algina, J., Keselman, H. J. & Penfield, R. D. (2005). An alternative to Cohen's 
 difference effect size. Psychological Methods 10(3), 317-328.
 Newcombe, R. G. (1998). Interval estimation for the difference between independent proportions:
 comparison of eleven methods. Statistics in Medicine 17, 873-890.
+Cochran, W. G. (1954). Some methods for strengthening the common chi-square tests. Biometrics 10(4),
+417-451.
 Benjamini, Y. & Hochberg, Y. (1995). Controlling the false discovery rate. JRSS B 57(1), 289-300.
 DeLong, E. R., DeLong, D. M. & Clarke-Pearson, D. L. (1988). Comparing the areas under two or more
 correlated ROC curves: a nonparametric approach. Biometrics 44(3), 837-845.
@@ -268,13 +271,20 @@ def period_scores_spread(X: np.ndarray, starts: np.ndarray, medians: np.ndarray)
 
 def period_scores_share(k_t: np.ndarray, n_t: np.ndarray) -> np.ndarray:
     """Standardised count per period ``(k_t - n_t p) / sqrt(n_t p (1 - p))``; ``sum_t`` of squares is
-    Pearson's chi-square of the 2 x T table. Columns with p = 0 or 1 are NaN."""
+    Pearson's chi-square of the 2 x T table. Columns with p = 0 or 1 are NaN, and so are columns whose
+    table fails Cochran's rule for the chi-square approximation (every expected count at least 1, at
+    most 20% of them below 5; Cochran 1954): rare events in small periods are not searched."""
     k_t = np.asarray(k_t, float)
     n_t = np.asarray(n_t, float)
     with np.errstate(invalid="ignore", divide="ignore"):
         p = k_t.sum(axis=0) / n_t.sum(axis=0)
         Z = (k_t - n_t * p) / np.sqrt(n_t * p * (1 - p))
-    Z[:, ~((p > 0) & (p < 1))] = np.nan
+        used = n_t > 0
+        e = np.concatenate([n_t * p, n_t * (1 - p)], axis=0)
+        cells = np.concatenate([used, used], axis=0)
+        small = ((e < 5) & cells).sum(axis=0) / np.maximum(cells.sum(axis=0), 1)
+        tiny = ((e < 1) & cells).any(axis=0)
+    Z[:, ~((p > 0) & (p < 1)) | tiny | (small > 0.2)] = np.nan
     Z[n_t == 0] = np.nan
     return Z
 
