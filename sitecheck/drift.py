@@ -705,9 +705,25 @@ def drift_check(data, *, fingerprints=None, unit: str = "auto", min_period_rows:
     month_code[dated] = (t[dated].dt.year.to_numpy() * 12 + t[dated].dt.month.to_numpy() - 1).astype(np.int64)
     artefacts = {f: _artefacts_for(Xall[:, j], f, fingerprints) for j, f in enumerate(num)}
 
+    import warnings
+
     sites: List[SiteSeries] = []
     series: List[_Series] = []
     ctx: Dict[str, Dict[str, Any]] = {}
+    with warnings.catch_warnings():  # a feature never recorded at a site has all-NaN summaries there
+        warnings.simplefilter("ignore", RuntimeWarning)
+        _site_series(table, Xall, Mcat, num, cat, kinds, site_all, dated, month_code, artefacts, unit,
+                     min_period_rows, min_periods, min_values, sites, series, ctx)
+    return _search(table, t, Xall, num, site_all, dated, artefacts, sites, series, ctx, unit=unit,
+                   min_period_rows=min_period_rows, min_periods=min_periods, min_values=min_values,
+                   min_segment=min_segment, alpha=alpha, min_smd=min_smd, min_sd_ratio=min_sd_ratio,
+                   min_share_change=min_share_change, probe=probe, probe_max_rows=probe_max_rows,
+                   random_state=random_state)
+
+
+def _site_series(table, Xall, Mcat, num, cat, kinds, site_all, dated, month_code, artefacts, unit,
+                 min_period_rows, min_periods, min_values, sites, series, ctx) -> None:
+    """Periods and per-period summaries and standardised scores of every site (fills the lists)."""
     for lab in table.site_labels:
         idx = np.flatnonzero((site_all == lab) & dated)
         unit_s, reason = choose_unit(month_code[idx], min_period_rows=min_period_rows, min_periods=min_periods,
@@ -789,7 +805,13 @@ def drift_check(data, *, fingerprints=None, unit: str = "auto", min_period_rows:
         ctx[lab] = {"X": X, "Mc": Mc, "starts": starts, "counts": counts, "codes": uniq, "unit": unit_s,
                     "present": present, "n_pres": n_pres, "art_k": art_k}
 
-    # -- screen every series at once, then PELT where a change could be --------------------------
+
+
+def _search(table, t, Xall, num, site_all, dated, artefacts, sites, series, ctx, *, unit, min_period_rows,
+            min_periods, min_values, min_segment, alpha, min_smd, min_sd_ratio, min_share_change, probe,
+            probe_max_rows, random_state) -> DriftResult:
+    """Screen every series at once, run PELT where a change could be, describe and scope the changes."""
+    tcol = table.time
     cand: List[Dict[str, Any]] = []
     fitted: Dict[int, Dict[str, Any]] = {}
     by_len: Dict[Tuple[str, int], List[int]] = {}

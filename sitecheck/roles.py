@@ -413,7 +413,8 @@ def assign_roles(
             columns.append(make(name, "site", "categorical", "site column (given)", kept))
             continue
         if name == spec.time:
-            parsed, time_notes, time_warnings = parse_dates_by_site(frame[name], info, site, kept)
+            text = None if info.text is None else pd.Series(info.text[keep_mask], index=frame.index)
+            parsed, time_notes, time_warnings = parse_dates_by_site(frame[name], info, site, kept, text=text)
             frame[name] = parsed
             warnings.extend(time_warnings)
             columns.append(make(name, "time", "datetime", "time column (given); dates parsed per site"))
@@ -628,12 +629,16 @@ def _parse_text_dates(values: pd.Series) -> Tuple[pd.Series, str, bool]:
 
 
 def parse_dates_by_site(values: pd.Series, info: ColumnIntake, site: pd.Series,
-                        labels: Sequence[str]) -> Tuple[pd.Series, Dict[str, dict], List[str]]:
+                        labels: Sequence[str], *, text: Optional[pd.Series] = None
+                        ) -> Tuple[pd.Series, Dict[str, dict], List[str]]:
     """Parse and validate the time column, site by site.
 
-    A column that intake read as dates is checked per site; one left as text is
-    parsed per site in the format that reads most of that site's values (sites
-    may write dates differently); integers written as YYYYMMDD are read as dates.
+    Text (``text``, the column as written when intake read it as dates, or the
+    column itself when intake left it as text) is parsed per site in the format
+    that reads most of that site's values: sites may write dates differently,
+    and one format per site keeps 03/01 from being read as 3 January at one row
+    and 1 March at the next. Dates stored as dates (Parquet) are taken as they
+    are; integers written as YYYYMMDD are read as dates.
     Dates before 1901 or from 2100 are taken as placeholders. Rows without a
     usable date become NaT and are counted per site.
 
@@ -654,9 +659,11 @@ def parse_dates_by_site(values: pd.Series, info: ColumnIntake, site: pd.Series,
     out = pd.Series(pd.NaT, index=values.index, dtype="datetime64[ns]")
     formats: Dict[str, str] = {}
     warn: List[str] = []
-    if info.storage == "datetime":
+    if info.storage == "datetime" and text is not None:
+        values = text
+    if info.storage == "datetime" and text is None:
         out[:] = pd.to_datetime(values).astype("datetime64[ns]").to_numpy()
-        formats = {lab: "read as dates on input" for lab in labels}
+        formats = {lab: "stored as dates" for lab in labels}
     elif info.storage == "numeric":
         v = pd.to_numeric(values, errors="coerce")
         present = v.dropna()
