@@ -431,9 +431,10 @@ class ChangePoint:
 class SiteSeries:
     """One site's periods and per-feature summaries.
 
-    ``features`` maps a feature to ``{"median", "spread", "missing", "n", "level_sd", "artefacts"}``
-    lists over ``periods`` (None where a period has fewer than ``min_values`` values); ``level_sd``
-    is ``(median_t - site median) / site robust SD`` (for the heatmap).
+    ``features`` maps a feature to ``{"median", "spread", "q1", "q3", "missing", "n", "level_sd",
+    "artefacts"}`` lists over ``periods`` (None where a period has fewer than ``min_values`` values);
+    ``spread`` is the interquartile range ``q3 - q1``; ``level_sd`` is ``(median_t - site median) /
+    site robust SD`` (IQR / 1.349; for the heatmap).
     """
 
     site: str
@@ -522,7 +523,12 @@ class DriftResult:
                 "change_points": [c.to_dict() for c in self.change_points],
                 "network": self.network, "period_probe": [p.to_dict() for p in self.probes],
                 "sites": [s.to_dict() for s in self.sites], "top_features": list(self.top_features),
-                "calibration": self.calibration, "params": self.params, "time_notes": self.time_notes}
+                "calibration": self.calibration, "params": self.params,
+                "time_notes": {site: {"counts": {k: note[k] for k in ("rows", "dated", "without_date", "implausible")
+                                                 if k in note},
+                                      **{k: v for k, v in note.items()
+                                         if k not in ("rows", "dated", "without_date", "implausible")}}
+                               for site, note in self.time_notes.items()}}
 
 
 # ---------------------------------------------------------------------------------------- periods
@@ -776,6 +782,8 @@ def _site_series(table, Xall, Mcat, num, cat, kinds, site_all, dated, month_code
             fd = {"n": [int(v) for v in n_pres[:, j]],
                   "median": [_r(v, 5) if o else None for v, o in zip(med[:, j], ok)],
                   "spread": [_r(v, 5) if o else None for v, o in zip(q3[:, j] - q1[:, j], ok)],
+                  "q1": [_r(v, 5) if o else None for v, o in zip(q1[:, j], ok)],
+                  "q3": [_r(v, 5) if o else None for v, o in zip(q3[:, j], ok)],
                   "missing": [_r(v, 4) for v in miss_k[:, j] / counts],
                   "level_sd": [(_r((v - site_med[j]) / robust_sd[j], 4) if o and robust_sd[j] > 0 else None)
                                for v, o in zip(med[:, j], ok)],

@@ -195,4 +195,9 @@ def write_figures(result, out_dir: str, *, min_cell: int = 10, shareable: bool =
     maps = objects.get("maps")
     if maps is not None and getattr(maps, "coords", None):
         out["embedding"] = _embedding_figures(maps, out_dir, min_cell=min_cell, shareable=shareable)
+    drift = objects.get("drift")
+    if drift is not None and getattr(drift, "sites", None):
+        from .figures_drift import drift_figures
+
+        out["drift"] = drift_figures(drift, out_dir, min_cell=min_cell, shareable=shareable)
     return out

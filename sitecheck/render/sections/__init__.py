@@ -3,7 +3,7 @@
 ORDER lists them in the order a decision is made."""
 from importlib import import_module
 
-ORDER = ["probe", "leakage", "fingerprints", "maps", "harmonisation", "outcome"]  # module names inside this package, e.g. "probe", "leakage", ...
+ORDER = ["probe", "leakage", "fingerprints", "drift", "maps", "harmonisation", "outcome"]  # module names inside this package, e.g. "probe", "leakage", ...
 
 
 def modules():
