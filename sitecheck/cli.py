@@ -189,6 +189,12 @@ def summary_text(result, paths, failed=()) -> str:
     if probe:
         lines.append(f"site probe: AUC {probe['auc']:.3f} (95% CI {probe['auc_ci'][0]:.3f} to {probe['auc_ci'][1]:.3f}), "
                      f"p = {probe['p_value']:.3g}, verdict: {probe['verdict']}")
+    drift = doc.get("drift")
+    if isinstance(drift, dict):
+        found = drift.get("findings") or []
+        where = ", ".join(f"{c['feature']} at {c['site']} from {c['period']}" for c in found[:3])
+        lines.append(f"drift over time: {len(found)} change(s) at a site" + (f" ({where})" if where else "")
+                     + (f"; {len(drift.get('network') or [])} network-wide" if drift.get("network") else ""))
     for w in doc.get("warnings", [])[:5]:
         lines.append(f"warning: {w}")
     lines.append("report: " + ", ".join(paths[k] for k in ("report.html", "report.json", "findings.md") if k in paths))
