@@ -14,13 +14,14 @@ from typing import Any, Callable, Dict, Optional, Sequence
 import numpy as np
 import pandas as pd
 
-from . import __version__
-from .config import load_config
+from sitecheck import __version__
+from sitecheck._runtime import SINGLE_THREAD_BELOW, thread_limit
+from sitecheck.reading.config import load_config
 from .errors import InputError
-from .intake import RawTable, frame_to_raw, read_table
-from .prepare import Prepared, prepare
-from .result import ScanResult
-from .roles import RoleSpec, Table, assign_roles
+from sitecheck.reading.intake import RawTable, frame_to_raw, read_table
+from sitecheck.table.prepare import Prepared, prepare
+from sitecheck.report.result import ScanResult
+from sitecheck.table.roles import RoleSpec, Table, assign_roles
 
 Progress = Callable[[str], None]
 
@@ -84,16 +85,14 @@ def _run_specs(prep: Prepared, options: ScanOptions, names, objects: Dict[str, A
                say: Progress, timings: Dict[str, float], threads: Optional[int] = 1) -> Dict[str, Any]:
     """Run the named analyses in turn with native thread pools limited to ``threads``
     (None: no limit); fill ``objects``."""
-    from threadpoolctl import threadpool_limits
-
-    from . import analyses
+    from sitecheck.analyses import registry as analyses
 
     for spec in analyses.REGISTRY:
         if spec.name not in names:
             continue
         say(f"{spec.name}...")
         t0 = time.perf_counter()
-        with threadpool_limits(limits=threads):
+        with thread_limit(threads):
             objects[spec.name] = spec.run(prep, options, objects)
         timings[spec.name] = round(time.perf_counter() - t0, 3)
     return objects
@@ -107,7 +106,7 @@ def _side_lane(prep: Prepared, options: ScanOptions, names) -> tuple:
 
 
 #: Above this many rows the scan runs in one process (a second one would copy the table).
-PARALLEL_MAX_ROWS = 200_000
+PARALLEL_MAX_ROWS = SINGLE_THREAD_BELOW
 
 
 def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Progress] = None,
@@ -126,7 +125,7 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
     """
     import multiprocessing as mp
 
-    from . import analyses
+    from sitecheck.analyses import registry as analyses
 
     if getattr(mp.current_process(), "_inheriting", False):
         # This is the spawned second process re-running a script that scans at import time:

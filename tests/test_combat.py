@@ -7,7 +7,7 @@ import pandas as pd
 import pytest
 import statsmodels.api as sm
 
-from sitecheck.harmonise import (HarmonisationFit, apply_harmoniser, combat_estimates, fit_harmoniser, harmonise,
+from sitecheck.harmonise.methods import (HarmonisationFit, apply_harmoniser, combat_estimates, fit_harmoniser, harmonise,
                                  protected_design, standardise_fit, _standardised)
 
 LABELS = ("North Fen", "Quarry Hill", "Saltmarsh")  # invented sites
@@ -113,7 +113,7 @@ def test_adjusted_data_is_the_published_back_transform():
 
 def test_location_scale_effects_removed_and_probe_falls():
     # Ground-truth injection: only per-site location and scale effects.
-    from sitecheck.probe import probe_matrix
+    from sitecheck.analyses.probe import probe_matrix
 
     rng = np.random.default_rng(4)
     n, p = 2400, 6

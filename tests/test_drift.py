@@ -10,12 +10,12 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from sitecheck import drift as D
+from sitecheck.analyses import drift as D
 from sitecheck.demo import generate_demo
 from sitecheck.errors import InputError, ParameterError
-from sitecheck.fingerprints import find_fingerprints
-from sitecheck.intake import frame_to_raw
-from sitecheck.roles import RoleSpec, assign_roles
+from sitecheck.analyses.fingerprints import find_fingerprints
+from sitecheck.reading.intake import frame_to_raw
+from sitecheck.table.roles import RoleSpec, assign_roles
 
 DEMO_SPEC = RoleSpec(site="hospital", outcome="admitted_hdu", covariates=("age", "sex"),
                      identifiers=("attendance_id",), time="arrival_date")
@@ -228,7 +228,7 @@ def test_demo_recalibration_recovered_at_the_right_site_and_month(demo_drift, de
 
 def test_demo_period_unit_coarsens_on_the_small_fixture(demo_table, demo_small_path):
     # 1,200 rows: 240-360 per site over 24 months, fewer than 30 a month -> quarters, and the unit is reported
-    from sitecheck.intake import read_table
+    from sitecheck.reading.intake import read_table
 
     table = assign_roles(read_table(demo_small_path), DEMO_SPEC)
     r = D.drift_check(table, probe=False)
@@ -361,7 +361,7 @@ def test_unparseable_dates_at_one_site_name_the_site():
 
 
 def test_without_the_time_role_the_scan_has_no_drift_section(demo_small_path):
-    from sitecheck.analyses import REGISTRY
+    from sitecheck.analyses.registry import REGISTRY
     from sitecheck.scan import ScanOptions, scan_file
 
     opts = ScanOptions(analyses=("fingerprints", "drift"), n_jobs=1)
@@ -372,7 +372,7 @@ def test_without_the_time_role_the_scan_has_no_drift_section(demo_small_path):
     doc = with_time.to_dict()
     assert doc["input"]["time_column"] == "arrival_date" and doc["drift"]["time_column"] == "arrival_date"
     assert [a.name for a in REGISTRY if a.name == "drift"][0] == "drift"
-    from sitecheck.schema import report_schema, validate
+    from sitecheck.report.schema import report_schema, validate
 
     assert validate(doc, report_schema()) == []
     assert without.to_dict()["fingerprints"] == doc["fingerprints"]  # the other sections are unchanged

@@ -8,10 +8,10 @@ from scipy import stats
 
 from sitecheck.demo import GLUCOSE_MGDL_PER_MMOLL, generate_demo
 from sitecheck.errors import InputError, ParameterError
-from sitecheck.fingerprints import (KINDS, adjust_for_covariates, detect_exclusive_levels, detect_site_missing,
+from sitecheck.analyses.fingerprints import (KINDS, adjust_for_covariates, detect_exclusive_levels, detect_site_missing,
                                     find_fingerprints, grid_step, median_ci)
-from sitecheck.intake import frame_to_raw
-from sitecheck.roles import RoleSpec, assign_roles
+from sitecheck.reading.intake import frame_to_raw
+from sitecheck.table.roles import RoleSpec, assign_roles
 
 
 def _demo(n, seed, null=False):
@@ -228,7 +228,7 @@ def test_bad_inputs_name_the_column(demo_table):
 
 
 def test_scan_fills_the_fingerprints_section_and_renders(demo_table):
-    from sitecheck import analyses
+    from sitecheck.analyses import registry as analyses
     from sitecheck.render.sections import ORDER, fingerprints as section
     from sitecheck.scan import ScanOptions, scan_table
 
@@ -241,7 +241,7 @@ def test_scan_fills_the_fingerprints_section_and_renders(demo_table):
     assert {f["kind"] for f in doc["fingerprints"]} >= {"unit_ratio", "missing_code", "site_missing"}
     for f in doc["fingerprints"]:
         assert set(f) >= {"feature", "site", "kind", "detail", "evidence"}
-    from sitecheck.schema import report_schema, validate
+    from sitecheck.report.schema import report_schema, validate
 
     assert validate(doc, report_schema()) == []
     md = section.markdown(doc, 10)
@@ -269,7 +269,7 @@ def test_render_escapes_data_text_and_withholds_small_cells():
 
 
 def test_welch_and_brown_forsythe_match_scipy():
-    from sitecheck.fingerprints import brown_forsythe, welch_test
+    from sitecheck.analyses.fingerprints import brown_forsythe, welch_test
 
     rng = np.random.default_rng(8)
     a, b = rng.normal(0.3, 1.0, 140), rng.normal(0.0, 2.0, 260)

@@ -8,7 +8,7 @@ from click.testing import CliRunner
 
 from sitecheck.cli import main
 from sitecheck.errors import InputError
-from sitecheck.harmonise import (METHODS, HarmonisationFit, apply_harmoniser, check_confounding, diagnose,
+from sitecheck.harmonise.methods import (METHODS, HarmonisationFit, apply_harmoniser, check_confounding, diagnose,
                                  fit_harmoniser, harmonisation_check, harmonise, protected_design, surviving_gaps)
 
 LABELS = ("Ashgrove", "Brindle Cross", "Corran Vale", "Dunmere")  # invented sites
@@ -291,9 +291,9 @@ def test_report_section_escapes_data_text_and_suppresses_small_counts():
 
 
 def _prepared(frame, **roles):
-    from sitecheck.intake import frame_to_raw
-    from sitecheck.prepare import prepare
-    from sitecheck.roles import RoleSpec, assign_roles
+    from sitecheck.reading.intake import frame_to_raw
+    from sitecheck.table.prepare import prepare
+    from sitecheck.table.roles import RoleSpec, assign_roles
 
     return prepare(assign_roles(frame_to_raw(frame), RoleSpec(**roles)), random_state=0)
 
@@ -322,12 +322,12 @@ def test_over_correction_shows_in_the_outcome_auc():
 
 def test_outcome_auc_cv_matches_sklearn_on_out_of_fold_scores():
     # Reference: sklearn.metrics.roc_auc_score of the same out-of-fold predictions,
-    # refitted here with sklearn's LogisticRegression pipeline from sitecheck.models.
+    # refitted here with sklearn's LogisticRegression pipeline from sitecheck.analyses.models.
     from sklearn.metrics import roc_auc_score
     from sklearn.model_selection import StratifiedKFold
 
-    from sitecheck.harmonise import outcome_auc_cv
-    from sitecheck.models import make_linear
+    from sitecheck.harmonise.methods import outcome_auc_cv
+    from sitecheck.analyses.models import make_linear
 
     rng = np.random.default_rng(10)
     n = 600
@@ -347,7 +347,7 @@ def test_scan_fills_report_harmonisation_and_renders():
     from sitecheck.render.html import render_html
     from sitecheck.render.markdown import render_markdown
     from sitecheck.scan import ScanOptions, scan_frame
-    from sitecheck.schema import report_schema, validate
+    from sitecheck.report.schema import report_schema, validate
 
     rng = np.random.default_rng(11)
     n = 800

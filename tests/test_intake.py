@@ -5,7 +5,7 @@ import pandas as pd
 import pytest
 
 from sitecheck.errors import InputError
-from sitecheck.intake import read_table
+from sitecheck.reading.intake import read_table
 
 from .conftest import write
 

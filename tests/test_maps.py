@@ -9,7 +9,7 @@ import pytest
 from scipy.optimize import brentq
 
 from sitecheck.errors import InputError
-from sitecheck.maps import compute_maps, embed, expected_random, kernel_weights, lisi, summarise_lisi
+from sitecheck.analyses.maps import compute_maps, embed, expected_random, kernel_weights, lisi, summarise_lisi
 
 
 # ----------------------------------------------------------------- LISI, published definition
@@ -134,7 +134,7 @@ def test_compute_maps_contract_and_determinism(maps_demo, demo_prepared):
     assert d["mixing"]["features"]["overall"]["normalised"] < 0.8
     # sklearn's silhouette_score on the same design and labels gives the same mean (reference library)
     from sklearn.metrics import silhouette_score
-    from sitecheck.maps import preprocess
+    from sitecheck.analyses.maps import preprocess
 
     idx = np.searchsorted(demo_prepared.rows, maps_demo.rows)
     Z = preprocess(demo_prepared.X[idx], demo_prepared.features.categorical)
@@ -235,7 +235,7 @@ def test_palette_fallback_distinct_pairs():
 
 def test_maps_computed_apart_and_merged_equal_maps_computed_together(demo_prepared):
     # Consistency: the scan computes t-SNE apart from PCA and UMAP (two processes) and merges.
-    from sitecheck.maps import compute_maps, merge_maps
+    from sitecheck.analyses.maps import compute_maps, merge_maps
 
     kw = dict(max_rows=600, n_boot=50, tsne_max_iter=250, umap_n_epochs=50, random_state=3)
     together = compute_maps(demo_prepared, **kw)

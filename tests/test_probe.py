@@ -1,4 +1,4 @@
-"""Tests of the site probe (sitecheck.probe) and its report sections."""
+"""Tests of the site probe (sitecheck.analyses.probe) and its report sections."""
 import json
 
 import numpy as np
@@ -7,11 +7,11 @@ import pytest
 from sklearn.metrics import balanced_accuracy_score, confusion_matrix, roc_auc_score
 
 from sitecheck.errors import InputError
-from sitecheck.intake import frame_to_raw
-from sitecheck.prepare import prepare
-from sitecheck.probe import cross_fit, probe_matrix, site_probe, verdict
-from sitecheck.result import to_jsonable
-from sitecheck.roles import RoleSpec, assign_roles
+from sitecheck.reading.intake import frame_to_raw
+from sitecheck.table.prepare import prepare
+from sitecheck.analyses.probe import cross_fit, probe_matrix, site_probe, verdict
+from sitecheck.report.result import to_jsonable
+from sitecheck.table.roles import RoleSpec, assign_roles
 
 CONTRACT = {"auc", "auc_ci", "p_value", "balanced_accuracy", "per_site", "n_used", "folds", "model", "verdict",
             "linear", "case_mix", "within_outcome"}

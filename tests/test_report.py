@@ -13,7 +13,7 @@ from click.testing import CliRunner
 
 from sitecheck.cli import main
 from sitecheck.render.safety import csv_cell, shareable_document, suppress_count
-from sitecheck.schema import report_schema, validate
+from sitecheck.report.schema import report_schema, validate
 
 EVIL_SITES = ["<script>alert(1)</script>", "../x", "=HYPERLINK(\"http://e\")", "O'Brien \"Ward\""]
 EVIL_COLS = ["<img src=x onerror=alert(1)>", "=1+1", "+sum(A1)", "@cmd", "-2+3", "a/b\\c", "sodium"]

@@ -2,10 +2,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from sitecheck.config import load_config
+from sitecheck.reading.config import load_config
 from sitecheck.errors import InputError
-from sitecheck.intake import frame_to_raw, read_table
-from sitecheck.roles import RoleSpec, assign_roles, identifier_name_match
+from sitecheck.reading.intake import frame_to_raw, read_table
+from sitecheck.table.roles import RoleSpec, assign_roles, identifier_name_match
 from sitecheck.scan import build_table
 
 from .conftest import write

@@ -1,10 +1,10 @@
-"""Tests of sitecheck.stats against reference libraries and published definitions."""
+"""Tests of sitecheck.analyses.stats against reference libraries and published definitions."""
 import numpy as np
 import pytest
 from scipy import stats as st
 from sklearn.metrics import roc_auc_score
 
-from sitecheck import stats
+from sitecheck.analyses import stats
 from sitecheck.errors import InputError
 
 
@@ -137,3 +137,14 @@ def test_errors():
         stats.macro_ovr_auc([0, 1, 2], np.ones((2, 3)))
     with pytest.raises(InputError):
         stats.bootstrap_auc_ci([0, 1, 1, 0], np.ones((4, 2)) / 2, random_state=None)
+
+
+def test_bh_keeps_missing_pvalues_missing():
+    # reference: statsmodels' multipletests(method="fdr_bh") on the non-missing p-values
+    from statsmodels.stats.multitest import multipletests
+
+    p = np.array([0.01, np.nan, 0.04, 0.03, np.nan, 0.2])
+    got = stats.bh_adjust(p)
+    assert np.isnan(got[[1, 4]]).all()
+    ok = ~np.isnan(p)
+    np.testing.assert_allclose(got[ok], multipletests(p[ok], method="fdr_bh")[1], atol=1e-12)

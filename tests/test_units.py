@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 import scipy.constants
 
-from sitecheck.units import (CONVERSIONS, TEMPERATURE, candidate_factors, conversions_for, convert,
+from sitecheck.table.units import (CONVERSIONS, TEMPERATURE, candidate_factors, conversions_for, convert,
                              is_temperature, normalise_name)
 
 # Published factors (conventional unit x factor = SI unit) from the SI conversion table of the

@@ -21,8 +21,8 @@ GOAL_SECONDS = 15.0
 
 
 def make_table(n_rows: int = 100_000, n_features: int = 50, n_sites: int = 4, months: int = 24, seed: int = 0):
-    from sitecheck.intake import frame_to_raw
-    from sitecheck.roles import RoleSpec, assign_roles
+    from sitecheck.reading.intake import frame_to_raw
+    from sitecheck.table.roles import RoleSpec, assign_roles
 
     rng = np.random.default_rng(seed)
     sites = np.array([f"Site-{chr(65 + i)}" for i in range(n_sites)], dtype=object)
@@ -53,8 +53,8 @@ def make_table(n_rows: int = 100_000, n_features: int = 50, n_sites: int = 4, mo
 def main(argv=None) -> int:
     from threadpoolctl import threadpool_limits
 
-    from sitecheck.drift import drift_check
-    from sitecheck.fingerprints import find_fingerprints
+    from sitecheck.analyses.drift import drift_check
+    from sitecheck.analyses.fingerprints import find_fingerprints
 
     ap = argparse.ArgumentParser()
     ap.add_argument("--rows", type=int, default=100_000)

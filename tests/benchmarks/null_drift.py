@@ -21,11 +21,11 @@ import pandas as pd
 
 
 def main(argv=None) -> int:
-    from sitecheck import drift as D
+    from sitecheck.analyses import drift as D
     from sitecheck.demo import generate_demo
-    from sitecheck.fingerprints import find_fingerprints
-    from sitecheck.intake import frame_to_raw
-    from sitecheck.roles import RoleSpec, assign_roles
+    from sitecheck.analyses.fingerprints import find_fingerprints
+    from sitecheck.reading.intake import frame_to_raw
+    from sitecheck.table.roles import RoleSpec, assign_roles
 
     ap = argparse.ArgumentParser()
     ap.add_argument("--gaussian", type=int, default=4000)

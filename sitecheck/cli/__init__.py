@@ -9,8 +9,8 @@ from typing import Optional
 
 import click
 
-from . import __version__
-from .errors import InputError
+from sitecheck import __version__
+from sitecheck.errors import InputError
 
 EXIT_OK, EXIT_GATE, EXIT_INPUT, EXIT_INTERNAL = 0, 1, 2, 3
 
@@ -99,7 +99,7 @@ def _common_scan_options(f):
 
 
 def _options_from(cfg_options: dict, **flags):
-    from .scan import ScanOptions
+    from sitecheck.scan import ScanOptions
 
     base = ScanOptions()
     kw = {}
@@ -114,11 +114,11 @@ def _options_from(cfg_options: dict, **flags):
 
 def _run_scan(data, *, site, outcome, covariates, groups, identifiers, excluded, config, sep, encoding,
               out_dir, quiet, shareable=False, fail_above=None, fail_on=(), time=None, **flags):
-    from .intake import read_table
-    from .render import write_report
-    from .roles import RoleSpec
-    from .scan import build_table, scan_table
-    from .config import load_config
+    from sitecheck.reading.intake import read_table
+    from sitecheck.render import write_report
+    from sitecheck.table.roles import RoleSpec
+    from sitecheck.scan import build_table, scan_table
+    from sitecheck.reading.config import load_config
 
     progress = Progress(quiet)
     t = lambda v: tuple(v) if v else None  # noqa: E731
@@ -219,7 +219,7 @@ def scan_cmd(data, **kw):
 @click.option("--quiet", "-q", is_flag=True, help="No progress messages on stderr.")
 def demo_cmd(out_dir, rows, seed, quiet):
     """Write the invented four-hospital demo table into --out and scan it."""
-    from .demo import DEMO_ROLES, write_demo
+    from sitecheck.demo import DEMO_ROLES, write_demo
 
     paths = write_demo(out_dir, n_rows=rows, seed=seed)
     if not quiet:
@@ -237,12 +237,12 @@ def schema_cmd():
     """Print the JSON Schema of report.json (versioned)."""
     import json
 
-    from .schema import report_schema
+    from sitecheck.report.schema import report_schema
 
     click.echo(json.dumps(report_schema(), indent=2))
 
 
-from .commands_harmonise import harmonise_cmd  # noqa: E402  (issue 6: the harmonise command)
+from sitecheck.cli.harmonise import harmonise_cmd  # noqa: E402  (issue 6: the harmonise command)
 
 main.add_command(harmonise_cmd)
 

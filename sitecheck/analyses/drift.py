@@ -81,8 +81,8 @@ correlated ROC curves: a nonparametric approach. Biometrics 44(3), 837-845.
 Examples
 --------
 >>> from sitecheck.demo import generate_demo
->>> from sitecheck.intake import frame_to_raw
->>> from sitecheck.roles import RoleSpec, assign_roles
+>>> from sitecheck.reading.intake import frame_to_raw
+>>> from sitecheck.table.roles import RoleSpec, assign_roles
 >>> d = generate_demo(6000, seed=7)
 >>> table = assign_roles(frame_to_raw(d.frame), RoleSpec(site="hospital", time="arrival_date",
 ...                      covariates=("age", "sex"), identifiers=("attendance_id",), outcome="admitted_hdu"))
@@ -100,7 +100,9 @@ import numpy as np
 import pandas as pd
 from scipy import stats as _st
 
-from .errors import ParameterError
+from sitecheck._runtime import stream
+from sitecheck.errors import ParameterError
+
 from .stats import bh_adjust, wilson_ci
 
 #: Period units, finest first, with their length in months.
@@ -582,7 +584,7 @@ def _on_grid(X: np.ndarray, step: float) -> np.ndarray:
 def _artefacts_for(values: np.ndarray, feature: str, fingerprints) -> List[Tuple[str, str, float]]:
     """(key, label, value) of the artefacts whose share is followed for one feature: two coarser
     grids than the feature's finest common one, and each fingerprint's code, limit or grid."""
-    from .fingerprints import grid_step
+    from sitecheck.analyses.fingerprints import grid_step
 
     out: List[Tuple[str, str, float]] = []
     v = values[~np.isnan(values)]
@@ -1096,7 +1098,7 @@ def _period_probes(table, *, idx_by_site, num, t, alpha, max_rows, seed, left_ou
     out: List[PeriodProbe] = []
     k_sites = max(1, len(idx_by_site))
     for s_i, (lab, idx) in enumerate(sorted(idx_by_site.items())):
-        rng = np.random.default_rng([seed, 4242, s_i])
+        rng = stream(seed, "drift.probe", s_i)
         if len(idx) > max_rows:
             idx = np.sort(rng.choice(idx, size=max_rows, replace=False))
         tt = t.to_numpy()[idx]
@@ -1110,7 +1112,8 @@ def _period_probes(table, *, idx_by_site, num, t, alpha, max_rows, seed, left_ou
         # one split in halves: the models are fitted on one half and scored on the other, so that
         # DeLong's variance applies to the held-out half as it stands (cross-fitted scores are not
         # independent rows)
-        tr, te = train_test_split(np.arange(len(y)), test_size=0.5, stratify=y, random_state=seed)
+        tr, te = train_test_split(np.arange(len(y)), test_size=0.5, stratify=y,
+                                  random_state=int(rng.integers(2 ** 31 - 1)))
         p_full = Ridge(alpha=1.0).fit(full[tr], y[tr]).predict(full[te])
         p_cov = Ridge(alpha=1.0).fit(C[tr], y[tr]).predict(C[te]) if C.shape[1] else np.full(len(te), 0.5)
         y_te = y[te]

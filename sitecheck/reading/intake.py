@@ -21,7 +21,7 @@ from typing import Dict, List, Optional, Tuple
 import numpy as np
 import pandas as pd
 
-from .errors import InputError
+from sitecheck.errors import InputError
 
 #: Text read as missing, compared after stripping white space. Matching is
 #: case-insensitive for the alphabetic codes.

@@ -1,7 +1,7 @@
 """The ``sitecheck harmonise`` command: fit a harmonisation on a table (or apply
 saved parameters to new rows of known sites) and write the harmonised table.
 
-Thin layer over :mod:`sitecheck.harmonise`: read, choose columns, call the
+Thin layer over :mod:`sitecheck.harmonise.methods`: read, choose columns, call the
 library, write files atomically, print a summary. Errors the user can fix
 raise :class:`~sitecheck.errors.InputError` (exit code 2, one line).
 """
@@ -16,19 +16,16 @@ import click
 import numpy as np
 import pandas as pd
 
-from .errors import InputError
+from sitecheck.errors import InputError
 
 #: Extra keys of the parameters file written by the command (beside the fit's own).
 FILE_KEYS = ("site_column", "input_sha256", "rows_fitted", "left_unchanged")
 
 
 def _site_label(v) -> Optional[str]:
-    # Same normalisation as sitecheck.roles (integral floats read as integers).
-    if v is None or (isinstance(v, float) and np.isnan(v)) or v is pd.NaT:
-        return None
-    if isinstance(v, float) and float(v).is_integer():
-        return str(int(v))
-    return str(v)
+    from sitecheck.table.roles import value_label
+
+    return value_label(v)
 
 
 def _site_codes(frame: pd.DataFrame, site_col: str, labels: Sequence[str], *, fitted: bool) -> Tuple[np.ndarray, np.ndarray]:
@@ -58,7 +55,7 @@ def _numeric_matrix(frame: pd.DataFrame, names: Sequence[str], raw) -> np.ndarra
 def _choose_columns(raw, site: str, protect: Sequence[str], identifiers: Sequence[str],
                     excluded: Sequence[str], outcome: Optional[str]):
     """Numeric feature columns to harmonise, and the others left unchanged with why."""
-    from .roles import RoleSpec, assign_roles
+    from sitecheck.table.roles import RoleSpec, assign_roles
 
     spec = RoleSpec(site=site, covariates=tuple(protect) or None, identifiers=tuple(identifiers) or None,
                     excluded=tuple(excluded) or None, outcome=outcome)
@@ -97,7 +94,7 @@ def _publish(path: str) -> str:
 
 
 def _write_table(frame: pd.DataFrame, path: str, fmt: str, sep: Optional[str]) -> str:
-    from .render.safety import atomic_write
+    from sitecheck.render.safety import atomic_write
 
     if fmt == "parquet":
         buf = io.BytesIO()
@@ -124,9 +121,9 @@ def run_harmonise(data: str, *, site: Optional[str], method: Optional[str], prot
                   excluded: Sequence[str] = (), outcome: Optional[str] = None, sep: Optional[str] = None,
                   encoding: str = "utf-8") -> Dict[str, object]:
     """Library entry of the command; returns a summary dict (paths, counts, warnings)."""
-    from .harmonise import (HarmonisationFit, _prevalence_warning, apply_harmoniser, fit_harmoniser,
+    from sitecheck.harmonise.methods import (HarmonisationFit, _prevalence_warning, apply_harmoniser, fit_harmoniser,
                             protected_design)
-    from .intake import detect_format, read_table
+    from sitecheck.reading.intake import detect_format, read_table
 
     if _same_file(data, out):
         raise InputError("--out must not be the input file; the input is never overwritten")
@@ -199,7 +196,7 @@ def run_harmonise(data: str, *, site: Optional[str], method: Optional[str], prot
         doc = fit.to_dict()
         doc.update({"site_column": site, "input_sha256": raw.sha256, "rows_fitted": int(has.sum()),
                     "left_unchanged": left})
-        from .render.safety import atomic_write
+        from sitecheck.render.safety import atomic_write
 
         written_params = _publish(atomic_write(
             os.path.dirname(os.path.abspath(params_path)), os.path.basename(params_path),

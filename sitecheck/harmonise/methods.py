@@ -53,7 +53,7 @@ from typing import Any, Dict, List, Optional, Sequence, Tuple
 import numpy as np
 import pandas as pd
 
-from .errors import InputError, ParameterError
+from sitecheck.errors import InputError, ParameterError
 
 METHODS = ("centre", "scale", "quantile", "combat")
 
@@ -985,7 +985,7 @@ def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, n
     """
     from scipy.stats import chi2_contingency
 
-    from .stats import bh_adjust
+    from sitecheck.analyses.stats import bh_adjust
 
     k = len(site_labels)
     p = X_raw.shape[1]
@@ -1202,13 +1202,13 @@ def outcome_auc_cv(X: np.ndarray, y: np.ndarray, site: np.ndarray, cat: np.ndarr
     applied to its held-out rows, whose outcome columns in the protected
     design are set to the training mean (a deployed model does not know the
     outcome), so the AUC is not inflated by protecting the outcome. The model
-    is the probe's (:mod:`sitecheck.probe`), fitted per fold with the same
+    is the probe's (:mod:`sitecheck.analyses.probe`), fitted per fold with the same
     seeds. Returns ``(auc, (lo, hi), n)`` with a stratified-bootstrap interval.
     """
     from threadpoolctl import threadpool_limits
 
-    from . import stats
-    from .probe import _estimator, _threads
+    from sitecheck.analyses import stats
+    from sitecheck.analyses.probe import _estimator, _threads
 
     y = np.asarray(y).astype(np.int64)
     score = np.full(len(y), np.nan)
@@ -1241,7 +1241,7 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
     """Harmonise the scan's features with each method and check what is left.
 
     For each method, on the scan's modelling rows: the site probe again
-    (:func:`sitecheck.probe.probe_matrix` on the harmonised features, the
+    (:func:`sitecheck.analyses.probe.probe_matrix` on the harmonised features, the
     scan's folds), the features whose gap survives (:func:`surviving_gaps`),
     and the outcome's cross-validated AUC from the features before and after
     harmonisation on the same folds (over-correction shows as a drop).
@@ -1285,8 +1285,8 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
     ----------
     Johnson, W. E., Li, C. and Rabinovic, A. (2007). Biostatistics 8(1), 118-127.
     """
-    from .prepare import stratified_subsample
-    from .probe import make_folds, probe_matrix
+    from sitecheck.table.prepare import stratified_subsample
+    from sitecheck.analyses.probe import make_folds, probe_matrix
 
     if not isinstance(n_splits, (int, np.integer)) or n_splits < 2:
         raise ParameterError(f"n_splits must be an integer of at least 2, got {n_splits!r}")

@@ -10,8 +10,8 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover
     import tomli as tomllib
 
-from .errors import InputError
-from .roles import RoleSpec
+from sitecheck.errors import InputError
+from sitecheck.table.roles import RoleSpec
 
 _ROLE_KEYS = {"site", "outcome", "time", "covariates", "groups", "identifiers", "excluded", "features", "panels"}
 _OPTION_KEYS = {"seed", "min_site_rows", "min_cell", "folds", "max_rows", "map_rows", "sep", "encoding",
