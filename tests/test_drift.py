@@ -423,3 +423,22 @@ def test_bad_dates_exit_2_with_one_line(tmp_path, monkeypatch):
     r = _cli(["scan", str(p), "--config", str(cfg), "--out", str(tmp_path / "o"), "-q"], monkeypatch)
     assert r.exit_code == 2 and "'time' must be a column name" in r.output
     assert not (tmp_path / "o").exists()
+
+
+def test_report_section_escapes_data_text_and_suppresses_small_counts():
+    from sitecheck.render.safety import shareable_document
+    from sitecheck.render.sections import drift as section
+
+    frame = _invented(n=6000, site_shift=True).source.frame.rename(columns={"sodium": "<b>sodium</b>"})
+    table = assign_roles(frame_to_raw(frame), RoleSpec(site="site", covariates=("age",), time="visit"))
+    r = D.drift_check(table, random_state=0)
+    (f,) = [c for c in r.findings if c.aspect == "level"]
+    assert f.feature == "<b>sodium</b>"
+    doc = {"drift": r.to_dict()}
+    doc["drift"]["findings"][0]["before"]["n"] = 7  # a count below the small-cell threshold
+    shared = shareable_document(doc, min_cell=10)
+    html = section.html(shared, 10)
+    assert "&lt;b&gt;sodium&lt;/b&gt;" in html and "<b>sodium" not in html
+    assert "&lt;10 / " in html  # the suppressed count, escaped
+    md = section.markdown(shared, 10)
+    assert "\\<b\\>sodium" in md and "East" in md
