@@ -382,11 +382,15 @@ def _cli(args, monkeypatch):
     from click.testing import CliRunner
 
     from sitecheck import cli
+    from sitecheck.reading import config
 
-    original = cli._options_from
-    # the CLI path as it stands, with the scan limited to the analyses this test is about
-    monkeypatch.setattr(cli, "_options_from",
-                        lambda cfg, **kw: replace(original(cfg, **kw), analyses=("fingerprints", "drift"), n_jobs=1))
+    original = config.resolve_config
+
+    def limited(*a, **kw):  # the CLI path as it stands, with the scan limited to the analyses tested here
+        run = original(*a, **kw)
+        return replace(run, options=replace(run.options, analyses=("fingerprints", "drift"), n_jobs=1))
+
+    monkeypatch.setattr(config, "resolve_config", limited)
     return CliRunner().invoke(cli.main, args)
 
 

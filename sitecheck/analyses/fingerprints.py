@@ -46,8 +46,7 @@ from sitecheck.report.result import to_jsonable as _jsonable
 from sitecheck.errors import InputError, ParameterError
 from sitecheck.table.units import TEMPERATURE, candidate_factors, conversions_for, is_temperature
 
-KINDS = ("unit_ratio", "precision", "heaping", "floor", "ceiling", "missing_code", "site_missing",
-         "exclusive_level", "shift", "scale")
+from sitecheck.report.gates import FINGERPRINT_KINDS as KINDS  # noqa: E402  (the one list of kinds)
 
 #: Candidate recording steps, coarsest last.
 GRID_STEPS = (0.001, 0.002, 0.005, 0.01, 0.02, 0.025, 0.05, 0.1, 0.2, 0.25, 0.5, 1.0, 2.0, 5.0, 10.0,

@@ -653,7 +653,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
                   max_iter, min_rate_count, n_permutations, random_state) -> OutcomeRisk:
     name = prep.table.outcome or "outcome"
     if prep.outcome is None:
-        raise InputError("the outcome analysis needs an outcome column (--outcome)")
+        raise InputError("the outcome analysis needs an outcome column; none was given")
     if threshold is not None:
         if not isinstance(threshold, (int, float)) or not (0.0 < float(threshold) < 1.0):
             raise InputError(f"threshold must be a number strictly between 0 and 1, got {threshold!r}")
@@ -733,7 +733,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
     if threshold is None:
         thr, rule = youden_threshold(y, oof), "pooled Youden point of the out-of-fold predictions"
     else:
-        thr, rule = float(threshold), "given (--threshold)"
+        thr, rule = float(threshold), "given (threshold option)"
     pred = (oof >= thr).astype(float)
 
     # per-group units (levels coded 0..L-1, missing -1)

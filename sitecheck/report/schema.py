@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from typing import Any, Dict
 
+from sitecheck.report.gates import FINGERPRINT_KINDS
 from sitecheck.report.result import SCHEMA_VERSION
 
 NUM = {"type": ["number", "null"]}
@@ -40,8 +41,7 @@ def report_schema() -> Dict[str, Any]:
                        "missing_by_site": {"type": "object"}},
                       ["feature", "score", "score_ci", "rank", "cluster", "univariate", "missing_by_site"])
     fingerprint = _obj({"feature": {"type": "string"}, "site": {"type": ["string", "null"]},
-                        "kind": {"enum": ["unit_ratio", "precision", "heaping", "floor", "ceiling", "missing_code",
-                                          "site_missing", "exclusive_level", "shift", "scale"]},
+                        "kind": {"enum": list(FINGERPRINT_KINDS)},
                         "detail": {"type": "string"}, "evidence": {"type": "object"}},
                        ["feature", "site", "kind", "detail", "evidence"])
     embedding = _obj({"n_used": COUNT, "methods": {"type": "array"}, "mixing": {"type": "object"},

@@ -355,7 +355,8 @@ def assign_roles(
     frame = raw.frame
     names = list(frame.columns)
     if not spec.site:
-        raise InputError("no site column given; pass --site COLUMN or set site in the config file")
+        raise InputError("no site column given; name the column that holds the site (site in the config file)",
+                         option="site")
     if spec.site not in names:
         raise InputError(f"site column {spec.site!r} not found in the table{_closest(spec.site, names)}")
     covs = tuple(spec.covariates or ())
@@ -401,7 +402,7 @@ def assign_roles(
     if len(kept) < 2:
         raise InputError(
             f"site column {spec.site!r}: only {len(kept)} site(s) have at least {min_site_rows} rows; "
-            "at least two are needed (see --min-site-rows)"
+            "at least two are needed (lower min_site_rows to keep smaller sites)", option="min_site_rows"
         )
     keep_mask = site_str.isin(kept).to_numpy()
     frame = frame.loc[keep_mask].reset_index(drop=True).copy()
@@ -546,7 +547,9 @@ def assign_roles(
 
     usable = [c for c in columns if c.role == "feature"]
     if not usable:
-        raise InputError("no usable feature left after roles and hygiene checks; see the columns' reasons with --verbose or list features in the config")
+        why = "; ".join(f"{c.name!r}: {c.reason}" for c in columns if c.role not in ("site", "outcome"))[:300]
+        raise InputError(f"no usable feature left after roles and hygiene checks ({why}); "
+                         "list the features to use under features in the config")
 
     panels = {}
     for pname, members in (spec.panels or {}).items():
