@@ -300,9 +300,10 @@ def test_report_section_escapes_data_text_and_suppresses_small_counts():
                        "p_adj": 1e-9, "detail": "31% at its floor 5"}]}}}
     html = sec.html(doc, 10)
     assert bad not in html and "&lt;script&gt;" in html
-    assert "ComBat" in html and "&lt;10" in html and "floor or ceiling" in html
-    md = sec.markdown(doc, 10)
-    assert "<script>" not in md and "\\<script\\>" in md and "Dunmere\\|x" in md and "< 0.001" in md
+    # one name per artefact across the report (issue 18): "floor or ceiling" reads "lower or upper limit"
+    assert "ComBat" in html and "&lt;10" in html and "lower or upper limit at Dunmere|x" in html
+    md = sec.markdown(doc, 10)  # findings.md: one line per method
+    assert "<script>" not in md and "ComBat" in md and "1 gap left" in md
     assert sec.html({}, 10) == "" and sec.markdown({}, 10) == ""
 
 

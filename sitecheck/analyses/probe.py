@@ -231,8 +231,16 @@ class ProbeScore:
     ci_widening: float = 1.0
     fold_auc: Tuple[float, ...] = ()
 
+    @property
+    def p_value_floor(self) -> Optional[float]:
+        """The smallest p-value the permutation test could give (None without a p-value)."""
+        if not self.n_permutations or self.p_value is None:
+            return None
+        return stats.permutation_pvalue_floor(self.n_permutations)
+
     def to_dict(self) -> Dict[str, Any]:
-        return {"auc": self.auc, "auc_ci": list(self.auc_ci), "p_value": self.p_value, "n": self.n,
+        return {"auc": self.auc, "auc_ci": list(self.auc_ci), "p_value": self.p_value,
+                "p_value_floor": self.p_value_floor, "n": self.n,
                 "model": self.model, "n_boot": self.n_boot, "n_permutations": self.n_permutations,
                 "ci_widening": self.ci_widening, "fold_auc": list(self.fold_auc)}
 
@@ -330,6 +338,7 @@ def _score_dict(s: ProbeScore, *, with_p: bool = True) -> Dict[str, Any]:
     d = {"auc": s.auc, "auc_ci": list(s.auc_ci), "n": s.n}
     if with_p:
         d["p_value"] = s.p_value
+        d["p_value_floor"] = s.p_value_floor
     return d
 
 
@@ -385,7 +394,7 @@ class GroupProbe:
 
     def to_dict(self) -> Dict[str, Any]:
         return {"auc": self.score.auc, "auc_ci": list(self.score.auc_ci), "p_value": self.score.p_value,
-                "verdict": self.verdict, "verdict_text": verdict_text(self.verdict, f"group '{self.column}'"),
+                "p_value_floor": self.score.p_value_floor, "verdict": self.verdict, "verdict_text": verdict_text(self.verdict, f"group '{self.column}'"),
                 "n": self.score.n, "levels": dict(self.levels), "dropped_levels": dict(self.dropped_levels),
                 "n_missing": int(self.n_missing), "model": self.score.model,
                 "balanced_accuracy": self.score.balanced_accuracy}
@@ -450,6 +459,7 @@ class ProbeResult:
             "auc": s.auc,
             "auc_ci": list(s.auc_ci),
             "p_value": s.p_value,
+            "p_value_floor": s.p_value_floor,
             "balanced_accuracy": s.balanced_accuracy,
             "per_site": {k: dict(v) for k, v in self.per_site.items()},
             "n_used": self.n_used,
@@ -468,6 +478,7 @@ class ProbeResult:
             "caution": CAUTION,
             "linear": (None if self.linear is None else
                        {"auc": self.linear.auc, "auc_ci": list(self.linear.auc_ci), "p_value": self.linear.p_value,
+                        "p_value_floor": self.linear.p_value_floor,
                         "balanced_accuracy": self.linear.balanced_accuracy,
                         "model_detail": "L2 logistic regression; median imputation with missing indicators, "
                                         "scaling, one-hot"}),
@@ -609,7 +620,8 @@ def site_probe(prep, *, n_boot: int = 500, n_permutations: int = 999, linear: bo
                 continue
             s = _sub_probe(X[rows[ok]], yy[ok], cat, prep.n_splits, derived_seed(seed, "probe.stratum", int(v)), rng(10 + int(v)),
                            n_boot, n_permutations)
-            wo[key] = {"auc": s.auc, "auc_ci": list(s.auc_ci), "p_value": s.p_value, "n": s.n,
+            wo[key] = {"auc": s.auc, "auc_ci": list(s.auc_ci), "p_value": s.p_value,
+                       "p_value_floor": s.p_value_floor, "n": s.n,
                        "verdict": verdict(s.auc_ci, s.p_value), "sites": kept, "dropped_sites": dropped,
                        "outcome_value": int(v)}
     gprobes: Dict[str, GroupProbe] = {}

@@ -99,6 +99,15 @@ def _drift_applies(prep) -> bool:
     return getattr(prep.table, "time", None) is not None
 
 
+def _run_reconcile(prep, options, objects):
+    from .reconcile import reconcile
+
+    leakage, fingerprints = objects.get("leakage"), objects.get("fingerprints")
+    if leakage is None or fingerprints is None:
+        return None
+    return reconcile(leakage, fingerprints)
+
+
 def _run_maps(prep, options, objects):
     from sitecheck.analyses.maps import compute_maps
 
@@ -159,4 +168,7 @@ REGISTRY: List[Analysis] = [
              sections=lambda result: {"harmonisation": result}, priority=1),
     Analysis("outcome", _run_outcome, applies=lambda prep: prep.outcome is not None,
              sections=lambda result: {"outcome": result}, needs=("leakage",)),
+    # reads the leak ranking and the fingerprints only (no fit): why a fingerprinted feature ranks near 0
+    Analysis("reconcile", _run_reconcile, sections=lambda result: {"reconciliation": result},
+             needs=("leakage", "fingerprints")),
 ]

@@ -300,6 +300,12 @@ def merge_pvalues_geometric(pvalues) -> float:
     return float(min(1.0, np.e * np.exp(np.mean(np.log(p)))))
 
 
+def permutation_pvalue_floor(n_permutations: int) -> float:
+    """The smallest p-value :func:`fold_permutation_pvalue` can return: every fold at
+    1/(B+1) (Phipson & Smyth 2010), merged by e x geometric mean (Vovk & Wang 2020)."""
+    return float(min(1.0, np.e / (int(n_permutations) + 1.0)))
+
+
 def _macro_from_rank_sums(S: np.ndarray, counts: np.ndarray, n: int, cols: List[int]) -> np.ndarray:
     n1 = counts[cols].astype(float)
     return ((S[..., cols] - n1 * (n1 + 1) / 2.0) / (n1 * (n - n1))).mean(axis=-1)

@@ -134,7 +134,7 @@ def html(doc: Dict[str, Any], min_cell: int) -> str:
     d = doc.get("drift")
     if not isinstance(d, dict):
         return ""
-    parts = ["<h2>Drift over the collection period</h2>", f"<p>{esc(_intro(d))}</p>"]
+    parts = ["<h2 id=\"drift\">Drift over the collection period</h2>", f"<p>{esc(_intro(d))}</p>"]
     rows = _finding_rows(d, min_cell)
     if rows:
         parts.append("<h3>Changes at a site</h3>")
@@ -181,3 +181,33 @@ def markdown(doc: Dict[str, Any], min_cell: int) -> str:
         out += ["", md_table(_PROBE_HEAD, probes)]
     out += ["", md_table(_SITE_HEAD, _site_rows(d, min_cell))]
     return "\n".join(out)
+
+
+def next_lines(doc: Dict[str, Any]) -> List[Dict[str, Any]]:
+    """Lines for "What to do next": one per change at a site (network-wide changes are not site effects)."""
+    d = doc.get("drift")
+    if not isinstance(d, dict):
+        return []
+    out = []
+    for c in d.get("findings") or []:
+        if not isinstance(c, dict):
+            continue
+        out.append({"severity": "review", "site": c.get("site") or "", "column": c.get("feature"),
+                    "what": f"change over time from {c.get('period')}",
+                    "evidence": c.get("detail", ""),
+                    "fix": f"ask the site what changed about {c.get('period')}; harmonise or model the periods before "
+                           "and after apart, or leave one out", "note": "", "href": "#drift"})
+    return out
+
+
+def glance_item(doc: Dict[str, Any]):
+    """The drift headline for "At a glance" (None without a time column)."""
+    d = doc.get("drift")
+    if not isinstance(d, dict):
+        return None
+    found = [c for c in d.get("findings") or [] if isinstance(c, dict)]
+    text = ", ".join(f"{c.get('feature')} at {c.get('site')} from {c.get('period')}" for c in found[:4]) or \
+        "no change at a site"
+    if d.get("network"):
+        text += f"; {len(d['network'])} network-wide change(s)"
+    return {"label": "Drift over time", "text": text, "href": "#drift"}
