@@ -58,6 +58,18 @@ def _effects() -> List[dict]:
     ]
 
 
+#: The arrival dates cover two years, drawn uniformly.
+DEMO_START, DEMO_DAYS = "2025-01-01", 730
+
+
+def _recalibration() -> dict:
+    """The one change over time: an analyser recalibration at one site in the second year (month 16
+    of 24). About 0.33 SD from its month on, so about 0.12 SD over the whole period: under the
+    fingerprints' 0.2, so that only the drift analysis sees it."""
+    return {"feature": "potassium", "site": "Aldermoor", "kind": "recalibration", "from": "2026-04-01",
+            "offset": 0.15, "detail": "analyser recalibrated: potassium reads 0.15 mmol/L higher from 2026-04-01"}
+
+
 def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> DemoData:
     """Generate the invented four-hospital emergency-attendance table.
 
@@ -74,12 +86,14 @@ def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> D
     -------
     DemoData
         ``frame`` has columns ``attendance_id`` (site-prefixed code),
-        ``hospital``, ``arrival_date``, ``age``, ``sex``, ``arrival_mode``,
-        vital signs, a blood panel and ``admitted_hdu``; ``truth`` lists the
-        injected effects (empty for the null variant). Two columns are written as
-        laboratory exports write them: ``troponin`` at Aldermoor as ``<5`` below the
-        detection limit, ``potassium`` at Cindervale with a decimal comma; they are
-        text (object) columns, read as numbers by :mod:`sitecheck.intake`.
+        ``hospital``, ``arrival_date`` (two years from 2025-01-01), ``age``,
+        ``sex``, ``arrival_mode``, vital signs, a blood panel and
+        ``admitted_hdu``; ``truth`` lists the injected effects and, under
+        ``drift``, the one change over time (both empty for the null variant).
+        Two columns are written as laboratory exports write them: ``troponin`` at
+        Aldermoor as ``<5`` below the detection limit, ``potassium`` at Cindervale
+        with a decimal comma; they are text (object) columns, read as numbers by
+        :mod:`sitecheck.reading.intake`.
     """
     if n_rows < 80:
         raise ValueError("n_rows must be at least 80")
@@ -115,7 +129,8 @@ def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> D
     wbc = np.round(np.exp(rng.normal(np.log(8.2), 0.32, n) + 0.18 * sev), 1)
     plt_ = np.round(np.clip(rng.normal(255, 65, n), 20, 900))
     sodium = np.round(rng.normal(138.5, 3.0, n) - 0.8 * np.maximum(sev, 0))
-    potassium = np.round(rng.normal(4.2, 0.45, n), 1)
+    potassium_exact = rng.normal(4.2, 0.45, n)
+    potassium = np.round(potassium_exact, 1)
     creat = np.round(np.exp(rng.normal(np.log(78), 0.28, n) + 0.006 * (age - 55) + 0.12 * male + 0.1 * np.maximum(sev, 0)))
     urea = np.round(np.exp(rng.normal(np.log(5.8), 0.35, n) + 0.008 * (age - 55) + 0.1 * np.maximum(sev, 0)), 1)
     glucose = np.round(np.exp(rng.normal(np.log(6.0), 0.22, n) + 0.06 * sev), 1)
@@ -157,7 +172,15 @@ def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> D
         lactate[b & np.isnan(lactate)] = -99.0
         albumin[d] = np.nan
 
-    # export idioms: written into the cells as text (no random draw, so the values above are unchanged)
+    order = rng.permutation(n)
+    start = pd.Timestamp(DEMO_START)
+    days = rng.integers(0, DEMO_DAYS, n)
+    if not null:  # drawn last, so every other column is the same with or without it
+        r = _recalibration()
+        after = is_[r["site"]] & (start + pd.to_timedelta(days, unit="D") >= pd.Timestamp(r["from"]))
+        potassium[after] = np.round(potassium_exact[after] + r["offset"], 1)  # the analyser reads higher, then rounds
+    # export idioms: written into the cells as text after the recalibration (no random draw,
+    # so every value above is unchanged)
     trop_out = trop.astype(object)
     potassium_out = potassium.astype(object)
     if not null:
@@ -166,9 +189,6 @@ def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> D
         trop_out[low] = "<5"
         potassium_out[c] = [f"{v:.1f}".replace(".", ",") for v in potassium[c]]
 
-    order = rng.permutation(n)
-    start = pd.Timestamp("2025-01-01")
-    days = rng.integers(0, 365, n)
     ids = np.array([f"{PREFIX[s]}-{100000 + i:06d}" for i, s in enumerate(site)], dtype=object)
     frame = pd.DataFrame({
         "attendance_id": ids,
@@ -214,6 +234,9 @@ def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> D
                                       "detail": "patients about 8 years older on average"}],
         "outcome_prevalence": {"varies_by_site": not null,
                                "baseline_logit": base, "observed": prevalence},
+        "time_column": "arrival_date",
+        "period": {"first": DEMO_START, "last": f"{start + pd.Timedelta(days=DEMO_DAYS - 1):%Y-%m-%d}"},
+        "drift": [] if null else [_recalibration()],
     }
     return DemoData(frame=frame, truth=truth)
 
@@ -237,4 +260,4 @@ def write_demo(out_dir: str, *, n_rows: int = 6000, seed: int = 7) -> Dict[str, 
 
 #: Settings for the scan the ``demo`` command runs.
 DEMO_ROLES = {"site": "hospital", "outcome": "admitted_hdu", "covariates": ("age", "sex"),
-              "identifiers": ("attendance_id",)}
+              "identifiers": ("attendance_id",), "time": "arrival_date"}

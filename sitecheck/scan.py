@@ -53,11 +53,11 @@ class ScanOptions:
         rows); 1 runs everything in turn in this process.
     repair : bool, default True
         The maps, the harmonisation check and the outcome analysis read the values
-        after the repair plan's safe entries (:mod:`sitecheck.repair`); False keeps
+        after the repair plan's safe entries (:mod:`sitecheck.table.repair`); False keeps
         the values as given. The probe, the leak ranking and the fingerprints always
         read the values as given; the residual probe always the repaired ones.
     censor_policy : str, optional
-        Policy of the plan's censoring entries (:data:`sitecheck.repair.CENSOR_POLICIES`);
+        Policy of the plan's censoring entries (:data:`sitecheck.table.repair.CENSOR_POLICIES`);
         default after Hornung & Reed (1990).
     """
 
@@ -278,6 +278,8 @@ def scan_table(table: Table, options: ScanOptions = ScanOptions(), *,
         "dropped_sites": dict(table.dropped_sites),
         "outcome": table.outcome,
     }
+    if table.time:
+        input_doc["time_column"] = table.time
     timings["total"] = round(time.perf_counter() - t_start, 3)
     run = {
         "seed": int(options.seed),
@@ -328,7 +330,7 @@ def _repair_stage(table: Table, prep: Prepared, options: ScanOptions, say: Progr
     if not options.wants("fingerprints"):
         return {}, None, None
     from sitecheck.analyses.fingerprints import find_fingerprints
-    from sitecheck.repair import apply_repairs, plan_repairs
+    from sitecheck.table.repair import apply_repairs, plan_repairs
 
     say("fingerprints...")
     t0 = time.perf_counter()
@@ -393,8 +395,9 @@ def scan_file(path: str, *, site: Optional[str] = None, outcome: Optional[str] =
               covariates: Optional[Sequence[str]] = None, groups: Optional[Sequence[str]] = None,
               identifiers: Optional[Sequence[str]] = None, excluded: Optional[Sequence[str]] = None,
               config: Optional[str] = None, sep: Optional[str] = None, encoding: Optional[str] = None,
-              options: Optional[ScanOptions] = None, progress: Optional[Progress] = None) -> ScanResult:
-    """Read a file and scan it.
+              options: Optional[ScanOptions] = None, progress: Optional[Progress] = None,
+              time: Optional[str] = None) -> ScanResult:
+    """Read a file and scan it (``time`` names the date column that adds the drift analysis).
 
     Parameters
     ----------
@@ -429,7 +432,7 @@ def scan_file(path: str, *, site: Optional[str] = None, outcome: Optional[str] =
     (:func:`sitecheck.reading.config.resolve_config`), so a config file gives the same
     ``report.json`` from either (``tests/test_report.py``).
     """
-    run = resolve_config(config, roles=_spec(site, outcome, covariates, groups, identifiers, excluded),
+    run = resolve_config(config, roles=_spec(site, outcome, covariates, groups, identifiers, excluded, time),
                          options=options, sep=sep, encoding=encoding)
     return scan_configured(path, run, progress=progress)
 
@@ -437,16 +440,17 @@ def scan_file(path: str, *, site: Optional[str] = None, outcome: Optional[str] =
 def scan_frame(frame: pd.DataFrame, *, site: str, outcome: Optional[str] = None,
                covariates: Optional[Sequence[str]] = None, groups: Optional[Sequence[str]] = None,
                identifiers: Optional[Sequence[str]] = None, excluded: Optional[Sequence[str]] = None,
-               options: Optional[ScanOptions] = None, progress: Optional[Progress] = None) -> ScanResult:
+               options: Optional[ScanOptions] = None, progress: Optional[Progress] = None,
+               time: Optional[str] = None) -> ScanResult:
     """Scan an in-memory DataFrame (intake's missing-code rules apply to text columns)."""
     raw = frame_to_raw(frame, site=site)
     opts = options or ScanOptions()
-    table = assign_roles(raw, _spec(site, outcome, covariates, groups, identifiers, excluded),
+    table = assign_roles(raw, _spec(site, outcome, covariates, groups, identifiers, excluded, time),
                          min_site_rows=opts.min_site_rows, include_datetime=opts.include_datetime)
     return scan_table(table, opts, progress=progress)
 
 
-def _spec(site, outcome, covariates, groups, identifiers, excluded) -> RoleSpec:
+def _spec(site, outcome, covariates, groups, identifiers, excluded, time=None) -> RoleSpec:
     t = lambda v: None if v is None else tuple(v)  # noqa: E731
     return RoleSpec(site=site, outcome=outcome, covariates=t(covariates), groups=t(groups),
-                    identifiers=t(identifiers), excluded=t(excluded))
+                    identifiers=t(identifiers), excluded=t(excluded), time=time)

@@ -29,6 +29,9 @@ def test_demo_command_writes_report(demo_run):
     roles = {c["name"]: c["role"] for c in doc["columns"]}
     assert roles["attendance_id"] == "identifier" and roles["hospital"] == "site" and roles["age"] == "covariate"
     assert {"seed", "versions", "seconds"} <= set(doc["run"])
+    # the demo passes its arrival date as the time role: the drift section is there
+    assert roles["arrival_date"] == "time" and doc["input"]["time_column"] == "arrival_date"
+    assert doc["drift"]["time_column"] == "arrival_date" and len(doc["drift"]["sites"]) == 4
     for name in ("report.html", "findings.md"):
         assert (out / "report" / name).stat().st_size > 500
 
@@ -57,7 +60,7 @@ def test_version_and_help_show_example():
 
 def test_demo_report_has_the_repair_loop(demo_run):
     # issue 17: every scan writes the repair plan; the report shows the residual probe and the plan
-    from sitecheck.repair import plan_schema
+    from sitecheck.table.repair import plan_schema
     from sitecheck.report.schema import report_schema, validate
 
     out, res = demo_run

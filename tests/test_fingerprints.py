@@ -381,7 +381,7 @@ def test_number_format_false_alarm_rate_when_every_site_writes_commas():
 
 
 def test_kinds_are_one_list_for_gates_and_schema():
-    from sitecheck.repair import plan_schema
+    from sitecheck.table.repair import plan_schema
     from sitecheck.report.gates import FINGERPRINT_KINDS, check_fail_on
     from sitecheck.report.schema import report_schema
 

@@ -20,7 +20,7 @@ from sitecheck.cli import main
 from sitecheck.errors import InputError
 from sitecheck.analyses.fingerprints import find_fingerprints
 from sitecheck.reading.intake import frame_to_raw, read_table
-from sitecheck.repair import (CENSOR_POLICIES, apply_repairs, censored_value, evident_mapping, plan_from_dict,
+from sitecheck.table.repair import (CENSOR_POLICIES, apply_repairs, censored_value, evident_mapping, plan_from_dict,
                               plan_repairs, plan_schema, repair_file)
 from sitecheck.table.roles import RoleSpec, assign_roles
 from sitecheck.report.schema import validate
@@ -245,7 +245,7 @@ def test_repair_command_refuses_plans_that_do_not_fit_in_one_line(round_trip, de
 def test_residual_probe_is_lower_on_the_demo(demo_table, demo_prepared, demo_plan):
     from sitecheck.table.prepare import prepare
     from sitecheck.analyses.probe import site_probe
-    from sitecheck.repair import residual_signal
+    from sitecheck.table.repair import residual_signal
 
     probe = site_probe(demo_prepared, n_boot=200, n_permutations=0, linear=False, case_mix=False,
                        within_outcome=False, groups=False, random_state=0)

@@ -920,7 +920,7 @@ def detect_number_format(idioms: Dict[str, Dict[str, int]], units: Dict[str, Dic
     """A site writes its numbers differently: decimal commas, a unit after the
     number, thousands separators.
 
-    Intake reads such cells as numbers (:func:`sitecheck.intake.parse_idioms`)
+    Intake reads such cells as numbers (:func:`sitecheck.reading.intake.parse_idioms`)
     and counts them per site; a pipeline that does not will see text or missing
     values at that site only. For each site: the share of its recorded values in
     each format against the other sites' (Fisher's one-sided exact test on the
@@ -999,12 +999,12 @@ def link_unit_columns(table, *, min_count: int = 10) -> Dict[str, Dict[str, Any]
     """Find the text columns whose levels are units and the numeric column each qualifies.
 
     A feature is a unit column when every level reads as a unit
-    (:func:`sitecheck.units.canonical_unit`: ``mg/dL``, ``umol/L``, ``µmol/l``,
+    (:func:`sitecheck.table.units.canonical_unit`: ``mg/dL``, ``umol/L``, ``µmol/l``,
     ``g/L`` ...). It is linked to a numeric feature by name (``creat_unit`` ->
-    ``creatinine``; :func:`sitecheck.units.unit_column_base`) or, failing that, by
+    ``creatinine``; :func:`sitecheck.table.units.unit_column_base`) or, failing that, by
     the values: the ratio of the numeric feature's medians between two unit levels
     (at least ``min_count`` rows each) within 10% of the conversion factor between
-    those units (:func:`sitecheck.units.unit_factor`: the SI table for the named
+    those units (:func:`sitecheck.table.units.unit_factor`: the SI table for the named
     analyte, else metric prefixes), with a factor of at least 1.8 either way so that
     a ratio near 1 links nothing.
 

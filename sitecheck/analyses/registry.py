@@ -96,6 +96,16 @@ def _fingerprint_sections(result):
 
 
 
+def _run_drift(prep, options, objects):
+    from sitecheck.analyses.drift import drift_check
+
+    return drift_check(prep, fingerprints=objects.get("fingerprints"), random_state=options.seed)
+
+
+def _drift_applies(prep) -> bool:
+    return getattr(prep.table, "time", None) is not None
+
+
 def _run_reconcile(prep, options, objects):
     from .reconcile import reconcile
 
@@ -139,7 +149,7 @@ def _run_harmonise(prep, options, objects):
 
 
 def _run_residual(prep, options, objects):
-    from sitecheck.repair import residual_signal
+    from sitecheck.table.repair import residual_signal
 
     probe, repair = objects.get("probe"), objects.get("repair")
     if probe is None or repair is None:
@@ -156,12 +166,16 @@ def _maps_applies(prep) -> bool:
 
 
 #: The analyses, in report order. The leak ranking reuses the probe's fold models
-#: (objects["probe"].crossfit); the outcome analysis reads the leak ranking; the t-SNE map
+#: (objects["probe"].crossfit); the outcome analysis reads the leak ranking; the drift analysis
+#: reads the fingerprints; the t-SNE map
 #: is merged into the maps' result.
 REGISTRY: List[Analysis] = [
     Analysis("probe", _run_probe, sections=_probe_sections),
     Analysis("leakage", _run_leakage, sections=lambda result: result.sections(), needs=("probe",)),
     Analysis("fingerprints", _run_fingerprints, sections=_fingerprint_sections),
+    # drift within each site over time (--time); follows the fingerprints' codes, limits and grids
+    Analysis("drift", _run_drift, applies=_drift_applies, sections=lambda result: {"drift": result},
+             needs=("fingerprints",)),
     Analysis("maps", _run_maps, applies=_maps_applies, sections=lambda result: {"embedding": result}, on="repaired"),
     # t-SNE is the longest single map (about 3/4 of the maps' time at 10,000 rows, measured):
     # computed apart, it runs beside the probe while PCA and UMAP fill the other lane.

@@ -80,6 +80,8 @@ def _common_scan_options(f):
     opts = [
         click.option("--site", "site", metavar="COL", help="Column naming the site or hospital (required unless in --config)."),
         click.option("--outcome", metavar="COL", help="Binary outcome column."),
+        click.option("--time", "time", metavar="COL", help="Date column (e.g. arrival date): adds the drift analysis, "
+                     "when and where each site's measurements changed over the collection period."),
         click.option("--covariate", "covariates", multiple=True, metavar="COL", help="Case-mix column to condition on (repeatable)."),
         click.option("--group", "groups", multiple=True, metavar="COL", help="Demographic column to probe like a site (repeatable)."),
         click.option("--id", "identifiers", multiple=True, metavar="COL", help="Identifier column, never used as a feature (repeatable)."),
@@ -119,7 +121,7 @@ GATE_FLAGS = {"fail_above": "--fail-above", "fail_on": "--fail-on"}
 
 
 def _run_scan(data, *, site, outcome, covariates, groups, identifiers, excluded, config, sep, encoding,
-              out_dir, quiet, shareable=False, fail_above=None, fail_on=(), **flags):
+              out_dir, quiet, shareable=False, fail_above=None, fail_on=(), time=None, **flags):
     """Resolve the configuration (the library's one loader), scan, write, print the summary and
     the failed gates; exit 1 when a gate failed."""
     from sitecheck.reading.config import resolve_config
@@ -130,7 +132,7 @@ def _run_scan(data, *, site, outcome, covariates, groups, identifiers, excluded,
     progress = Progress(quiet)
     t = lambda v: tuple(v) if v else None  # noqa: E731
     spec = RoleSpec(site=site, outcome=outcome, covariates=t(covariates), groups=t(groups),
-                    identifiers=t(identifiers), excluded=t(excluded))
+                    identifiers=t(identifiers), excluded=t(excluded), time=time or None)
     if encoding is not None:
         import codecs
 
@@ -196,6 +198,7 @@ def demo_cmd(out_dir, rows, seed, quiet):
         click.echo(f"demo table: {paths['data']} (ground truth: {paths['truth']})", err=True)
     _run_scan(paths["data"], site=DEMO_ROLES["site"], outcome=DEMO_ROLES["outcome"],
               covariates=DEMO_ROLES["covariates"], groups=(), identifiers=DEMO_ROLES["identifiers"], excluded=(),
+              time=DEMO_ROLES["time"],
               config=None, sep=None, encoding=None, out_dir=os.path.join(out_dir, "report"), quiet=quiet,
               seed=None, folds=None, max_rows=None, map_rows=None, min_site_rows=None, min_cell=None,
               include_datetime=None, as_given=None, censor_policy=None)

@@ -20,7 +20,7 @@ def repair_cmd(data, plan_path, out, sep, encoding):
 
     Prints a per-site count of the cells changed; the full log goes to OUT.repair_log.json.
     """
-    from sitecheck.repair import repair_file
+    from sitecheck.table.repair import repair_file
 
     res = repair_file(data, plan_path, out, sep=sep, encoding=encoding)
     click.echo(f"repaired table: {res['out']} ({res['cells_total']} cells changed by "
@@ -34,6 +34,6 @@ def repair_cmd(data, plan_path, out, sep, encoding):
 @click.command("repair-schema", epilog="Example:\n\n  sitecheck repair-schema > repair_plan.schema.json")
 def repair_schema_cmd():
     """Print the JSON Schema of repair_plan.json (versioned)."""
-    from sitecheck.repair import plan_schema
+    from sitecheck.table.repair import plan_schema
 
     click.echo(json.dumps(plan_schema(), indent=2))

@@ -75,6 +75,9 @@ class ColumnIntake:
     unparsed_count: int = 0
     unparsed_examples: Tuple[str, ...] = ()
     idioms: Dict[str, int] = field(default_factory=dict)
+    #: For text read as dates: the text as written (None where missing), so that a time column can be
+    #: parsed again site by site (sites may write dates differently). Not part of ``to_dict``.
+    text: Optional[np.ndarray] = field(default=None, compare=False, repr=False)
 
     def to_dict(self) -> dict:
         return {
@@ -350,9 +353,11 @@ def _text_or_datetime(name: str, values: np.ndarray, mask: np.ndarray, codes: Di
         out[~mask] = parsed.astype("datetime64[ns]").to_numpy()
         bad = present[parsed.isna().to_numpy()]
         examples = tuple(pd.unique(bad.to_numpy())[:3].tolist())
+        text = np.full(len(values), None, dtype=object)
+        text[np.flatnonzero(~mask)] = present.to_numpy(dtype=object)
         return out.to_numpy(), ColumnIntake(
             name, "datetime", codes, n_missing + int(parsed.isna().sum()),
-            coerced=True, unparsed_count=int(parsed.isna().sum()), unparsed_examples=examples,
+            coerced=True, unparsed_count=int(parsed.isna().sum()), unparsed_examples=examples, text=text,
         )
     out = np.empty(len(values), dtype=object)
     out[:] = None

@@ -586,4 +586,9 @@ def write_figures(result, out_dir: str, *, min_cell: int = 10, shareable: bool =
                        ("distributions", _distributions(result, doc, out_dir, sites_drawn, min_cell=min_cell))):
         if items:
             out[key] = items
+    drift = objects.get("drift")
+    if drift is not None and getattr(drift, "sites", None):
+        from .figures_drift import drift_figures
+
+        out["drift"] = drift_figures(drift, out_dir, min_cell=min_cell, shareable=shareable)
     return out

@@ -63,7 +63,7 @@ def write_report(result: ScanResult, out_dir: str, *, min_cell: int = 10, figure
         paths["fingerprints.csv"] = atomic_write(out_dir, "fingerprints.csv", fingerprints_csv(shared, min_cell=min_cell))
     plan = result.objects.get("repair_plan") if result.objects else None
     if plan is not None:
-        # the repair plan (sitecheck.repair): exact counts, for use inside the data enclave;
+        # the repair plan (sitecheck.table.repair): exact counts, for use inside the data enclave;
         # with --shareable its counts are suppressed like report.json's
         plan_doc = plan.to_dict()
         if shareable:

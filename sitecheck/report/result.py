@@ -68,7 +68,7 @@ class ScanResult:
 
     def summary(self, *, max_warnings: int = 5) -> str:
         """A few lines for a terminal: rows and sites, the site probe's AUC with its interval,
-        p-value and verdict, and the first warnings.
+        p-value and verdict, the drift findings (with ``--time``), and the first warnings.
 
         Parameters
         ----------
@@ -95,6 +95,12 @@ class ScanResult:
             lines.append(f"site probe: AUC {probe['auc']:.3f} (95% CI {lo:.3f} to {hi:.3f}), "
                          f"p = {probe['p_value']:.3g}, n = {probe.get('n_used', inp.get('rows_used'))}, "
                          f"verdict: {probe['verdict']}")
+        drift = doc.get("drift")
+        if isinstance(drift, dict):
+            found = drift.get("findings") or []
+            where = ", ".join(f"{c['feature']} at {c['site']} from {c['period']}" for c in found[:3])
+            lines.append(f"drift over time: {len(found)} change(s) at a site" + (f" ({where})" if where else "")
+                         + (f"; {len(drift.get('network') or [])} network-wide" if drift.get("network") else ""))
         warnings = doc.get("warnings", [])
         lines += [f"warning: {w}" for w in warnings[:max_warnings]]
         if len(warnings) > max_warnings:

@@ -2,7 +2,8 @@
 
 The document's ``schema`` field carries :data:`sitecheck.report.result.SCHEMA_VERSION`.
 Minor versions add keys; a major version renames or removes one. Sections are
-present only when their analysis ran (``outcome`` needs ``--outcome``).
+present only when their analysis ran (``outcome`` needs ``--outcome``, ``drift``
+needs ``--time``).
 """
 from __future__ import annotations
 
@@ -79,8 +80,44 @@ def report_schema() -> Dict[str, Any]:
                         ["threshold", "per_group", "tpr_spread", "fpr_spread", "heterogeneity"])}},
                    ["prevalence", "site_only_auc", "pooled_auc", "loso", "transport_gap", "shortcut_candidates",
                     "equalized_odds"])
+    change_point = _obj({
+        "site": {"type": "string"}, "feature": {"type": "string"},
+        "aspect": {"enum": ["level", "spread", "missing", "artefact"]}, "artefact": {"type": ["string", "null"]},
+        "date": {"type": "string", "pattern": "^[0-9]{4}-[0-9]{2}-[0-9]{2}$"}, "period": {"type": "string"},
+        "before": {"type": "object"}, "after": {"type": "object"}, "size": NUM, "size_ci": CI, "size_sd": NUM,
+        "p_value": NUM, "p_adj": NUM, "scope": {"enum": ["site", "several_sites", "network"]},
+        "other_sites": {"type": "object"}, "artefacts": {"type": "array"}, "finding": {"type": "boolean"},
+        "detail": {"type": "string"}},
+        ["site", "feature", "aspect", "artefact", "date", "period", "size", "size_ci", "size_sd", "p_value",
+         "p_adj", "scope", "finding", "detail"])
+    drift_site = {"anyOf": [_obj({"site": {"type": "string"}, "unit": {"type": "string"},
+                                  "assessed": {"type": "boolean"}, "periods": {"type": "array"},
+                                  "starts": {"type": "array"}, "n": {"type": "array", "items": COUNT},
+                                  "features": {"type": "object"}},
+                                 ["site", "unit", "assessed", "periods", "starts", "n", "features"]),
+                            {"const": "withheld"}]}
+    period_probe = _obj({"site": {"type": "string"}, "n": COUNT, "split_date": {"type": "string"}, "auc": NUM,
+                         "auc_ci": CI, "covariate_auc": NUM, "covariate_auc_ci": CI, "increment": NUM,
+                         "increment_ci": CI, "increment_ci_adjusted": CI, "flagged": {"type": "boolean"}},
+                        ["site", "n", "split_date", "auc", "auc_ci", "covariate_auc", "increment", "increment_ci",
+                         "flagged"])
+    drift = _obj({"time_column": {"type": "string"}, "n_series": {"type": "integer"},
+                  "findings": {"type": "array", "items": change_point},
+                  "change_points": {"type": "array", "items": change_point},
+                  "network": {"type": "array", "items": _obj({"feature": {"type": "string"},
+                                                              "date": {"type": "string"},
+                                                              "sites": {"type": "array"}},
+                                                             ["feature", "date", "sites"])},
+                  "period_probe": {"type": "array", "items": period_probe},
+                  "sites": {"type": "array", "items": drift_site},
+                  "calibration": {"type": "object"}, "params": {"type": "object"}, "time_notes": {"type": "object"},
+                  "figures": {"type": "array", "items": {"type": "string"}}},
+                 ["time_column", "n_series", "findings", "change_points", "network", "period_probe", "sites",
+                  "calibration", "params"],
+                 description="Drift within each site over the collection period (with --time): change points "
+                             "per site, feature and aspect, their scope, and the period probe.")
     column = _obj({"name": {"type": "string"}, "role": {"enum": ["site", "outcome", "covariate", "group", "identifier",
-                                                                 "excluded", "feature"]},
+                                                                 "excluded", "feature", "time"]},
                    "kind": {"enum": ["numeric", "binary", "categorical", "datetime", "text"]},
                    "reason": {"type": "string"},
                    "idioms": {"type": "object", "description": "site -> lab-export idiom -> cells",
@@ -137,6 +174,7 @@ def report_schema() -> Dict[str, Any]:
                            ["plan_file", "plan_version", "entries", "values_for_maps_harmonisation_outcome"],
                            description="the repair plan (repair_plan.json; its schema: sitecheck repair-schema)"),
             "unit_columns": {"type": "object", "description": "unit column -> the numeric column it qualifies"},
+            "drift": drift,
             "shareable": _obj({"min_cell": {"type": "integer"}, "withheld_sites": {"type": "array"}}),
         }, ["schema", "input", "columns", "warnings", "run"]),
     }

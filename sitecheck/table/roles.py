@@ -20,7 +20,7 @@ import pandas as pd
 from sitecheck.errors import InputError
 from sitecheck.reading.intake import IDIOM_BITS, CellNotes, ColumnIntake, RawTable
 
-ROLES = ("site", "outcome", "covariate", "group", "identifier", "excluded", "feature")
+ROLES = ("site", "outcome", "covariate", "group", "identifier", "excluded", "feature", "time")
 KINDS = ("numeric", "binary", "categorical", "datetime", "text")
 
 #: Name tokens that denote direct identifiers, after the HIPAA Safe Harbor
@@ -104,6 +104,7 @@ class RoleSpec:
     excluded: Optional[Tuple[str, ...]] = None
     features: Optional[Tuple[str, ...]] = None
     panels: Optional[Dict[str, Tuple[str, ...]]] = None
+    time: Optional[str] = None
 
     def merged_over(self, base: "RoleSpec") -> "RoleSpec":
         """Return this spec with unset fields filled from ``base`` (flags over file)."""
@@ -194,8 +195,15 @@ class Table:
     dropped_sites : dict
         Site label -> rows, for sites left out below the minimum row count.
     cells : dict
-        Column -> :class:`~sitecheck.intake.CellNotes` of the retained rows, for the
+        Column -> :class:`~sitecheck.reading.intake.CellNotes` of the retained rows, for the
         columns whose cells used a lab-export idiom (censoring flags, units).
+    outcome : str or None
+    time : str or None
+        The time column (``--time``), parsed to datetime64 per site; rows without a
+        usable date hold NaT.
+    time_notes : dict
+        Site label -> what parsing the time column found there: ``rows``, ``dated``,
+        ``without_date``, ``implausible``, ``first``, ``last``, ``format``.
     """
 
     frame: pd.DataFrame
@@ -210,6 +218,8 @@ class Table:
     dropped_sites: Dict[str, int]
     outcome: Optional[str] = None
     cells: Dict[str, CellNotes] = field(default_factory=dict)
+    time: Optional[str] = None
+    time_notes: Dict[str, dict] = field(default_factory=dict)
 
     def censored(self, name: str) -> Optional[np.ndarray]:
         """-1/0/+1 per row (below a limit / not censored / above), or None without censoring."""
@@ -385,9 +395,15 @@ def assign_roles(
     for n in covs + groups:
         if n in special:
             raise InputError(f"column {n!r} cannot be both the site/outcome and a covariate or group")
+    if spec.time:
+        _check_named(names, [spec.time], "time")
+        if spec.time in special or spec.time in covs + groups + ids + excl:
+            raise InputError(f"time column {spec.time!r} cannot also be the site, the outcome, a covariate, "
+                             "a group, an identifier or excluded")
 
     warnings: List[str] = []
     findings: List[Finding] = []
+    time_notes: Dict[str, dict] = {}
 
     # -- sites -------------------------------------------------------------
     site_raw = frame[spec.site]
@@ -439,6 +455,13 @@ def assign_roles(
             )
         if name == spec.site:
             columns.append(make(name, "site", "categorical", "site column (given)", kept))
+            continue
+        if name == spec.time:
+            text = None if info.text is None else pd.Series(info.text[keep_mask], index=frame.index)
+            parsed, time_notes, time_warnings = parse_dates_by_site(frame[name], info, site, kept, text=text)
+            frame[name] = parsed
+            warnings.extend(time_warnings)
+            columns.append(make(name, "time", "datetime", "time column (given); dates parsed per site"))
             continue
         kind = _infer_kind(frame[name], info.storage, n)
         levels: Tuple[str, ...] = ()
@@ -577,6 +600,8 @@ def assign_roles(
         dropped_sites=dropped,
         outcome=spec.outcome,
         cells=cells,
+        time=spec.time or None,
+        time_notes=time_notes,
     )
 
 
@@ -632,3 +657,142 @@ def _datetime_periods(values: pd.Series, site: pd.Series, labels: Sequence[str])
         if share < 0.8:
             return f"collection periods differ by site (common overlap {share:.0%} of the span; " + "; ".join(parts) + "); left out of the probe"
     return "datetime column; left out of the probe (" + "; ".join(parts) + ")"
+
+
+#: Date formats tried, site by site, on a time column that intake left as text. Day-first
+#: comes before month-first: when both read every value, the day-first reading is kept
+#: and a warning says so.
+DATE_FORMATS = ("ISO8601", "%d/%m/%Y", "%m/%d/%Y", "%d.%m.%Y", "%d-%m-%Y", "%Y/%m/%d", "%Y.%m.%d",
+                "%d/%m/%y", "%m/%d/%y", "%d %b %Y", "%d-%b-%Y", "%b %d %Y")
+
+#: Dates outside [first, last) are read as placeholders (1900-01-01, 2999-12-31, ...), not dates.
+PLAUSIBLE_DATES = (pd.Timestamp("1901-01-01"), pd.Timestamp("2100-01-01"))
+
+#: Share of a site's non-missing values that must parse in one format (as intake's COERCE_SHARE).
+DATE_SHARE = 0.95
+
+
+def _parse_text_dates(values: pd.Series) -> Tuple[pd.Series, str, bool]:
+    """Parse one site's date strings in the format that reads most of them.
+
+    Returns (parsed, format, ambiguous): ``ambiguous`` is True when day-first and
+    month-first both read every value and disagree on some.
+    """
+    import warnings as _w
+
+    best, best_fmt, best_ok = None, "", -1
+    results = {}
+    with _w.catch_warnings():
+        _w.simplefilter("ignore")
+        for fmt in DATE_FORMATS:
+            try:
+                got = pd.to_datetime(values, format=fmt, errors="coerce")
+            except (ValueError, TypeError):  # pragma: no cover - pandas refuses the format
+                continue
+            ok = int(got.notna().sum())
+            results[fmt] = got
+            if ok > best_ok:
+                best, best_fmt, best_ok = got, fmt, ok
+            if ok == len(values) and fmt not in ("%d/%m/%Y", "%d/%m/%y"):
+                break
+    ambiguous = False
+    for dayfirst, monthfirst in (("%d/%m/%Y", "%m/%d/%Y"), ("%d/%m/%y", "%m/%d/%y")):
+        if best_fmt == dayfirst and monthfirst in results:
+            other = results[monthfirst]
+            if int(other.notna().sum()) == best_ok and not other.equals(best):
+                ambiguous = True
+    return best, best_fmt, ambiguous
+
+
+def parse_dates_by_site(values: pd.Series, info: ColumnIntake, site: pd.Series,
+                        labels: Sequence[str], *, text: Optional[pd.Series] = None
+                        ) -> Tuple[pd.Series, Dict[str, dict], List[str]]:
+    """Parse and validate the time column, site by site.
+
+    Text (``text``, the column as written when intake read it as dates, or the
+    column itself when intake left it as text) is parsed per site in the format
+    that reads most of that site's values: sites may write dates differently,
+    and one format per site keeps 03/01 from being read as 3 January at one row
+    and 1 March at the next. Dates stored as dates (Parquet) are taken as they
+    are; integers written as YYYYMMDD are read as dates.
+    Dates before 1901 or from 2100 are taken as placeholders. Rows without a
+    usable date become NaT and are counted per site.
+
+    Returns
+    -------
+    (parsed, notes, warnings)
+        ``parsed`` is datetime64[ns] aligned with ``values``; ``notes`` maps each site
+        to ``rows``, ``dated``, ``without_date``, ``implausible``, ``first``, ``last``,
+        ``format``.
+
+    Raises
+    ------
+    InputError
+        The column holds numbers that are not YYYYMMDD dates, or a site's values are
+        not dates in any one format (fewer than 95% parse), or no site has a date.
+    """
+    name = info.name
+    out = pd.Series(pd.NaT, index=values.index, dtype="datetime64[ns]")
+    formats: Dict[str, str] = {}
+    warn: List[str] = []
+    if info.storage == "datetime" and text is not None:
+        values = text
+    if info.storage == "datetime" and text is None:
+        out[:] = pd.to_datetime(values).astype("datetime64[ns]").to_numpy()
+        formats = {lab: "stored as dates" for lab in labels}
+    elif info.storage == "numeric":
+        v = pd.to_numeric(values, errors="coerce")
+        present = v.dropna()
+        ymd = present.between(19000101, 21001231) & (present % 1 == 0)
+        if len(present) == 0 or float(ymd.mean()) < DATE_SHARE:
+            ex = ", ".join(repr(float(x)) for x in present[~ymd].head(3)) if len(present) else "none"
+            raise InputError(f"time column {name!r} holds numbers, not dates (e.g. {ex}); "
+                             "write dates as text such as 2025-01-31")
+        out[:] = pd.to_datetime(v.where(ymd).astype("Int64").astype(str), format="%Y%m%d",
+                                errors="coerce").astype("datetime64[ns]").to_numpy()
+        formats = {lab: "YYYYMMDD numbers" for lab in labels}
+    else:
+        text = values.astype(object)
+        for lab in labels:
+            mask = (site == lab).to_numpy() & text.notna().to_numpy()
+            vals = text[mask].astype(str).str.strip()
+            if len(vals) == 0:
+                continue
+            parsed, fmt, ambiguous = _parse_text_dates(vals)
+            ok = int(parsed.notna().sum())
+            if ok < DATE_SHARE * len(vals):
+                bad = vals[parsed.isna().to_numpy()]
+                ex = ", ".join(repr(x) for x in pd.unique(bad.to_numpy())[:3])
+                raise InputError(f"time column {name!r}: at site {lab!r}, {len(vals) - ok} of {len(vals)} values are "
+                                 f"not dates in any one format (e.g. {ex})")
+            out[mask] = parsed.astype("datetime64[ns]").to_numpy()
+            formats[lab] = "ISO 8601" if fmt == "ISO8601" else fmt
+            if ambiguous:
+                warn.append(f"time column {name!r}: dates at site {lab!r} were read day-first ({fmt}); "
+                            "every day number is 12 or less, so month-first would also fit")
+    lo, hi = PLAUSIBLE_DATES
+    implausible = out.notna() & ((out < lo) | (out >= hi))
+    out[implausible] = pd.NaT
+    notes: Dict[str, dict] = {}
+    without: Dict[str, int] = {}
+    for lab in labels:
+        m = (site == lab).to_numpy()
+        d = out[m]
+        dated = int(d.notna().sum())
+        notes[lab] = {"rows": int(m.sum()), "dated": dated, "without_date": int(m.sum()) - dated,
+                      "implausible": int(implausible[m].sum()),
+                      "first": None if dated == 0 else f"{d.min():%Y-%m-%d}",
+                      "last": None if dated == 0 else f"{d.max():%Y-%m-%d}",
+                      "format": formats.get(lab, "")}
+        if notes[lab]["without_date"]:
+            without[lab] = notes[lab]["without_date"]
+        if dated == 0:
+            warn.append(f"time column {name!r}: no usable date at site {lab!r}; the site is left out of the "
+                        "drift analysis")
+    if all(n["dated"] == 0 for n in notes.values()):
+        raise InputError(f"time column {name!r}: no value could be read as a date")
+    if without:
+        warn.append(f"time column {name!r}: {sum(without.values())} rows have no usable date ("
+                    + ", ".join(f"{k} {v}" for k, v in sorted(without.items()))
+                    + "); they are left out of the drift analysis")
+    return out, notes, warn

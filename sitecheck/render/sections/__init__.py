@@ -15,7 +15,7 @@ itself and are not listed here.
 """
 from importlib import import_module
 
-ORDER = ["probe", "leakage", "fingerprints", "repair", "maps", "harmonisation", "outcome"]  # module names inside this package, e.g. "probe", "leakage", ...
+ORDER = ["probe", "leakage", "fingerprints", "repair", "drift", "maps", "harmonisation", "outcome"]  # module names inside this package, e.g. "probe", "leakage", ...
 
 
 def modules():

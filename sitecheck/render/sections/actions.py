@@ -129,7 +129,9 @@ def model(doc: Dict[str, Any], min_cell: int) -> Dict[str, Any]:
     hyg = _hygiene_lines(doc, {(f.get("feature"), f.get("site")) for f in fps})
     gaps = _gap_lines(doc, min_cell)
     out_line = _outcome_line(doc)
-    tail = gaps + ([out_line] if out_line else [])
+    from .drift import next_lines as drift_lines  # changes over time at one site (--time)
+
+    tail = gaps + drift_lines(doc) + ([out_line] if out_line else [])
     first = hyg + mech
     room = max(MIN_MECHANICAL, MAX_LINES - len(tail) - 1)
     if len(tail) > MAX_LINES - min(room, len(first)):
@@ -165,6 +167,11 @@ def glance(doc: Dict[str, Any]) -> List[Dict[str, Any]]:
             kinds[artefact(f.get("kind"))] = kinds.get(artefact(f.get("kind")), 0) + 1
         items.append({"label": "Fingerprints", "text": ", ".join(f"{k} ({v})" for k, v in kinds.items()) or "none",
                       "href": "#fingerprints"})
+    from .drift import glance_item as drift_glance
+
+    drift = drift_glance(doc)
+    if drift:
+        items.append(drift)
     o = doc.get("outcome")
     if isinstance(o, dict) and o.get("pooled_auc") is not None:
         items.append({"label": "Outcome", "text": f"site-only AUC {num(o.get('site_only_auc'))}, pooled model AUC "

@@ -12,7 +12,7 @@ Operations
 ----------
 ``convert_unit``
     Multiply the site's values by the factor of the SI conversion table
-    (:mod:`sitecheck.units`) or apply the Fahrenheit -> Celsius formula, rounded
+    (:mod:`sitecheck.table.units`) or apply the Fahrenheit -> Celsius formula, rounded
     to the other sites' recording step; a linked unit column gets the others' label.
 ``recode_missing``
     The site's sentinel codes (``-99``, ``999`` ...) become missing.
@@ -212,9 +212,9 @@ def plan_repairs(table, fingerprints, *, censor_policy: Optional[str] = None) ->
 
     Parameters
     ----------
-    table : sitecheck.roles.Table
+    table : sitecheck.table.roles.Table
         The validated table the fingerprints were computed on (values as given).
-    fingerprints : sitecheck.fingerprints.FingerprintResult
+    fingerprints : sitecheck.analyses.fingerprints.FingerprintResult
     censor_policy : str, optional
         Policy of every ``censored_policy`` entry (one of :data:`CENSOR_POLICIES`).
         Default: below a limit ``limit_over_sqrt2``, or ``limit_over_2`` when the
@@ -229,9 +229,9 @@ def plan_repairs(table, fingerprints, *, censor_policy: Optional[str] = None) ->
     Examples
     --------
     >>> from sitecheck.demo import generate_demo, DEMO_ROLES
-    >>> from sitecheck.intake import frame_to_raw
-    >>> from sitecheck.roles import RoleSpec, assign_roles
-    >>> from sitecheck.fingerprints import find_fingerprints
+    >>> from sitecheck.reading.intake import frame_to_raw
+    >>> from sitecheck.table.roles import RoleSpec, assign_roles
+    >>> from sitecheck.analyses.fingerprints import find_fingerprints
     >>> d = generate_demo(1200, seed=7)
     >>> t = assign_roles(frame_to_raw(d.frame, site="hospital"), RoleSpec(site="hospital", covariates=("age", "sex"),
     ...                  identifiers=("attendance_id",), outcome="admitted_hdu"))
@@ -482,7 +482,7 @@ def repair_values(frame: pd.DataFrame, plan: RepairPlan, *, site: np.ndarray, ce
 
     ``frame`` holds numbers as float64 and text as objects (a copy is changed);
     ``site`` the site label of each row; ``cells`` the intake's
-    :class:`~sitecheck.intake.CellNotes` per column (censoring flags, idioms).
+    :class:`~sitecheck.reading.intake.CellNotes` per column (censoring flags, idioms).
     ``changed`` maps column -> boolean mask of the cells whose value or written
     form changes (for writing a file), ``None`` for a dropped column.
     """
