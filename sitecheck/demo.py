@@ -94,6 +94,15 @@ def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> D
         Aldermoor as ``<5`` below the detection limit, ``potassium`` at Cindervale
         with a decimal comma; they are text (object) columns, read as numbers by
         :mod:`sitecheck.reading.intake`.
+
+    Examples
+    --------
+    >>> from sitecheck import generate_demo
+    >>> demo = generate_demo(1200, seed=7)
+    >>> demo.frame.shape[0], sorted(demo.frame["hospital"].unique())
+    (1200, ['Aldermoor', 'Brackenholt', 'Cindervale', 'Duskwater'])
+    >>> sorted({e["kind"] for e in demo.truth["effects"]})[:3]
+    ['censored_below', 'floor', 'missing_code']
     """
     if n_rows < 80:
         raise ValueError("n_rows must be at least 80")

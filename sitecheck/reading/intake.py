@@ -646,6 +646,19 @@ def read_table(
     ------
     InputError
         Missing, empty, unreadable or undecodable files, duplicate column names.
+
+    Examples
+    --------
+    A value below a detection limit keeps its limit and a censoring flag; ``NA`` is missing:
+
+    >>> from sitecheck import read_table
+    >>> with open("labs.csv", "w") as fh:
+    ...     _ = fh.write("hospital,crp,potassium\\nAshby,12,4.1\\nAshby,<5,3.9\\nBrill,7,NA\\n")
+    >>> raw = read_table("labs.csv", site="hospital")
+    >>> raw.frame["crp"].tolist(), raw.cells["crp"].censor.tolist()
+    ([12.0, 5.0, 7.0], [0, -1, 0])
+    >>> {c.name: dict(c.idioms) for c in raw.columns}["crp"]
+    {'censored_below': 1}
     """
     path = os.fspath(path)
     if not os.path.exists(path):

@@ -39,6 +39,31 @@ class ScanResult:
     ``leakage``, ...) to that analysis's result object (anything with a
     ``to_dict`` method, or plain JSON data). Analyses that did not run are
     absent.
+
+    Attributes
+    ----------
+    input, run : dict
+        The input file (path, format, rows, SHA-256, sites) and the run (seed, options,
+        versions, seconds).
+    columns, findings, warnings : tuple
+        Each column's role and kind, the hygiene findings and the warnings of reading.
+    sections : dict
+        ``report.json`` key -> result.
+    objects : dict
+        The in-memory objects behind the sections (the table, the prepared matrices,
+        each analysis's result), for rendering; not part of the document.
+
+    Examples
+    --------
+    >>> from sitecheck import ScanOptions, generate_demo, scan_frame
+    >>> result = scan_frame(generate_demo(600, seed=7).frame, site="hospital",
+    ...                     identifiers=["attendance_id"],
+    ...                     options=ScanOptions(analyses=("probe",), folds=3, n_jobs=1))
+    >>> doc = result.to_dict()                     # the report.json document
+    >>> doc["schema"].startswith("sitecheck.report/"), doc["input"]["rows"]
+    (True, 600)
+    >>> print(result.summary().splitlines()[0])
+    sitecheck ...: 600 rows, 4 sites
     """
 
     input: Dict[str, Any]

@@ -94,6 +94,23 @@ class RoleSpec:
 
     ``None`` for a list means "not given" (so a config file value may apply);
     an empty tuple means "given, and empty".
+
+    Parameters
+    ----------
+    site : str, optional
+        The site (or group) column; required by :func:`assign_roles`.
+    outcome : str, optional
+        A binary outcome.
+    covariates, groups, identifiers, excluded : tuple of str, optional
+        Case-mix columns, demographic columns probed like sites, identifiers (never
+        features) and columns left out.
+
+    Examples
+    --------
+    >>> from sitecheck import RoleSpec
+    >>> spec = RoleSpec(site="hospital", covariates=("age",))
+    >>> spec.site, spec.covariates, spec.groups
+    ('hospital', ('age',), None)
     """
 
     site: Optional[str] = None
@@ -368,6 +385,17 @@ def assign_roles(
     InputError
         Unknown columns, fewer than two sites, a non-binary outcome, no usable
         feature.
+
+    Examples
+    --------
+    >>> from sitecheck import RoleSpec, assign_roles, read_table
+    >>> with open("labs.csv", "w") as fh:
+    ...     _ = fh.write("hospital,crp,potassium\\nAshby,12,4.1\\nAshby,<5,3.9\\n"
+    ...                  "Brill,7,NA\\nBrill,9,4.4\\n")
+    >>> table = assign_roles(read_table("labs.csv", site="hospital"), RoleSpec(site="hospital"),
+    ...                      min_site_rows=2)
+    >>> table.site_labels, table.features
+    (('Ashby', 'Brill'), ['crp', 'potassium'])
     """
     if not isinstance(min_site_rows, (int, np.integer)) or min_site_rows < 1:
         raise InputError(f"min_site_rows must be a positive integer, got {min_site_rows!r}")
