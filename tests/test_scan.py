@@ -11,7 +11,7 @@ import sys
 
 import pytest
 
-from sitecheck import analyses
+from sitecheck.analyses import registry as analyses
 from sitecheck.demo import DEMO_ROLES, generate_demo
 from sitecheck.scan import ScanOptions, scan_frame
 
@@ -50,10 +50,12 @@ LIGHT = ("probe", "leakage", "fingerprints", "outcome")
 
 def test_failed_analysis_is_recorded_and_the_others_kept(monkeypatch, small_frame):
     monkeypatch.delenv("SITECHECK_DEBUG", raising=False)
-    _patch(monkeypatch, "fingerprints", _raising("fingerprints"))
+    # the fingerprints run first (the repair plan is built from them), outside the registry loop
+    monkeypatch.setattr("sitecheck.analyses.fingerprints.find_fingerprints",
+                        lambda *a, **k: _raising("fingerprints")(None, None, None))
     result = _scan(small_frame, n_jobs=1, analyses=LIGHT)
     doc = result.to_dict()
-    assert doc["failed_analyses"] == [{"analysis": "fingerprints", "sections": ["fingerprints", "fingerprint_tests", "fingerprint_skipped"],
+    assert doc["failed_analyses"] == [{"analysis": "fingerprints", "sections": ["fingerprints", "fingerprint_tests", "fingerprint_skipped", "unit_columns"],
                                        "status": "failed", "error": "Boom",
                                        "message": "forced failure for the test", "process": "main"}]
     assert "fingerprints" not in doc and "fingerprint_tests" not in doc
@@ -98,25 +100,26 @@ def test_section_that_cannot_be_serialised_fails_alone(monkeypatch, small_frame)
 
 def test_debug_setting_raises(monkeypatch, small_frame):
     monkeypatch.setenv("SITECHECK_DEBUG", "1")
-    _patch(monkeypatch, "fingerprints", _raising("fingerprints"))
+    _patch(monkeypatch, "leakage", _raising("leakage"))
     with pytest.raises(Boom):
-        _scan(small_frame, n_jobs=1, analyses=("probe", "fingerprints"))
+        _scan(small_frame, n_jobs=1, analyses=("probe", "leakage"))
 
 
 def test_failure_in_second_process_is_recorded(monkeypatch, small_frame, tmp_path):
     """The spawned process imports sitecheck afresh: a sitecustomize module on its path makes
-    ``find_fingerprints`` raise there, and only there (the parent has already imported it)."""
+    ``harmonisation_check`` raise there, and only there (the parent has already imported it)."""
     monkeypatch.delenv("SITECHECK_DEBUG", raising=False)
     (tmp_path / "sitecustomize.py").write_text(
-        "import sitecheck.fingerprints as _f\n"
+        "import sitecheck.harmonise.methods as _h\n"
         "def _boom(*a, **k):\n"
         "    raise ArithmeticError('fault inside the second process')\n"
-        "_f.find_fingerprints = _boom\n", encoding="utf-8")
+        "_h.harmonisation_check = _boom\n", encoding="utf-8")
     monkeypatch.setenv("PYTHONPATH", os.pathsep.join([str(tmp_path), ROOT, os.environ.get("PYTHONPATH", "")]))
-    # probe and leak ranking in this process, fingerprints queued for the second (the only side task)
-    result = _scan(small_frame, n_jobs=2, analyses=("probe", "leakage", "fingerprints"))
+    # probe and leak ranking in this process, the harmonisation check queued for the second (the only side task)
+    result = _scan(small_frame, n_jobs=2, analyses=("probe", "leakage", "harmonise"), n_boot=50,
+                   n_permutations=19, harmonise_methods=("centre",))
     doc = result.to_dict()
-    assert doc["failed_analyses"] == [{"analysis": "fingerprints", "sections": ["fingerprints", "fingerprint_tests", "fingerprint_skipped"],
+    assert doc["failed_analyses"] == [{"analysis": "harmonise", "sections": ["harmonisation"],
                                        "status": "failed", "error": "ArithmeticError",
                                        "message": "fault inside the second process", "process": "second"}]
     assert doc["probe"]["auc"] > 0.5 and doc["leakage"]
@@ -132,7 +135,8 @@ def test_cli_writes_report_and_exits_3_with_one_line(tmp_path):
     script = tmp_path / "run.py"
     script.write_text(
         "import dataclasses, sys\n"
-        "from sitecheck import analyses, scan\n"
+        "from sitecheck import scan\n"
+        "from sitecheck.analyses import registry as analyses\n"
         "def boom(prep, options, objects):\n"
         "    raise KeyError('probe <b>fault</b>')\n"
         "analyses.REGISTRY = [dataclasses.replace(a, run=boom) if a.name == 'probe' else a\n"
