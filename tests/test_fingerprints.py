@@ -307,7 +307,7 @@ def test_temperature_check_without_a_reference_site_in_the_other_scale():
     # One clinic's median is in the Fahrenheit range and the median of the others' medians in the Celsius
     # range, but no single other clinic is in it (medians 25 and 50): no temperature pair, and no crash
     # (it used to concatenate an empty list of reference sites).
-    from sitecheck.fingerprints import detect_unit_ratio
+    from sitecheck.analyses.fingerprints import detect_unit_ratio
 
     rng = np.random.default_rng(3)
     vals = [np.sort(rng.normal(m, 1.0, 40)) for m in (98.0, 25.0, 50.0)]

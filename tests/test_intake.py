@@ -198,14 +198,16 @@ def test_infinite_and_overflowing_numbers_are_read_as_missing_and_listed(tmp_pat
     # and -0.0: the first two are not measurements, -0.0 is zero.
     import numpy as np
 
-    from sitecheck.intake import frame_to_raw, read_table
+    from sitecheck.reading.intake import frame_to_raw, read_table
 
+    rows = ["site,a,b", "A,1.5,inf", "B,1e300,2", "A,-0.0,4"] + [f"B,{i},{i}.5" for i in range(3, 25)]
     p = tmp_path / "x.csv"
-    p.write_text("site,a,b\nA,1.5,inf\nB,1e300,2\nA,-0.0,4\nB,3,-inf\n", encoding="utf-8")
+    p.write_text("\n".join(rows) + "\n", encoding="utf-8")
     raw = read_table(str(p))
     a, b = raw.frame["a"].to_numpy(), raw.frame["b"].to_numpy()
-    assert np.isnan(a[1]) and a[2] == 0.0 and np.isnan(b[0]) and np.isnan(b[3]) and b[1] == 2.0
+    assert a.dtype == float and b.dtype == float
+    assert np.isnan(a[1]) and a[2] == 0.0 and np.isnan(b[0]) and b[1] == 2.0 and np.isfinite(b[1:]).all()
     assert raw.column("a").missing_codes == {"beyond +/-1e+150": 1}
-    assert raw.column("b").missing_codes == {"inf": 2}
+    assert raw.column("b").unparsed_count == 1 and raw.column("b").unparsed_examples == ("inf",)
     fr = frame_to_raw(__import__("pandas").DataFrame({"x": [1.0, np.inf, -1e300, 2.0]}))
     assert fr.column("x").missing_codes == {"inf": 1, "beyond +/-1e+150": 1} and fr.column("x").n_missing == 2

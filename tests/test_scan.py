@@ -89,7 +89,7 @@ def test_section_that_cannot_be_serialised_fails_alone(monkeypatch, small_frame)
     reg = [dataclasses.replace(a, sections=lambda result: {"fingerprints": object()}) if a.name == "fingerprints"
            else a for a in analyses.REGISTRY]
     monkeypatch.setattr(analyses, "REGISTRY", reg)
-    from sitecheck.result import to_jsonable
+    from sitecheck.report.result import to_jsonable
 
     doc = _scan(small_frame, n_jobs=1, analyses=("probe", "fingerprints")).to_dict()
     json.dumps(doc, allow_nan=False)  # the report is still writable
