@@ -353,10 +353,14 @@ def _umap_with_cached_kernels():
 TSNE_EARLY_EXAGGERATION = 12.0
 TSNE_EARLY_ITER = 250
 TSNE_MOMENTUM = 0.8
+#: Floor of the learning rate ``rows / exaggeration`` (the classic default 200; scikit-learn's ``"auto"``
+#: has the same floor, written 50 on its gradient scale, which is a quarter of the usual one).
+TSNE_MIN_LEARNING_RATE = 200.0
 
 
 def tsne_map(Z, *, perplexity: float = 30.0, max_iter: int = 350, random_state: int = 0,
-             threads: Optional[int] = 1) -> Tuple[np.ndarray, Dict[str, Any]]:
+             threads: Optional[int] = 1, gradient: str = "fft", min_intervals: int = 10,
+             theta: float = 0.5) -> Tuple[np.ndarray, Dict[str, Any]]:
     """2-D t-SNE map of the rows of ``Z`` with FFT-accelerated interpolation of the repulsive forces.
 
     Affinities: exact Euclidean neighbours from scikit-learn (``k = min(n - 1, 3 * perplexity)``),
@@ -364,9 +368,10 @@ def tsne_map(Z, *, perplexity: float = 30.0, max_iter: int = 350, random_state: 
     ``PerplexityBasedNN``). Start: the first two principal components scaled to a standard deviation of
     1e-4 (openTSNE's ``pca`` initialisation, seeded). Schedule: ``TSNE_EARLY_ITER`` (250) iterations
     with early exaggeration 12, then ``max_iter - 250`` iterations without exaggeration, momentum 0.8
-    throughout, learning rate ``n / exaggeration`` in each phase (openTSNE's ``"auto"``). The repulsive
-    forces are interpolated on a grid and convolved by FFT (Linderman et al. 2019) with openTSNE's
-    defaults (3 interpolation points per interval, at least 50 intervals, one interval per unit).
+    throughout, learning rate ``max(n / exaggeration, 200)`` in each phase (Belkina et al. 2019; without
+    the floor, a few hundred rows barely move during early exaggeration). The repulsive
+    forces are interpolated on a grid and convolved by FFT (Linderman et al. 2019): 3 interpolation
+    points per interval, one interval per unit of the map and at least ``min_intervals`` intervals.
 
     Parameters
     ----------
@@ -374,13 +379,24 @@ def tsne_map(Z, *, perplexity: float = 30.0, max_iter: int = 350, random_state: 
     perplexity : float, default 30
         Capped at ``(n - 1) / 3`` (at least 2).
     max_iter : int, default 350
-        Iterations in all (at least 251). Measured at 6,000-10,000 rows on 2 busy cores: 9-12 CPU
+        Iterations in all (at least 250). Measured at 6,000-10,000 rows on 2 busy cores: 9-12 CPU
         seconds against 16-61 for scikit-learn's Barnes-Hut t-SNE (angle 0.7) with the same 350
         iterations, with a map at least as trustworthy (``tests/benchmarks/bench_maps.py``).
     random_state : int
         Seeds the PCA start and its jitter; the optimisation itself draws no random numbers.
     threads : int or None, default 1
         Threads of openTSNE's own loops (None: 1). One thread keeps repeated runs bit-identical.
+    gradient : {"fft", "bh"}, default "fft"
+        Repulsive forces by FFT-accelerated interpolation, or by Barnes-Hut (``theta``).
+    min_intervals : int, default 10
+        Fewest interpolation intervals per axis. openTSNE's default, 50, sets a fixed cost of about
+        5 CPU seconds per 350 iterations however few the rows (measured: 5.2 s at 600 rows, when
+        Barnes-Hut takes 0.9 s); with 10 it is 1.4 s, and 4.3 s instead of 7.6 s at 6,000 rows, with
+        the same LISI and trustworthiness (``bench_maps.py``). The intervals are never wider than one
+        unit of the map, the library's default resolution, which is what a spread-out map uses anyway
+        (its span grows past 10 units within the first iterations after early exaggeration).
+    theta : float, default 0.5
+        Barnes-Hut opening angle (``gradient="bh"`` only).
 
     Returns
     -------
@@ -409,8 +425,11 @@ def tsne_map(Z, *, perplexity: float = 30.0, max_iter: int = 350, random_state: 
     if n < 5:
         raise InputError(f"maps need at least 5 rows, got {n}")
     max_iter = int(max_iter)
-    if max_iter <= TSNE_EARLY_ITER:
-        raise ValueError(f"max_iter must exceed the {TSNE_EARLY_ITER} early-exaggeration iterations, got {max_iter}")
+    if gradient not in ("fft", "bh"):
+        raise ValueError(f"gradient must be 'fft' or 'bh', got {gradient!r}")
+    if max_iter < TSNE_EARLY_ITER:
+        raise ValueError(f"max_iter must be at least the {TSNE_EARLY_ITER} early-exaggeration iterations, "
+                         f"got {max_iter}")
     seed = int(random_state)
     jobs = 1 if threads is None else max(1, int(threads))
     perp = float(min(perplexity, max(2.0, (n - 1) / 3.0)))
@@ -420,23 +439,29 @@ def tsne_map(Z, *, perplexity: float = 30.0, max_iter: int = 350, random_state: 
     if d >= 2:
         start = initialization.pca(Z, n_components=2, random_state=seed)
     else:  # one design column: its values on the first axis, the second axis from the jitter only
-        start = initialization.jitter(initialization.rescale(np.column_stack([Z[:, 0] - Z[:, 0].mean(), np.zeros(n)])),
-                                      random_state=seed)
-    tsne = openTSNE.TSNE(n_components=2, perplexity=perp, learning_rate="auto",
-                         early_exaggeration=TSNE_EARLY_EXAGGERATION, early_exaggeration_iter=TSNE_EARLY_ITER,
-                         n_iter=max_iter - TSNE_EARLY_ITER, exaggeration=None,
-                         initial_momentum=TSNE_MOMENTUM, final_momentum=TSNE_MOMENTUM,
-                         negative_gradient_method="fft", n_interpolation_points=3, min_num_intervals=50,
-                         ints_in_interval=1, n_jobs=jobs, random_state=seed, verbose=False)
-    Y = np.array(tsne.fit(affinities=affinities, initialization=start), dtype=np.float64)
-    settings = {"perplexity": perp, "max_iter": max_iter, "angle": None, "init": "pca",
-                "method": "fft_interpolation",
+        first = np.column_stack([Z[:, 0] - Z[:, 0].mean(), np.zeros(n)])
+        start = initialization.jitter(initialization.rescale(first), random_state=seed)
+    tsne = openTSNE.TSNE(n_components=2, perplexity=perp, negative_gradient_method=gradient, theta=theta,
+                         n_interpolation_points=3, min_num_intervals=int(min_intervals), ints_in_interval=1,
+                         n_jobs=jobs, random_state=seed, verbose=False)
+    embedding = tsne.prepare_initial(affinities=affinities, initialization=start)
+    for n_iter, exaggeration in ((TSNE_EARLY_ITER, TSNE_EARLY_EXAGGERATION), (max_iter - TSNE_EARLY_ITER, 1.0)):
+        if n_iter > 0:
+            embedding = embedding.optimize(n_iter=n_iter, exaggeration=exaggeration, momentum=TSNE_MOMENTUM,
+                                           learning_rate=max(n / exaggeration, TSNE_MIN_LEARNING_RATE),
+                                           inplace=True)
+    Y = np.array(embedding, dtype=np.float64)
+    fft = gradient == "fft"
+    settings = {"perplexity": perp, "max_iter": max_iter, "angle": None if fft else float(theta), "init": "pca",
+                "method": "fft_interpolation" if fft else "barnes_hut",
+                "interpolation": (f"3 points per interval, one interval per unit of the map, at least "
+                                  f"{int(min_intervals)} per axis") if fft else None,
                 "schedule": f"{TSNE_EARLY_ITER} iterations with early exaggeration {TSNE_EARLY_EXAGGERATION:g}, "
                             f"then {max_iter - TSNE_EARLY_ITER} without; momentum {TSNE_MOMENTUM:g}; learning rate "
-                            "rows / exaggeration",
+                            f"max(rows / exaggeration, {TSNE_MIN_LEARNING_RATE:g})",
                 "early_exaggeration": TSNE_EARLY_EXAGGERATION, "early_exaggeration_iter": TSNE_EARLY_ITER,
                 "neighbours": f"exact (scikit-learn), Euclidean, k = {k}",
-                "library": "openTSNE (FFT-accelerated interpolation, Linderman et al. 2019)",
+                "library": "openTSNE",
                 "axes": "t-SNE coordinates have no units; distances between clusters and cluster "
                         "sizes are not metric"}
     return Y, settings
