@@ -246,3 +246,70 @@ def test_maps_computed_apart_and_merged_equal_maps_computed_together(demo_prepar
         assert np.array_equal(merged.coords[m], together.coords[m])
     with pytest.raises(InputError):
         merge_maps(together, together)  # the same map twice
+
+
+# ----------------------------------------------------------------- t-SNE: FFT interpolation against today's map
+
+def _thirty_site_prepared(n_per_site=40, seed=11):
+    """An invented 30-site table shaped like a pooled laboratory extract: values rounded as analysers
+    report them, a coded categorical column, a few cells missing, one test never measured at one
+    site, and a site-specific offset on two features."""
+    import pandas as pd
+
+    from sitecheck.reading.intake import frame_to_raw
+    from sitecheck.table.prepare import prepare
+    from sitecheck.table.roles import RoleSpec, assign_roles
+
+    rng = np.random.default_rng(seed)
+    sites = np.repeat([f"Clinic-{k:02d}" for k in range(30)], n_per_site)
+    code = np.repeat(np.arange(30), n_per_site)
+    shift = rng.normal(size=(30, 2))
+    n = len(sites)
+    frame = pd.DataFrame({
+        "ward": sites,
+        "sodium": np.round(140 + 3 * rng.normal(size=n) + 1.5 * shift[code, 0]),          # mmol/L, whole numbers
+        "potassium": np.round(4.2 + 0.4 * rng.normal(size=n) + 0.2 * shift[code, 1], 1),  # one decimal
+        "creatinine": np.round(np.exp(4.4 + 0.3 * rng.normal(size=n))),                   # umol/L, skewed
+        "heart_rate": np.round(80 + 12 * rng.normal(size=n)),
+        "temp_c": np.round(36.9 + 0.5 * rng.normal(size=n), 1),
+        "triage": rng.choice(["T1", "T2", "T3", "T4"], size=n, p=[0.1, 0.3, 0.4, 0.2]),
+    })
+    frame.loc[rng.random(n) < 0.04, "heart_rate"] = np.nan
+    frame.loc[frame["ward"] == "Clinic-07", "creatinine"] = np.nan  # never measured at one site
+    table = assign_roles(frame_to_raw(frame), RoleSpec(site="ward"))
+    return prepare(table, random_state=0)
+
+
+def _today_tsne(Z, perplexity, seed):
+    # The map before this change: scikit-learn's Barnes-Hut t-SNE, 350 iterations (250 with early
+    # exaggeration 12), angle 0.7, PCA start, learning rate "auto".
+    from sklearn.manifold import TSNE
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(1):  # one thread, as in a scan (OpenMP threads spin on a busy machine)
+        return TSNE(n_components=2, perplexity=perplexity, init="pca", learning_rate="auto", max_iter=350,
+                    angle=0.7, random_state=seed).fit_transform(Z)
+
+
+@pytest.mark.parametrize("table", ["demo", "thirty_sites"])
+def test_fft_tsne_same_mixing_and_trustworthiness_as_todays_map(table, demo_prepared):
+    # Same conclusions: the normalised LISI of the new map within 0.03 of today's (scikit-learn's t-SNE,
+    # the reference library) and scikit-learn's trustworthiness (Venna & Kaski 2001) no lower by more
+    # than 0.01, on the 1,200-row demo fixture (4 sites) and an invented 30-site table.
+    from sklearn.manifold import trustworthiness
+
+    from sitecheck.analyses.maps import preprocess, tsne_map
+
+    prep = demo_prepared if table == "demo" else _thirty_site_prepared()
+    Z = preprocess(prep.X, prep.features.categorical)
+    site = prep.site
+    exp = expected_random(np.bincount(site))
+    new, settings = tsne_map(Z, perplexity=30.0, random_state=0)
+    assert settings["method"] == "fft_interpolation" and settings["max_iter"] == 350
+    old = _today_tsne(Z, 30.0, 0)
+    lisi_new, lisi_old = lisi(new, site).mean() / exp, lisi(old, site).mean() / exp
+    assert abs(lisi_new - lisi_old) <= 0.03, (lisi_new, lisi_old)
+    t_new, t_old = trustworthiness(Z, new, n_neighbors=5), trustworthiness(Z, old, n_neighbors=5)
+    assert t_new >= t_old - 0.01, (t_new, t_old)
+    # and a map, not noise: trustworthiness of random coordinates is about 0.5 (Venna & Kaski 2001)
+    assert t_new > 0.8
