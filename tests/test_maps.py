@@ -313,3 +313,40 @@ def test_fft_tsne_same_mixing_and_trustworthiness_as_todays_map(table, demo_prep
     assert t_new >= t_old - 0.01, (t_new, t_old)
     # and a map, not noise: trustworthiness of random coordinates is about 0.5 (Venna & Kaski 2001)
     assert t_new > 0.8
+
+
+_KERNEL_CHILD = r'''
+import hashlib, json
+import numpy as np
+from sitecheck.analyses import maps
+Z = np.random.default_rng(2).normal(size=(150, 4)).round(1)
+coords, _ = maps.embed(Z, methods=("tsne", "umap"), random_state=1, umap_n_epochs=30)
+from umap import layouts
+stats = layouts._nb_optimize_layout_euclidean_single_epoch.stats
+print(json.dumps({"sha": {m: hashlib.sha256(np.ascontiguousarray(c).tobytes()).hexdigest() for m, c in coords.items()},
+                  "hits": sum(stats.cache_hits.values()), "misses": sum(stats.cache_misses.values()),
+                  "path": stats.cache_path}))
+'''
+
+
+def test_umap_kernels_cached_between_processes_and_maps_bit_identical(tmp_path):
+    # UMAP's numba kernels are compiled once and loaded from the user's cache directory by the next
+    # process (numba's dispatcher statistics count cache hits and misses); a map drawn with loaded kernels
+    # is bit-for-bit the map drawn with freshly compiled ones, and so is the t-SNE map of a fresh process.
+    import subprocess
+    import sys
+
+    env = {k: v for k, v in os.environ.items() if k != "NUMBA_CACHE_DIR"}
+    env["XDG_CACHE_HOME"] = str(tmp_path)
+    runs = []
+    for _ in range(2):
+        out = subprocess.run([sys.executable, "-c", _KERNEL_CHILD], env=env, capture_output=True, text=True,
+                             timeout=600)
+        assert out.returncode == 0, out.stderr[-2000:]
+        runs.append(json.loads(out.stdout.strip().splitlines()[-1]))
+    first, second = runs
+    assert first["path"].startswith(os.path.join(str(tmp_path), "sitecheck", "numba"))
+    assert first["misses"] >= 1 and first["hits"] == 0  # compiled, then written to the cache
+    assert second["hits"] >= 1 and second["misses"] == 0  # loaded, not compiled
+    assert any(p.suffix == ".nbc" for p in tmp_path.rglob("*"))
+    assert first["sha"] == second["sha"]
