@@ -72,7 +72,7 @@ def _versions() -> Dict[str, str]:
     import importlib.metadata as md
 
     out = {"sitecheck": __version__, "python": platform.python_version()}
-    for pkg in ("numpy", "pandas", "scikit-learn", "scipy", "umap-learn", "matplotlib", "pyarrow"):
+    for pkg in ("numpy", "pandas", "scikit-learn", "scipy", "umap-learn", "openTSNE", "matplotlib", "pyarrow"):
         try:
             out[pkg] = md.version(pkg)
         except md.PackageNotFoundError:  # pragma: no cover
