@@ -138,7 +138,7 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
     todo = [a for a in analyses.REGISTRY if options.wants(a.part_of or a.name) and a.applies(prep)]
     names = {a.name for a in todo}
     needed = {d for a in todo for d in a.needs}
-    side = [a.name for a in sorted(todo, key=lambda a: -a.priority) if not a.needs and a.name not in needed]
+    side = [a.name for a in sorted(todo, key=lambda a: -a.cost(prep)) if not a.needs and a.name not in needed]
     objects: Dict[str, Any] = {}
     if int(options.n_jobs) > 1 and side and len(side) < len(todo) and prep.n_total <= PARALLEL_MAX_ROWS:
         from concurrent.futures import ProcessPoolExecutor

@@ -350,3 +350,24 @@ def test_umap_kernels_cached_between_processes_and_maps_bit_identical(tmp_path):
     assert second["hits"] >= 1 and second["misses"] == 0  # loaded, not compiled
     assert any(p.suffix == ".nbc" for p in tmp_path.rglob("*"))
     assert first["sha"] == second["sha"]
+
+
+def test_second_process_queue_follows_measured_stage_costs():
+    # The queue order (longest first) comes from estimates fitted to measured stage seconds
+    # (bench_maps.py, run.py; contributor guide): on the 6,000-row demo with an outcome, harmonisation
+    # (10.3 s) before PCA/UMAP (6.9 s) and t-SNE (5.4 s); on 9,000 rows x 20 features x 30 sites,
+    # PCA/UMAP (8.3 s) and t-SNE (6.1 s) before harmonisation (4.6 s); at 100,000 x 50 x 4,
+    # harmonisation (18.4 s) first.
+    from sitecheck.analyses.registry import REGISTRY
+
+    def shape(n, p, sites, outcome):
+        return SimpleNamespace(n_used=n, features=SimpleNamespace(kinds=["numeric"] * p, n_features=p),
+                               site_labels=[f"s{k}" for k in range(sites)], outcome=np.zeros(n) if outcome else None)
+
+    def order(prep):
+        queued = [a for a in REGISTRY if not a.needs and a.name not in {"probe"}]
+        return [a.name for a in sorted(queued, key=lambda a: -a.cost(prep))]
+
+    assert order(shape(6000, 19, 4, True)) == ["harmonise", "maps", "maps_tsne", "fingerprints"]
+    assert order(shape(9000, 20, 30, False)) == ["maps", "maps_tsne", "harmonise", "fingerprints"]
+    assert order(shape(100_000, 50, 4, False))[0] == "harmonise"
