@@ -15,8 +15,9 @@ import numpy as np
 import pandas as pd
 
 from sitecheck import __version__
-from sitecheck.reading.config import load_config
-from .errors import InputError
+from sitecheck._runtime import SINGLE_THREAD_BELOW, thread_limit
+from sitecheck.reading.config import RunConfig, resolve_config
+from sitecheck.errors import InputError
 from sitecheck.reading.intake import RawTable, frame_to_raw, read_table
 from sitecheck.table.prepare import Prepared, prepare
 from sitecheck.report.result import ScanResult
@@ -50,6 +51,21 @@ class ScanOptions:
     n_jobs : int, default 2
         2 runs the independent analyses in a second process (tables up to 200,000
         rows); 1 runs everything in turn in this process.
+    repair : bool, default True
+        The maps, the harmonisation check and the outcome analysis read the values
+        after the repair plan's safe entries (:mod:`sitecheck.table.repair`); False keeps
+        the values as given. The probe, the leak ranking and the fingerprints always
+        read the values as given; the residual probe always the repaired ones.
+    censor_policy : str, optional
+        Policy of the plan's censoring entries (:data:`sitecheck.table.repair.CENSOR_POLICIES`);
+        default after Hornung & Reed (1990).
+
+    Examples
+    --------
+    >>> from sitecheck import ScanOptions
+    >>> options = ScanOptions(seed=3, folds=3, analyses=("probe", "leakage"))
+    >>> options.folds, options.wants("maps")
+    (3, False)
     """
 
     seed: int = 0
@@ -63,6 +79,8 @@ class ScanOptions:
     threshold: Optional[float] = None
     analyses: Optional[tuple] = None
     n_jobs: int = 2
+    repair: bool = True
+    censor_policy: Optional[str] = None
 
     def wants(self, name: str) -> bool:
         return self.analyses is None or name in self.analyses
@@ -80,12 +98,18 @@ def _versions() -> Dict[str, str]:
     return out
 
 
-def _run_specs(prep: Prepared, options: ScanOptions, names, objects: Dict[str, Any],
+def _prep_for(preps, spec) -> Prepared:
+    """The prepared table an analysis reads (``Analysis.on``)."""
+    if isinstance(preps, dict):
+        return preps.get(spec.on, preps["given"])
+    return preps
+
+
+def _run_specs(preps, options: ScanOptions, names, objects: Dict[str, Any],
                say: Progress, timings: Dict[str, float], threads: Optional[int] = 1) -> Dict[str, Any]:
     """Run the named analyses in turn with native thread pools limited to ``threads``
-    (None: no limit); fill ``objects``."""
-    from threadpoolctl import threadpool_limits
-
+    (None: no limit); fill ``objects``. ``preps`` is one Prepared or {"given", "repaired",
+    "residual"}: each analysis reads the one its ``on`` names."""
     from sitecheck.analyses import registry as analyses
 
     for spec in analyses.REGISTRY:
@@ -93,8 +117,8 @@ def _run_specs(prep: Prepared, options: ScanOptions, names, objects: Dict[str, A
             continue
         say(f"{spec.name}...")
         t0 = time.perf_counter()
-        with threadpool_limits(limits=threads):
-            objects[spec.name] = spec.run(prep, options, objects)
+        with thread_limit(threads):
+            objects[spec.name] = spec.run(_prep_for(preps, spec), options, objects)
         timings[spec.name] = round(time.perf_counter() - t0, 3)
     return objects
 
@@ -107,11 +131,12 @@ def _side_lane(prep: Prepared, options: ScanOptions, names) -> tuple:
 
 
 #: Above this many rows the scan runs in one process (a second one would copy the table).
-PARALLEL_MAX_ROWS = 200_000
+PARALLEL_MAX_ROWS = SINGLE_THREAD_BELOW
 
 
 def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Progress] = None,
-                 timings: Optional[Dict[str, float]] = None) -> Dict[str, Any]:
+                 timings: Optional[Dict[str, float]] = None, repaired: Optional[Prepared] = None,
+                 done: Optional[Dict[str, Any]] = None) -> Dict[str, Any]:
     """Run the registered analyses on a prepared table; return {"sections", "objects"}.
 
     With ``options.n_jobs > 1`` (and at most :data:`PARALLEL_MAX_ROWS` rows) the
@@ -123,6 +148,11 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
     thread pools and its own seeded generators, so the results are the same whatever
     the schedule; parts are merged (``Analysis.part_of``) and sections assembled in
     registry order.
+
+    ``repaired`` is the table after the repair plan's safe entries: analyses with
+    ``on="repaired"`` read it when ``options.repair`` (else the values as given), those
+    with ``on="residual"`` always. ``done`` holds results computed before (the
+    fingerprints, from which the plan was built; the plan itself as ``"repair"``).
     """
     import multiprocessing as mp
 
@@ -135,11 +165,17 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
                            "put the script's scan under `if __name__ == \"__main__\":`")
     say = progress or (lambda msg: None)
     timings = timings if timings is not None else {}
-    todo = [a for a in analyses.REGISTRY if options.wants(a.part_of or a.name) and a.applies(prep)]
-    names = {a.name for a in todo}
+    done = dict(done or {})
+    preps = {"given": prep, "repaired": repaired if (repaired is not None and options.repair) else prep,
+             "residual": repaired if repaired is not None else prep}
+    todo = [a for a in analyses.REGISTRY if options.wants(a.part_of or a.name) and a.applies(_prep_for(preps, a))
+            and (a.on != "residual" or repaired is not None)]
+    names = {a.name for a in todo} - set(done)
     needed = {d for a in todo for d in a.needs}
-    side = [a.name for a in sorted(todo, key=lambda a: -a.cost(prep)) if not a.needs and a.name not in needed]
-    objects: Dict[str, Any] = {}
+    side = [a.name for a in sorted(todo, key=lambda a: -a.cost(_prep_for(preps, a)))
+            if not a.needs and a.name not in needed and a.name in names]
+    spec_of = {a.name: a for a in todo}
+    objects: Dict[str, Any] = dict(done)
     if int(options.n_jobs) > 1 and side and len(side) < len(todo) and prep.n_total <= PARALLEL_MAX_ROWS:
         from concurrent.futures import ProcessPoolExecutor
 
@@ -155,7 +191,7 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
                     if queue and not broken:
                         name = queue[0]
                         try:
-                            future = pool.submit(_side_lane, prep, options, [name])
+                            future = pool.submit(_side_lane, _prep_for(preps, spec_of[name]), options, [name])
                         except (BrokenProcessPool, RuntimeError):
                             broken.append(name)
                             return
@@ -164,13 +200,13 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
                         future.add_done_callback(submit_next)
 
             submit_next()
-            _run_specs(prep, options, names - set(side), objects, say, timings)
+            _run_specs(preps, options, names - set(side), objects, say, timings)
             while True:  # list scheduling: both processes take the next queued task when free
                 with lock:
                     if not queue:
                         break
                     name = queue.pop(0)
-                _run_specs(prep, options, {name}, objects, say, timings)
+                _run_specs(preps, options, {name}, objects, say, timings)
             remote = [name for name in side if name in futures]
             if any(not futures[name].done() for name in remote):
                 say(f"waiting for {', '.join(remote)}")
@@ -188,7 +224,7 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
             # scan at import time, without an ``if __name__ == "__main__":`` guard, is run again
             # by the spawned process): its analyses run here instead, with the same results.
             say(f"the second process stopped; running {', '.join(lost)} here")
-            _run_specs(prep, options, set(lost), objects, say, timings)
+            _run_specs(preps, options, set(lost), objects, say, timings)
             remote = [name for name in remote if name not in lost]
         if remote:
             say(", ".join(f"{k} {timings[k]:.1f}s" for k in remote) + " (second process)")
@@ -196,7 +232,7 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
         # Large tables stay in one process and may use every core; small ones keep one
         # thread per analysis so that n_jobs=1 and n_jobs=2 give the same numbers.
         threads = None if prep.n_total > PARALLEL_MAX_ROWS else 1
-        _run_specs(prep, options, names, objects, say, timings, threads=threads)
+        _run_specs(preps, options, names, objects, say, timings, threads=threads)
     for spec in todo:  # fold parts computed apart into their analysis
         if spec.part_of is not None and spec.name in objects:
             part, whole = objects.pop(spec.name), objects.get(spec.part_of)
@@ -223,7 +259,19 @@ def scan_table(table: Table, options: ScanOptions = ScanOptions(), *,
     t0 = time.perf_counter()
     prep = prepare(table, n_splits=options.folds, max_rows=options.max_rows, random_state=options.seed)
     timings["prepare"] = round(time.perf_counter() - t0, 3)
-    out = run_analyses(prep, options, progress=progress, timings=timings)
+    done, repaired, plan_doc = _repair_stage(table, prep, options, say, timings)
+    out = run_analyses(prep, options, progress=progress, timings=timings, repaired=repaired, done=done)
+    sections = dict(out["sections"])
+    objects = dict(out["objects"])
+    if plan_doc is not None:
+        values = "after repair" if (options.repair and repaired is not None) else "as given"
+        for key in ("embedding", "harmonisation", "outcome"):
+            if key in sections:
+                # harmonisation is keyed by method: the label goes into each method's entry
+                sections[key] = Labelled(sections[key], values, per_entry=key == "harmonisation")
+        sections["repair"] = plan_doc["summary"]
+        objects["repair_plan"] = plan_doc["plan"]
+        objects["repair_log"] = plan_doc["log"]
     raw = table.source
     input_doc = {
         "path": raw.path,
@@ -237,6 +285,8 @@ def scan_table(table: Table, options: ScanOptions = ScanOptions(), *,
         "dropped_sites": dict(table.dropped_sites),
         "outcome": table.outcome,
     }
+    if table.time:
+        input_doc["time_column"] = table.time
     timings["total"] = round(time.perf_counter() - t_start, 3)
     run = {
         "seed": int(options.seed),
@@ -251,49 +301,212 @@ def scan_table(table: Table, options: ScanOptions = ScanOptions(), *,
         findings=tuple(f.to_dict() for f in table.findings),
         warnings=tuple(table.warnings),
         run=run,
-        sections=out["sections"],
-        objects={"table": table, "prepared": prep, **out["objects"]},
+        sections=sections,
+        objects={"table": table, "prepared": prep, **objects},
     )
+
+
+class Labelled:
+    """A section result with the values it was computed on (``"after repair"`` or
+    ``"as given"``) added to its ``report.json`` dict; attributes pass through."""
+
+    def __init__(self, inner: Any, values: str, per_entry: bool = False):
+        self.__dict__["inner"] = inner
+        self.__dict__["values"] = values
+        self.__dict__["per_entry"] = per_entry
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self.__dict__["inner"], name)
+
+    def to_dict(self) -> Dict[str, Any]:
+        from sitecheck.report.result import to_jsonable
+
+        d = to_jsonable(self.__dict__["inner"])
+        if isinstance(d, dict) and self.__dict__["per_entry"]:
+            return {k: ({"values": self.__dict__["values"], **v} if isinstance(v, dict) else v) for k, v in d.items()}
+        if isinstance(d, dict):
+            d = {"values": self.__dict__["values"], **d}
+        return d
+
+
+def _repair_stage(table: Table, prep: Prepared, options: ScanOptions, say: Progress, timings: Dict[str, float]):
+    """Fingerprints first, then the repair plan and the table after its safe entries.
+
+    Returns (results computed here, the repaired Prepared or None, the plan's documents or None).
+    """
+    if not options.wants("fingerprints"):
+        return {}, None, None
+    from sitecheck.analyses.fingerprints import find_fingerprints
+    from sitecheck.table.repair import apply_repairs, plan_repairs
+
+    say("fingerprints...")
+    t0 = time.perf_counter()
+    fp = find_fingerprints(prep)
+    timings["fingerprints"] = round(time.perf_counter() - t0, 3)
+    t0 = time.perf_counter()
+    plan = plan_repairs(table, fp, censor_policy=options.censor_policy)
+    repaired_table, log = apply_repairs(table, plan, safe_only=True)
+    applied = [e for e in plan.entries if e.id in log.applied]
+    repaired = None
+    if applied:
+        repaired = prepare(repaired_table, n_splits=options.folds, max_rows=options.max_rows,
+                           random_state=options.seed)
+    timings["repair"] = round(time.perf_counter() - t0, 3)
+    applied_doc = [{"id": e.id, "kind": e.kind, "column": e.column, "site": e.site, "operation": e.operation,
+                    "cells": int(sum(log.cells_by_site.get(str(e.site), {}).get(e.column, {}).values()))
+                    if e.operation != "drop_column" else e.cells} for e in applied]
+    say(f"repair plan: {len(plan.entries)} entries, {len(applied)} safe ones applied in memory")
+    summary = {
+        "plan_file": "repair_plan.json", "plan_version": plan.version, "n_entries": len(plan.entries),
+        "n_safe": len(plan.safe()),
+        "values_for_maps_harmonisation_outcome": "after repair" if (options.repair and repaired is not None)
+        else "as given",
+        "entries": [{"id": e.id, "kind": e.kind, "column": e.column, "site": e.site, "operation": e.operation,
+                     "cells": e.cells, "rows": e.rows, "safe": e.safe, "enabled": e.enabled, "reason": e.reason}
+                    for e in plan.entries],
+        "applied_in_scan": applied_doc, "log": log.to_dict(), "not_repaired": list(plan.not_repaired),
+    }
+    return ({"fingerprints": fp, "repair": {"plan": plan, "log": log, "applied": applied_doc}}, repaired,
+            {"summary": summary, "plan": plan, "log": log})
 
 
 def build_table(raw: RawTable, roles: RoleSpec, *, config_path: Optional[str] = None,
                 min_site_rows: Optional[int] = None, include_datetime: Optional[bool] = None):
-    """Merge roles over a config file and validate; return (Table, file options)."""
-    cfg = load_config(config_path)
-    merged = roles.merged_over(cfg.roles)
-    msr = min_site_rows if min_site_rows is not None else int(cfg.options.get("min_site_rows", 20))
-    inc = include_datetime if include_datetime is not None else bool(cfg.options.get("include_datetime", False))
-    table = assign_roles(raw, merged, min_site_rows=msr, include_datetime=inc)
-    return table, cfg.options
+    """Merge roles over a config file and validate; return (Table, the file's options)."""
+    run = resolve_config(config_path, roles=roles,
+                         options={"min_site_rows": min_site_rows, "include_datetime": include_datetime})
+    return _table_for(raw, run), run.file_options
+
+
+def _table_for(raw: RawTable, run: RunConfig) -> Table:
+    return assign_roles(raw, run.roles, min_site_rows=run.options.min_site_rows,
+                        include_datetime=run.options.include_datetime)
+
+
+def scan_configured(path: str, run: RunConfig, *, progress: Optional[Progress] = None) -> ScanResult:
+    """Read ``path`` and scan it as ``run`` (from :func:`sitecheck.reading.config.resolve_config`) says.
+
+    The one path of a file scan, shared by :func:`scan_file` and the command line.
+    """
+    if not isinstance(run, RunConfig):
+        raise TypeError(f"run must be a RunConfig (see sitecheck.reading.config.resolve_config), got {type(run).__name__}")
+    say = progress or (lambda msg: None)
+    say(f"reading {path}")
+    raw = read_table(path, sep=run.sep, encoding=run.encoding, site=run.roles.site)
+    table = _table_for(raw, run)
+    say(f"{len(table.frame)} rows, {len(table.site_labels)} sites, {len(table.features)} features")
+    return scan_table(table, run.options, progress=progress, config=run.record())
 
 
 def scan_file(path: str, *, site: Optional[str] = None, outcome: Optional[str] = None,
               covariates: Optional[Sequence[str]] = None, groups: Optional[Sequence[str]] = None,
               identifiers: Optional[Sequence[str]] = None, excluded: Optional[Sequence[str]] = None,
-              config: Optional[str] = None, sep: Optional[str] = None, encoding: str = "utf-8",
-              options: Optional[ScanOptions] = None, progress: Optional[Progress] = None) -> ScanResult:
-    """Read a file and scan it. Role arguments override the config file's."""
-    raw = read_table(path, sep=sep, encoding=encoding)
-    roles = _spec(site, outcome, covariates, groups, identifiers, excluded)
-    opts = options or ScanOptions()
-    table, _ = build_table(raw, roles, config_path=config, min_site_rows=opts.min_site_rows,
-                           include_datetime=opts.include_datetime)
-    return scan_table(table, opts, progress=progress)
+              config: Optional[str] = None, sep: Optional[str] = None, encoding: Optional[str] = None,
+              options: Optional[ScanOptions] = None, progress: Optional[Progress] = None,
+              time: Optional[str] = None) -> ScanResult:
+    """Read a file and scan it (``time`` names the date column that adds the drift analysis).
+
+    Parameters
+    ----------
+    path : str
+        CSV, TSV, gzip-compressed CSV/TSV or Parquet, chosen by extension.
+    site, outcome : str, optional
+        Column roles; override the config file's.
+    covariates, groups, identifiers, excluded : sequence of str, optional
+        Column roles; each overrides the config file's list.
+    config : str, optional
+        TOML file with roles, ``[panels]`` and ``[options]``.
+    sep, encoding : str, optional
+        Reading options; override the config file's (default: from the extension, utf-8).
+    options : ScanOptions or mapping, optional
+        Fields set to other than their default (or the keys of a mapping) override the
+        config file's ``[options]``.
+    progress : callable, optional
+        Called with one line per stage.
+
+    Returns
+    -------
+    ScanResult
+
+    Raises
+    ------
+    InputError
+        A problem with the file, the config file or the roles, named in one line.
+
+    Notes
+    -----
+    The command line goes through the same loader
+    (:func:`sitecheck.reading.config.resolve_config`), so a config file gives the same
+    ``report.json`` from either (``tests/test_report.py``).
+
+    Examples
+    --------
+    A small copy of the invented demo network, probed for its site signal only (the full
+    scan adds the leak ranking, fingerprints, maps, harmonisation and outcome sections):
+
+    >>> from sitecheck import ScanOptions, generate_demo, scan_file
+    >>> generate_demo(600, seed=7).frame.to_csv("pooled.csv", index=False)
+    >>> result = scan_file("pooled.csv", site="hospital", identifiers=["attendance_id"],
+    ...                    options=ScanOptions(analyses=("probe",), folds=3, n_jobs=1))
+    >>> result.to_dict()["probe"]["verdict"]
+    'strong'
+    """
+    run = resolve_config(config, roles=_spec(site, outcome, covariates, groups, identifiers, excluded, time),
+                         options=options, sep=sep, encoding=encoding)
+    return scan_configured(path, run, progress=progress)
 
 
 def scan_frame(frame: pd.DataFrame, *, site: str, outcome: Optional[str] = None,
                covariates: Optional[Sequence[str]] = None, groups: Optional[Sequence[str]] = None,
                identifiers: Optional[Sequence[str]] = None, excluded: Optional[Sequence[str]] = None,
-               options: Optional[ScanOptions] = None, progress: Optional[Progress] = None) -> ScanResult:
-    """Scan an in-memory DataFrame (intake's missing-code rules apply to text columns)."""
-    raw = frame_to_raw(frame)
+               options: Optional[ScanOptions] = None, progress: Optional[Progress] = None,
+               time: Optional[str] = None) -> ScanResult:
+    """Scan an in-memory DataFrame (intake's missing-code rules apply to text columns).
+
+    Parameters
+    ----------
+    frame : pandas.DataFrame
+        One row per patient (or attendance); it is not modified.
+    site : str
+        The site (or group) column whose signal is measured.
+    outcome : str, optional
+        A binary outcome: adds the shortcut analysis.
+    covariates, groups, identifiers, excluded : sequence of str, optional
+        Column roles, as for :func:`scan_file`; every other column is a feature.
+    options : ScanOptions, optional
+        Everything but the roles (seed, folds, analyses, ...).
+    progress : callable, optional
+        Called with one line per stage.
+    time : str, optional
+        A date column: adds the drift analysis within each site.
+
+    Returns
+    -------
+    ScanResult
+
+    Raises
+    ------
+    InputError
+        Unknown columns, fewer than two sites, a non-binary outcome, no usable feature.
+
+    Examples
+    --------
+    >>> from sitecheck import ScanOptions, generate_demo, scan_frame
+    >>> demo = generate_demo(600, seed=7)
+    >>> result = scan_frame(demo.frame, site="hospital", identifiers=["attendance_id"],
+    ...                     options=ScanOptions(analyses=("probe",), folds=3, n_jobs=1))
+    >>> probe = result.to_dict()["probe"]
+    >>> probe["verdict"], probe["auc"] > 0.9
+    ('strong', True)
+    """
+    raw = frame_to_raw(frame, site=site)
     opts = options or ScanOptions()
-    table = assign_roles(raw, _spec(site, outcome, covariates, groups, identifiers, excluded),
+    table = assign_roles(raw, _spec(site, outcome, covariates, groups, identifiers, excluded, time),
                          min_site_rows=opts.min_site_rows, include_datetime=opts.include_datetime)
     return scan_table(table, opts, progress=progress)
 
 
-def _spec(site, outcome, covariates, groups, identifiers, excluded) -> RoleSpec:
+def _spec(site, outcome, covariates, groups, identifiers, excluded, time=None) -> RoleSpec:
     t = lambda v: None if v is None else tuple(v)  # noqa: E731
     return RoleSpec(site=site, outcome=outcome, covariates=t(covariates), groups=t(groups),
-                    identifiers=t(identifiers), excluded=t(excluded))
+                    identifiers=t(identifiers), excluded=t(excluded), time=time)

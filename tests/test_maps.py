@@ -156,9 +156,29 @@ def _fake_result(maps):
 
 
 @pytest.mark.parametrize("shareable", [False, True])
-def test_figures_written_and_non_empty(maps_demo, tmp_path, shareable):
+def test_figures_written_and_non_empty(maps_demo, tmp_path, shareable, monkeypatch):
+    import matplotlib.axes
+
     from sitecheck.render.figures import write_figures
 
+    drawn, scatter = [], matplotlib.axes.Axes.scatter
+    per_call = []
+
+    def spy(self, x, y, *a, **k):  # count the points each panel draws one by one
+        per_call.append(len(x))
+        return scatter(self, x, y, *a, **k)
+
+    monkeypatch.setattr(matplotlib.axes.Axes, "scatter", spy)
+    real_panel = __import__("sitecheck.render.figures", fromlist=["_panel"])._panel
+
+    def panel(*a, **k):
+        start = len(per_call)
+        res = real_panel(*a, **k)
+        if len(per_call) > start:
+            drawn.append(sum(per_call[start:]))
+        return res
+
+    monkeypatch.setattr("sitecheck.render.figures._panel", panel)
     out = write_figures(_fake_result(maps_demo), str(tmp_path), min_cell=10, shareable=shareable)
     rels = out["embedding"]
     # site and outcome colourings, each PNG + SVG
@@ -172,9 +192,16 @@ def test_figures_written_and_non_empty(maps_demo, tmp_path, shareable):
     assert png[:8] == b"\x89PNG\r\n\x1a\n"
     svg = (tmp_path / [r for r in rels if r.endswith(".svg")][0]).read_text()
     assert "<svg" in svg
-    if shareable:
-        # density mode draws no individual points: no scatter collections of one marker per row
-        assert "density" in rels[0]
+    # Individual points: the point mode draws each mapped row with Axes.scatter (rasterised, so the SVG holds one
+    # <image> per panel); the density mode must never call scatter and draws filled contours instead.
+    n_rows = maps_demo.coords["pca"].shape[0]
+    for rel in (r for r in rels if r.endswith(".svg")):
+        text = (tmp_path / rel).read_text()
+        if shareable:
+            assert "density" in rel and "<image" not in text and text.count('<g id="QuadContourSet') >= 3, rel
+        else:
+            assert text.count("<image") == 3 and "QuadContourSet" not in text, rel
+    assert drawn == ([] if shareable else [n_rows] * 6), drawn  # 3 panels x 2 colourings, every row once
 
 
 def test_site_labels_never_become_paths(maps_demo, tmp_path):
@@ -365,9 +392,9 @@ def test_second_process_queue_follows_measured_stage_costs():
                                site_labels=[f"s{k}" for k in range(sites)], outcome=np.zeros(n) if outcome else None)
 
     def order(prep):
-        queued = [a for a in REGISTRY if not a.needs and a.name not in {"probe"}]
+        queued = [a for a in REGISTRY if a.name in {"maps", "maps_tsne", "harmonise"}]
         return [a.name for a in sorted(queued, key=lambda a: -a.cost(prep))]
 
-    assert order(shape(6000, 19, 4, True)) == ["harmonise", "maps", "maps_tsne", "fingerprints"]
-    assert order(shape(9000, 20, 30, False)) == ["maps", "maps_tsne", "harmonise", "fingerprints"]
+    assert order(shape(6000, 19, 4, True)) == ["harmonise", "maps", "maps_tsne"]
+    assert order(shape(9000, 20, 30, False)) == ["maps", "maps_tsne", "harmonise"]
     assert order(shape(100_000, 50, 4, False))[0] == "harmonise"

@@ -556,12 +556,11 @@ def embed(Z, *, methods: Sequence[str] = METHODS, random_state: int = 0, tsne_ma
 # --------------------------------------------------------------------------- the analysis
 
 def _label(x) -> str:
-    """Display text of a group value (whole-number floats without the trailing .0)."""
-    if x is None or (isinstance(x, float) and np.isnan(x)):
-        return "missing"
-    if isinstance(x, (float, np.floating)) and float(x).is_integer():
-        return str(int(x))
-    return str(x)
+    """Display text of a group value (:func:`sitecheck.table.roles.value_label`; missing as "missing")."""
+    from sitecheck.table.roles import value_label
+
+    lab = value_label(x)
+    return "missing" if lab is None else lab
 
 
 @dataclass(frozen=True, eq=False)

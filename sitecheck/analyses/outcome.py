@@ -59,9 +59,10 @@ from sklearn.base import clone
 from sklearn.metrics import roc_curve
 from sklearn.model_selection import StratifiedKFold
 
+from sitecheck._runtime import SINGLE_THREAD_BELOW as _SINGLE_THREAD_BELOW, derived_seed, stream, thread_limit
 from sitecheck.errors import InputError
 from sitecheck.analyses.heterogeneity import MIN_COUNT, SCALE, RateHeterogeneity, rate_heterogeneity
-from sitecheck.analyses.leakage import grouped_permutation_importance
+from sitecheck.analyses.leakage import LeakageResult, grouped_permutation_importance
 from sitecheck.analyses.models import make_booster
 from sitecheck.table.prepare import Prepared
 from sitecheck.analyses.probe import cross_fit
@@ -71,7 +72,7 @@ RNG_STREAM = 7
 
 #: Below this many rows the models run on one OpenMP thread: thread start-up
 #: then costs more than it saves, and much more on a loaded machine.
-SINGLE_THREAD_BELOW = 200_000
+SINGLE_THREAD_BELOW = _SINGLE_THREAD_BELOW
 
 #: Bootstrap resamples handled per vectorised block (bounds memory at block x n floats).
 BOOT_BLOCK = 32
@@ -202,30 +203,16 @@ def site_association(X: np.ndarray, site: np.ndarray, categorical: np.ndarray) -
     return score, pval
 
 
-def _leak_from_result(leakage: Any, names: Sequence[str]) -> Optional[Tuple[np.ndarray, np.ndarray]]:
-    """Per-feature leak scores and interval lower bounds from the leak-ranking
-    result (``objects["leakage"]``), if it has them."""
-    if leakage is None:
+def _leak_from_result(leakage: Optional[LeakageResult],
+                      names: Sequence[str]) -> Optional[Tuple[np.ndarray, np.ndarray]]:
+    """Per-feature leak scores and interval lower bounds from the leak ranking, if it ranked any."""
+    if leakage is None or not leakage.entries:
         return None
-    doc = leakage.to_dict() if hasattr(leakage, "to_dict") else leakage
-    if not isinstance(doc, dict):
-        return None
-    for key in ("features", "ranking", "scores"):
-        rows = doc.get(key)
-        if isinstance(rows, list) and rows and isinstance(rows[0], dict):
-            found: Dict[str, Tuple[float, float]] = {}
-            for r in rows:
-                name = r.get("feature", r.get("name"))
-                val = r.get("score", r.get("importance"))
-                ci = r.get("score_ci") or (None, None)
-                if name is not None and val is not None:
-                    lo = ci[0] if ci and ci[0] is not None else np.nan
-                    found[str(name)] = (float(val), float(lo))
-            if found:
-                miss = (np.nan, np.nan)
-                return (np.array([found.get(n, miss)[0] for n in names], dtype=float),
-                        np.array([found.get(n, miss)[1] for n in names], dtype=float))
-    return None
+    found = {e.feature: (float(e.score), float(e.score_ci[0]) if e.score_ci[0] is not None else np.nan)
+             for e in leakage.entries}
+    miss = (np.nan, np.nan)
+    return (np.array([found.get(n, miss)[0] for n in names], dtype=float),
+            np.array([found.get(n, miss)[1] for n in names], dtype=float))
 
 
 # --------------------------------------------------------------------------
@@ -570,20 +557,18 @@ def _pct(v: np.ndarray) -> Interval:
 
 def _level_label(value: Any, binary: Optional[Tuple[str, str]]) -> Optional[str]:
     """A group level as the user wrote it (binary columns were recoded to 0/1)."""
-    if value is None or (isinstance(value, float) and math.isnan(value)):
-        return None
+    from sitecheck.table.roles import value_label
+
     if binary is not None and isinstance(value, (int, float, np.integer, np.floating)) and value in (0, 1):
         return str(binary[int(value)])
-    if isinstance(value, (float, np.floating)) and float(value).is_integer():
-        return str(int(value))
-    return str(value)
+    return value_label(value)
 
 
 # --------------------------------------------------------------------------
 # the analysis
 # --------------------------------------------------------------------------
 
-def outcome_risk(prep: Prepared, *, leakage: Any = None, threshold: Optional[float] = None,
+def outcome_risk(prep: Prepared, *, leakage: Optional[LeakageResult] = None, threshold: Optional[float] = None,
                  n_boot: int = 500, n_repeats: int = 3, importance_rows: int = 4000,
                  top_k: Optional[int] = None, min_importance: float = 0.01, max_iter: int = 200,
                  min_rate_count: int = MIN_COUNT, n_permutations: int = 999,
@@ -594,7 +579,7 @@ def outcome_risk(prep: Prepared, *, leakage: Any = None, threshold: Optional[flo
     ----------
     prep : Prepared
         Must have an outcome.
-    leakage : object, optional
+    leakage : LeakageResult, optional
         The leak-ranking result (``objects["leakage"]``); its per-feature scores
         rank the site leakers. Without it, :func:`site_association` is used.
     threshold : float in (0, 1), optional
@@ -653,9 +638,7 @@ def outcome_risk(prep: Prepared, *, leakage: Any = None, threshold: Optional[flo
     Breiman, L. (2001). Random forests. Machine Learning 45, 5-32.
     """
     if prep.outcome is not None and int(np.sum(~np.isnan(prep.outcome))) < SINGLE_THREAD_BELOW:
-        from threadpoolctl import threadpool_limits
-
-        with threadpool_limits(limits=1, user_api="openmp"):
+        with thread_limit(1, user_api="openmp"):
             return _outcome_risk(prep, leakage=leakage, threshold=threshold, n_boot=n_boot, n_repeats=n_repeats,
                                  importance_rows=importance_rows, top_k=top_k, min_importance=min_importance,
                                  max_iter=max_iter, min_rate_count=min_rate_count,
@@ -670,7 +653,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
                   max_iter, min_rate_count, n_permutations, random_state) -> OutcomeRisk:
     name = prep.table.outcome or "outcome"
     if prep.outcome is None:
-        raise InputError("the outcome analysis needs an outcome column (--outcome)")
+        raise InputError("the outcome analysis needs an outcome column; none was given")
     if threshold is not None:
         if not isinstance(threshold, (int, float)) or not (0.0 < float(threshold) < 1.0):
             raise InputError(f"threshold must be a number strictly between 0 and 1, got {threshold!r}")
@@ -717,7 +700,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
     pooled = cross_fit(X, yi, cat, folds, model="boosting", random_state=seed)
     oof = pooled.proba[:, 1]
     fold_models = pooled.models
-    pooled_auc, pooled_ci = _auc_ci(y, oof, n_boot=n_boot, random_state=seed + 1)
+    pooled_auc, pooled_ci = _auc_ci(y, oof, n_boot=n_boot, random_state=derived_seed(seed, "outcome.pooled"))
 
     # leave one site out
     loso_pred = np.full(n, np.nan)
@@ -725,9 +708,9 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
     site_folds = [(np.flatnonzero(site != i), np.flatnonzero(site == i)) for i in range(len(labels))]
     trainable = [len(te) > 0 and len(tr) > 0 and 0 < y[tr].sum() < len(tr) for tr, te in site_folds]
     if all(trainable):
-        loso_pred = cross_fit(X, yi, cat, site_folds, model="boosting", random_state=seed + 1).proba[:, 1]
+        loso_pred = cross_fit(X, yi, cat, site_folds, model="boosting", random_state=derived_seed(seed, "outcome.pooled")).proba[:, 1]
     else:  # a held-out site whose complement has one class only: fit the others one by one
-        model = make_booster(cat, random_state=seed + 1, max_iter=max_iter)
+        model = make_booster(cat, random_state=derived_seed(seed, "outcome.pooled"), max_iter=max_iter)
         for i, (tr, te) in enumerate(site_folds):
             if trainable[i]:
                 loso_pred[te] = clone(model).fit(X[tr], yi[tr]).predict_proba(X[te])[:, 1]
@@ -738,7 +721,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
                                         n_pos=int(y[te].sum()), n_train=int(len(tr))))
             continue
         p = loso_pred[te]
-        a, aci = _auc_ci(y[te], p, n_boot=n_boot, random_state=seed + 2 + i)
+        a, aci = _auc_ci(y[te], p, n_boot=n_boot, random_state=derived_seed(seed, "outcome.site_ci", i))
         loso_rows.append(HeldOutAUC(site=str(lab), auc=a, ci=aci, n=int(len(te)),
                                     n_pos=int(y[te].sum()), n_train=int(len(tr))))
     ok_sites = [i for i, h in enumerate(loso_rows) if h.auc is not None]
@@ -750,7 +733,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
     if threshold is None:
         thr, rule = youden_threshold(y, oof), "pooled Youden point of the out-of-fold predictions"
     else:
-        thr, rule = float(threshold), "given (--threshold)"
+        thr, rule = float(threshold), "given (threshold option)"
     pred = (oof >= thr).astype(float)
 
     # per-group units (levels coded 0..L-1, missing -1)
@@ -796,7 +779,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
     # heterogeneity nulls: their own generators, so the bootstrap above is unchanged
     eo = rates_at(y, pred, site, labels, threshold=thr, rule=rule,
                   spread_ci=(_pct(sp_site[:, 0]), _pct(sp_site[:, 1])), min_count=int(min_rate_count),
-                  n_permutations=int(n_permutations), random_state=np.random.default_rng([seed, RNG_STREAM, 2]))
+                  n_permutations=int(n_permutations), random_state=stream(seed, "outcome", 2))
     eo_groups: Dict[str, EqualizedOdds] = {}
     for gi, (g, (unit, levels)) in enumerate(group_units.items()):
         sel = unit >= 0
@@ -804,12 +787,12 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
                                 spread_ci=(_pct(sp_group[g][:, 0]), _pct(sp_group[g][:, 1])),
                                 n_missing=int((~sel).sum()), min_count=int(min_rate_count),
                                 n_permutations=int(n_permutations),
-                                random_state=np.random.default_rng([seed, RNG_STREAM, 3, gi]))
+                                random_state=stream(seed, "outcome", 3, gi))
 
     # outcome drivers: held-out permutation importance per fold
     imp = np.zeros((len(folds), X.shape[1]))
     n_imp = 0
-    sub_rng = np.random.default_rng([seed, RNG_STREAM, 1])
+    sub_rng = stream(seed, "outcome", 1)
     singletons = [[j] for j in range(X.shape[1])]
     for f, ((tr, te), m) in enumerate(zip(folds, fold_models)):
         rows = te
@@ -819,7 +802,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
             rows = te
         # scikit-learn's permutation scheme with the probe's tree-wise re-prediction (equal results)
         _, drops = grouped_permutation_importance(m, X[rows], y[rows].astype(np.int64), singletons,
-                                                  n_repeats=n_repeats, random_state=seed + f)
+                                                  n_repeats=n_repeats, random_state=derived_seed(seed, "leakage.fold_repeats", f))
         imp[f] = drops.mean(axis=1)
         n_imp += int(len(rows))
     mean_imp = imp.mean(axis=0)

@@ -25,9 +25,9 @@ from typing import Any, Dict, List, Optional, Sequence, Tuple, Union
 import numpy as np
 from sklearn.base import clone
 from sklearn.model_selection import StratifiedKFold
-from threadpoolctl import threadpool_limits
 
 from sitecheck.analyses import stats
+from sitecheck._runtime import derived_seed, native_threads, stream, thread_limit
 from sitecheck.errors import InputError, ParameterError
 from sitecheck.analyses.models import make_booster, make_linear
 
@@ -157,18 +157,14 @@ def cross_fit(X, y, categorical, folds, *, model: str = "boosting", random_state
         folds = make_folds(y, int(folds), random_state=seed)
     folds = tuple((np.asarray(tr), np.asarray(te)) for tr, te in folds)
     k = int(y.max()) + 1
-    with threadpool_limits(limits=_threads(len(y))):
+    with thread_limit(_threads(len(y))):
         return _cross_fit(X, y, cat, folds, model, seed, k)
 
 
-#: Below this many rows boosting runs single-threaded: OpenMP start-up and spin-waiting cost
+#: Below this many rows (sitecheck._runtime.SINGLE_THREAD_BELOW) boosting runs single-threaded: OpenMP start-up and spin-waiting cost
 #: far more than they save on small fits, and badly so when other processes share the cores
 #: (measured: 1,000 rows x 20 features, 4 classes: 1.5 s with 2 threads, 0.16 s with 1).
-_SINGLE_THREAD_BELOW = 200_000
-
-
-def _threads(n: int) -> Optional[int]:
-    return 1 if n < _SINGLE_THREAD_BELOW else None
+_threads = native_threads
 
 
 def _cross_fit(X, y, cat, folds, model, seed, k) -> CrossFit:
@@ -176,7 +172,7 @@ def _cross_fit(X, y, cat, folds, model, seed, k) -> CrossFit:
     fitted: List[Any] = []
     n_iter: List[int] = []
     for f, (tr, te) in enumerate(folds):
-        est = _estimator(model, cat, k, len(tr), random_state=seed + 1000 * f)
+        est = _estimator(model, cat, k, len(tr), random_state=derived_seed(seed, "probe.fold_model", f))
         if model == "linear" and X.shape[1] == 0:
             raise InputError("no feature columns to probe")
         est.fit(X[tr], y[tr])
@@ -235,8 +231,16 @@ class ProbeScore:
     ci_widening: float = 1.0
     fold_auc: Tuple[float, ...] = ()
 
+    @property
+    def p_value_floor(self) -> Optional[float]:
+        """The smallest p-value the permutation test could give (None without a p-value)."""
+        if not self.n_permutations or self.p_value is None:
+            return None
+        return stats.permutation_pvalue_floor(self.n_permutations)
+
     def to_dict(self) -> Dict[str, Any]:
-        return {"auc": self.auc, "auc_ci": list(self.auc_ci), "p_value": self.p_value, "n": self.n,
+        return {"auc": self.auc, "auc_ci": list(self.auc_ci), "p_value": self.p_value,
+                "p_value_floor": self.p_value_floor, "n": self.n,
                 "model": self.model, "n_boot": self.n_boot, "n_permutations": self.n_permutations,
                 "ci_widening": self.ci_widening, "fold_auc": list(self.fold_auc)}
 
@@ -304,7 +308,7 @@ def probe_matrix(X, y, categorical, folds, *, random_state, n_boot: int = 500,
     """
     fit = cross_fit(X, y, categorical, folds, model=model, random_state=random_state)
     return score_crossfit(y, fit, n_boot=n_boot, n_permutations=n_permutations,
-                          random_state=np.random.default_rng([int(random_state), 77]))
+                          random_state=stream(int(random_state), "probe.small_sites"))
 
 
 def verdict(auc_ci: Sequence[float], p_value: Optional[float] = None) -> str:
@@ -334,6 +338,7 @@ def _score_dict(s: ProbeScore, *, with_p: bool = True) -> Dict[str, Any]:
     d = {"auc": s.auc, "auc_ci": list(s.auc_ci), "n": s.n}
     if with_p:
         d["p_value"] = s.p_value
+        d["p_value_floor"] = s.p_value_floor
     return d
 
 
@@ -389,7 +394,7 @@ class GroupProbe:
 
     def to_dict(self) -> Dict[str, Any]:
         return {"auc": self.score.auc, "auc_ci": list(self.score.auc_ci), "p_value": self.score.p_value,
-                "verdict": self.verdict, "verdict_text": verdict_text(self.verdict, f"group '{self.column}'"),
+                "p_value_floor": self.score.p_value_floor, "verdict": self.verdict, "verdict_text": verdict_text(self.verdict, f"group '{self.column}'"),
                 "n": self.score.n, "levels": dict(self.levels), "dropped_levels": dict(self.dropped_levels),
                 "n_missing": int(self.n_missing), "model": self.score.model,
                 "balanced_accuracy": self.score.balanced_accuracy}
@@ -454,6 +459,7 @@ class ProbeResult:
             "auc": s.auc,
             "auc_ci": list(s.auc_ci),
             "p_value": s.p_value,
+            "p_value_floor": s.p_value_floor,
             "balanced_accuracy": s.balanced_accuracy,
             "per_site": {k: dict(v) for k, v in self.per_site.items()},
             "n_used": self.n_used,
@@ -472,6 +478,7 @@ class ProbeResult:
             "caution": CAUTION,
             "linear": (None if self.linear is None else
                        {"auc": self.linear.auc, "auc_ci": list(self.linear.auc_ci), "p_value": self.linear.p_value,
+                        "p_value_floor": self.linear.p_value_floor,
                         "balanced_accuracy": self.linear.balanced_accuracy,
                         "model_detail": "L2 logistic regression; median imputation with missing indicators, "
                                         "scaling, one-hot"}),
@@ -557,7 +564,7 @@ def site_probe(prep, *, n_boot: int = 500, n_permutations: int = 999, linear: bo
                          "covariate, group, identifier or excluded)")
     X, y, cat = prep.X, np.asarray(prep.site, dtype=np.int64), prep.features.categorical
     labels = tuple(prep.site_labels)
-    rng = lambda stream: np.random.default_rng([seed, 3000 + stream])  # noqa: E731
+    rng = lambda part: stream(seed, "probe", offset=part)  # noqa: E731
     fit = cross_fit(X, y, cat, prep.folds, model="boosting", random_state=seed)
     score = _score_fit(y, fit, rng(0), n_boot, n_permutations)
     counts = np.bincount(y, minlength=len(labels))
@@ -573,8 +580,10 @@ def site_probe(prep, *, n_boot: int = 500, n_permutations: int = 999, linear: bo
     cm = None
     if case_mix and prep.covariates is not None and prep.covariates.n_features:
         C, ccat = prep.covariates.X, prep.covariates.categorical
-        fc = cross_fit(C, y, ccat, prep.folds, model="boosting", random_state=seed + 1)
-        fb = cross_fit(np.hstack([X, C]), y, np.r_[cat, ccat], prep.folds, model="boosting", random_state=seed + 2)
+        fc = cross_fit(C, y, ccat, prep.folds, model="boosting",
+                       random_state=derived_seed(seed, "probe.covariates_only"))
+        fb = cross_fit(np.hstack([X, C]), y, np.r_[cat, ccat], prep.folds, model="boosting",
+                       random_state=derived_seed(seed, "probe.features_and_covariates"))
         # "with features" nests the case-mix model: the average of its out-of-fold probabilities
         # and those of the features+covariates model. Uninformative features then cannot drag the
         # AUC below the covariates-only model through dilution (measured: -0.006 to -0.013 AUC for
@@ -609,9 +618,10 @@ def site_probe(prep, *, n_boot: int = 500, n_permutations: int = 999, linear: bo
                 wo[key] = {"auc": None, "auc_ci": [None, None], "p_value": None, "n": int(ok.sum()),
                            "skipped": f"fewer than two sites with at least {min_rows} rows in this outcome class"}
                 continue
-            s = _sub_probe(X[rows[ok]], yy[ok], cat, prep.n_splits, seed + 10 + int(v), rng(10 + int(v)),
+            s = _sub_probe(X[rows[ok]], yy[ok], cat, prep.n_splits, derived_seed(seed, "probe.stratum", int(v)), rng(10 + int(v)),
                            n_boot, n_permutations)
-            wo[key] = {"auc": s.auc, "auc_ci": list(s.auc_ci), "p_value": s.p_value, "n": s.n,
+            wo[key] = {"auc": s.auc, "auc_ci": list(s.auc_ci), "p_value": s.p_value,
+                       "p_value_floor": s.p_value_floor, "n": s.n,
                        "verdict": verdict(s.auc_ci, s.p_value), "sites": kept, "dropped_sites": dropped,
                        "outcome_value": int(v)}
     gprobes: Dict[str, GroupProbe] = {}
@@ -623,7 +633,8 @@ def site_probe(prep, *, n_boot: int = 500, n_permutations: int = 999, linear: bo
             if len(kept) < 2:
                 skipped[gname] = f"fewer than two levels with at least {min_rows} rows"
                 continue
-            s = _sub_probe(X[ok], yy[ok], cat, prep.n_splits, seed + 100 + gi, rng(100 + gi), n_boot, n_permutations)
+            s = _sub_probe(X[ok], yy[ok], cat, prep.n_splits, derived_seed(seed, "probe.group", gi),
+                           rng(100 + gi), n_boot, n_permutations)
             gprobes[gname] = GroupProbe(column=gname, score=s, verdict=verdict(s.auc_ci, s.p_value), levels=kept,
                                         dropped_levels=dropped, n_missing=n_miss)
     return ProbeResult(

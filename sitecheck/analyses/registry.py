@@ -35,6 +35,10 @@ class Analysis:
     #: A number, or a function of the prepared table estimating the analysis's seconds on one core
     #: (:func:`estimated_seconds`), since which stage is longest depends on the table's shape.
     priority: Union[float, Callable[[Any], float]] = 0
+    #: Which values the analysis reads: "given" (the diagnosis: probe, ranking, fingerprints),
+    #: "repaired" (after the repair plan's safe entries, unless ScanOptions.repair is False:
+    #: maps, harmonisation check, outcome) or "residual" (always the repaired values).
+    on: str = "given"
 
     def cost(self, prep) -> float:
         """The queue key of this analysis for ``prep`` (:attr:`priority`)."""
@@ -90,9 +94,31 @@ def _run_fingerprints(prep, options, objects):
 
 
 def _fingerprint_sections(result):
-    return {"fingerprints": [f.to_dict() for f in result.findings], "fingerprint_tests": result.tests}
+    out = {"fingerprints": [f.to_dict() for f in result.findings], "fingerprint_tests": result.tests}
+    if result.unit_columns:
+        out["unit_columns"] = result.unit_columns
+    return out
 
 
+
+
+def _run_drift(prep, options, objects):
+    from sitecheck.analyses.drift import drift_check
+
+    return drift_check(prep, fingerprints=objects.get("fingerprints"), random_state=options.seed)
+
+
+def _drift_applies(prep) -> bool:
+    return getattr(prep.table, "time", None) is not None
+
+
+def _run_reconcile(prep, options, objects):
+    from .reconcile import reconcile
+
+    leakage, fingerprints = objects.get("leakage"), objects.get("fingerprints")
+    if leakage is None or fingerprints is None:
+        return None
+    return reconcile(leakage, fingerprints)
 
 
 def _run_maps(prep, options, objects):
@@ -128,6 +154,15 @@ def _run_harmonise(prep, options, objects):
     return harmonisation_check(prep, random_state=options.seed)
 
 
+def _run_residual(prep, options, objects):
+    from sitecheck.table.repair import residual_signal
+
+    probe, repair = objects.get("probe"), objects.get("repair")
+    if probe is None or repair is None:
+        return None
+    return residual_signal(prep, probe, objects.get("leakage"), repair["applied"], random_state=options.seed)
+
+
 def _harmonise_applies(prep) -> bool:
     return any(k == "numeric" for k in prep.features.kinds) and prep.n_used >= 50
 
@@ -160,8 +195,6 @@ def estimated_seconds(name: str, prep) -> float:
         sites = len(prep.site_labels)
         outcome = 6.0 if prep.outcome is not None else 1.0
         return 0.3 + 4.3e-4 * min(n, 50_000) ** 0.65 * p ** 0.8 * (1 + 0.04 * sites) * outcome
-    if name == "fingerprints":
-        return 0.1 + 2e-7 * n * prep.features.n_features
     return 0.0
 
 
@@ -170,22 +203,31 @@ def _maps_applies(prep) -> bool:
 
 
 #: The analyses, in report order. The leak ranking reuses the probe's fold models
-#: (objects["probe"].crossfit); the outcome analysis reads the leak ranking; the t-SNE map
+#: (objects["probe"].crossfit); the outcome analysis reads the leak ranking; the drift analysis
+#: reads the fingerprints; the t-SNE map
 #: is merged into the maps' result.
 REGISTRY: List[Analysis] = [
     Analysis("probe", _run_probe, sections=_probe_sections),
     Analysis("leakage", _run_leakage, sections=lambda result: result.sections(), needs=("probe",)),
-    Analysis("fingerprints", _run_fingerprints, sections=_fingerprint_sections,
-             priority=lambda prep: estimated_seconds("fingerprints", prep)),
-    Analysis("maps", _run_maps, applies=_maps_applies, sections=lambda result: {"embedding": result},
+    Analysis("fingerprints", _run_fingerprints, sections=_fingerprint_sections),
+    # drift within each site over time (--time); follows the fingerprints' codes, limits and grids
+    Analysis("drift", _run_drift, applies=_drift_applies, sections=lambda result: {"drift": result},
+             needs=("fingerprints",)),
+    Analysis("maps", _run_maps, applies=_maps_applies, sections=lambda result: {"embedding": result}, on="repaired",
              priority=lambda prep: estimated_seconds("maps", prep)),
     # The t-SNE map, computed apart so that it and PCA/UMAP can run in different processes; the queue
     # takes the longer of the maps and harmonisation first for the table's shape (estimated_seconds).
-    Analysis("maps_tsne", _run_tsne, applies=_maps_applies, part_of="maps", merge=_merge_maps,
+    Analysis("maps_tsne", _run_tsne, applies=_maps_applies, part_of="maps", merge=_merge_maps, on="repaired",
              priority=lambda prep: estimated_seconds("maps_tsne", prep)),
     Analysis("harmonise", _run_harmonise, applies=_harmonise_applies,
-             sections=lambda result: {"harmonisation": result},
+             sections=lambda result: {"harmonisation": result}, on="repaired",
              priority=lambda prep: estimated_seconds("harmonise", prep)),
     Analysis("outcome", _run_outcome, applies=lambda prep: prep.outcome is not None,
-             sections=lambda result: {"outcome": result}, needs=("leakage",)),
+             sections=lambda result: {"outcome": result}, needs=("leakage",), on="repaired"),
+    # reads the leak ranking and the fingerprints only (no fit): why a fingerprinted feature ranks near 0
+    Analysis("reconcile", _run_reconcile, sections=lambda result: {"reconciliation": result},
+             needs=("leakage", "fingerprints")),
+    # the probe and the top of the leak ranking again, on the values after the plan's safe repairs
+    Analysis("residual", _run_residual, sections=lambda result: {"residual": result}, needs=("probe", "leakage"),
+             on="residual"),
 ]

@@ -262,6 +262,8 @@ def wilson_ci(k, n, alpha: float = 0.05) -> Tuple[float, float]:
 def bh_adjust(pvalues) -> np.ndarray:
     """Benjamini-Hochberg adjusted p-values (step-up, monotone, capped at 1).
 
+    Missing p-values (NaN) stay missing and do not count among the tests.
+
     References
     ----------
     Benjamini, Y. & Hochberg, Y. (1995). Controlling the false discovery rate.
@@ -270,6 +272,11 @@ def bh_adjust(pvalues) -> np.ndarray:
     p = np.asarray(pvalues, dtype=float)
     if p.ndim != 1:
         raise ParameterError("pvalues must be 1-D")
+    ok = ~np.isnan(p)
+    if not ok.all():
+        out = np.full(p.shape, np.nan)
+        out[ok] = bh_adjust(p[ok])
+        return out
     m = len(p)
     if m == 0:
         return p.copy()
@@ -291,6 +298,12 @@ def merge_pvalues_geometric(pvalues) -> float:
     """
     p = np.clip(np.asarray(pvalues, dtype=float), 1e-300, 1.0)
     return float(min(1.0, np.e * np.exp(np.mean(np.log(p)))))
+
+
+def permutation_pvalue_floor(n_permutations: int) -> float:
+    """The smallest p-value :func:`fold_permutation_pvalue` can return: every fold at
+    1/(B+1) (Phipson & Smyth 2010), merged by e x geometric mean (Vovk & Wang 2020)."""
+    return float(min(1.0, np.e / (int(n_permutations) + 1.0)))
 
 
 def _macro_from_rank_sums(S: np.ndarray, counts: np.ndarray, n: int, cols: List[int]) -> np.ndarray:

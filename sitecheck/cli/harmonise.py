@@ -23,12 +23,9 @@ FILE_KEYS = ("site_column", "input_sha256", "rows_fitted", "left_unchanged")
 
 
 def _site_label(v) -> Optional[str]:
-    # Same normalisation as sitecheck.table.roles (integral floats read as integers).
-    if v is None or (isinstance(v, float) and np.isnan(v)) or v is pd.NaT:
-        return None
-    if isinstance(v, float) and float(v).is_integer():
-        return str(int(v))
-    return str(v)
+    from sitecheck.table.roles import value_label
+
+    return value_label(v)
 
 
 def _site_codes(frame: pd.DataFrame, site_col: str, labels: Sequence[str], *, fitted: bool) -> Tuple[np.ndarray, np.ndarray]:

@@ -1114,12 +1114,15 @@ class MethodCheck:
     model: str = "boosting"
     n_splits: int = 3
     outcome_protected: bool = False
+    #: the smallest p-value the probe's permutation test could give
+    probe_p_value_floor: Optional[float] = None
 
     def to_dict(self) -> dict:
         return {
             "probe_auc": self.probe_auc,
             "probe_auc_ci": list(self.probe_auc_ci),
             "probe_p_value": self.probe_p_value,
+            "probe_p_value_floor": self.probe_p_value_floor,
             "n": self.n,
             "model": self.model,
             "folds": self.n_splits,
@@ -1366,6 +1369,7 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
         results.append(MethodCheck(
             method=method, probe_auc=float(score.auc), probe_auc_ci=tuple(float(c) for c in score.auc_ci),
             probe_p_value=None if score.p_value is None else float(score.p_value), n=int(score.n),
+            probe_p_value_floor=getattr(score, "p_value_floor", None),
             surviving=gaps, n_tested=int(n_tested),
             outcome_auc_before=None if before is None else before[0],
             outcome_auc_before_ci=None if before is None else before[1],

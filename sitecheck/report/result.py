@@ -39,6 +39,31 @@ class ScanResult:
     ``leakage``, ...) to that analysis's result object (anything with a
     ``to_dict`` method, or plain JSON data). Analyses that did not run are
     absent.
+
+    Attributes
+    ----------
+    input, run : dict
+        The input file (path, format, rows, SHA-256, sites) and the run (seed, options,
+        versions, seconds).
+    columns, findings, warnings : tuple
+        Each column's role and kind, the hygiene findings and the warnings of reading.
+    sections : dict
+        ``report.json`` key -> result.
+    objects : dict
+        The in-memory objects behind the sections (the table, the prepared matrices,
+        each analysis's result), for rendering; not part of the document.
+
+    Examples
+    --------
+    >>> from sitecheck import ScanOptions, generate_demo, scan_frame
+    >>> result = scan_frame(generate_demo(600, seed=7).frame, site="hospital",
+    ...                     identifiers=["attendance_id"],
+    ...                     options=ScanOptions(analyses=("probe",), folds=3, n_jobs=1))
+    >>> doc = result.to_dict()                     # the report.json document
+    >>> doc["schema"].startswith("sitecheck.report/"), doc["input"]["rows"]
+    (True, 600)
+    >>> print(result.summary().splitlines()[0])
+    sitecheck ...: 600 rows, 4 sites
     """
 
     input: Dict[str, Any]
@@ -65,3 +90,44 @@ class ScanResult:
             doc[key] = value
         doc["run"] = self.run
         return to_jsonable(doc)
+
+    def summary(self, *, max_warnings: int = 5) -> str:
+        """A few lines for a terminal: rows and sites, the site probe's AUC with its interval,
+        p-value and verdict, the drift findings (with ``--time``), and the first warnings.
+
+        Parameters
+        ----------
+        max_warnings : int, default 5
+            How many warnings to list; the rest are counted.
+
+        Returns
+        -------
+        str
+            Lines separated by newlines, without a trailing newline. This text is for the
+            person running the scan (counts are not suppressed); shared outputs are the
+            report files.
+        """
+        from sitecheck import __version__
+
+        if isinstance(max_warnings, bool) or not isinstance(max_warnings, int) or max_warnings < 0:
+            raise ValueError(f"max_warnings must be a non-negative integer, got {max_warnings!r}")
+        doc = self.to_dict()
+        inp = doc.get("input", {})
+        lines = [f"sitecheck {__version__}: {inp.get('rows_used')} rows, {len(inp.get('sites') or {})} sites"]
+        probe = doc.get("probe")
+        if isinstance(probe, dict) and probe.get("auc") is not None:
+            lo, hi = probe["auc_ci"]
+            lines.append(f"site probe: AUC {probe['auc']:.3f} (95% CI {lo:.3f} to {hi:.3f}), "
+                         f"p = {probe['p_value']:.3g}, n = {probe.get('n_used', inp.get('rows_used'))}, "
+                         f"verdict: {probe['verdict']}")
+        drift = doc.get("drift")
+        if isinstance(drift, dict):
+            found = drift.get("findings") or []
+            where = ", ".join(f"{c['feature']} at {c['site']} from {c['period']}" for c in found[:3])
+            lines.append(f"drift over time: {len(found)} change(s) at a site" + (f" ({where})" if where else "")
+                         + (f"; {len(drift.get('network') or [])} network-wide" if drift.get("network") else ""))
+        warnings = doc.get("warnings", [])
+        lines += [f"warning: {w}" for w in warnings[:max_warnings]]
+        if len(warnings) > max_warnings:
+            lines.append(f"({len(warnings) - max_warnings} more warnings in the report)")
+        return "\n".join(lines)

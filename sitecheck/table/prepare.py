@@ -13,6 +13,7 @@ import numpy as np
 import pandas as pd
 from sklearn.model_selection import StratifiedKFold
 
+from sitecheck._runtime import stream
 from sitecheck.errors import InputError
 from sitecheck.table.roles import Table
 
@@ -172,7 +173,7 @@ def prepare(table: Table, *, n_splits: int = 5, max_rows: int = 100_000, random_
     if not isinstance(max_rows, (int, np.integer)) or max_rows < 100:
         raise InputError(f"max_rows must be an integer of at least 100, got {max_rows!r}")
     seed = int(random_state)
-    rng = np.random.default_rng([seed, 9001])
+    rng = stream(seed, "prepare.subsample")
     site_all = table.frame[table.site].to_numpy(dtype=object)
     rows = stratified_subsample(site_all, int(max_rows), rng)
     sub = table.frame.iloc[rows]
