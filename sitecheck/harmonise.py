@@ -25,6 +25,13 @@ pooled variance ``sigma_g^2 = mean(e^2)`` and the standardised data
 ``D beta_g`` is added back unchanged, the protected covariates' coefficients
 survive harmonisation.
 
+Harmonised values are put back on the feature's common recording grid
+(:func:`recording_grid`: the coarsest step any site records in, found with
+:func:`sitecheck.fingerprints.grid_step`) and kept inside the range of values
+recorded in the fitting rows (:func:`apply_harmoniser`). A site shifted by a
+fraction of the grid step would otherwise sit on its own offset grid, and that
+offset alone identifies the site to any classifier.
+
 Missing cells are left missing; every estimate uses the observed cells of its
 feature only. Columns flagged categorical (or binary) are left unchanged and
 listed as such in the fit. A fit is a frozen dataclass whose ``to_dict()`` is
@@ -56,6 +63,15 @@ import pandas as pd
 from .errors import InputError, ParameterError
 
 METHODS = ("centre", "scale", "quantile", "combat")
+
+#: Fingerprint kinds that make harmonisation unsafe until the values are repaired: the values
+#: of one site are not the same quantity as the others' (another unit, a code standing for
+#: "missing", a censored limit standing for an unknown value below or above it, a number
+#: written in another format), so a per-site location/scale or quantile map would spread the
+#: error over every value of that site. ``censored_below``, ``censored_above`` and
+#: ``number_format`` are the names the censoring and number-format detectors use (issue 17);
+#: a kind no detector produces yet simply never matches.
+BLOCKING_KINDS = ("unit_ratio", "missing_code", "censored_below", "censored_above", "number_format")
 
 #: Version tag written into saved parameter files.
 PARAMS_FORMAT = "sitecheck.harmonise/1"
@@ -443,6 +459,90 @@ def _map_quantiles(v: np.ndarray, site_q: np.ndarray, pooled_q: np.ndarray, prob
 
 
 # ---------------------------------------------------------------------------
+# the recording grid
+# ---------------------------------------------------------------------------
+
+def recording_grid(x: np.ndarray, site: np.ndarray, n_sites: int, *, min_count: int = 10) -> Optional[float]:
+    """The feature's common recording grid: the coarsest step any site records in.
+
+    Each site's step is :func:`sitecheck.fingerprints.grid_step` of its
+    observed values (the coarsest of
+    :data:`sitecheck.fingerprints.GRID_STEPS` holding 98% of them), for sites
+    with at least ``min_count`` observed values. The common grid is the
+    coarsest of these steps, or, when the steps do not divide it (0.2 and
+    0.25), the finest candidate step that every site's step divides.
+
+    Returns None when no site records on a grid (continuous values, or finer
+    than 0.001): nothing to return to.
+
+    Why the coarsest: a harmonised value can hide its site only on a grid that
+    every site's values can reach. On a finer grid, the values of a coarser
+    site, moved by its own fractional shift, would still share one last digit.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> x = np.r_[np.arange(20) / 10, np.arange(20) / 2]   # steps of 0.1 and of 0.5
+    >>> recording_grid(x, np.repeat([0, 1], 20), 2)
+    0.5
+    """
+    from .fingerprints import GRID_STEPS, grid_step
+
+    x = np.asarray(x, dtype=float)
+    steps = []
+    for i in range(n_sites):
+        v = x[(site == i) & ~np.isnan(x)]
+        if len(v) >= min_count:
+            g = grid_step(v)
+            if g is not None:
+                steps.append(g)
+    if not steps:
+        return None
+    G = max(steps)
+
+    def divides(g, G):
+        r = G / g
+        return abs(r - round(r)) < 1e-6
+
+    if all(divides(g, G) for g in steps):
+        return float(G)
+    for cand in GRID_STEPS:
+        if cand >= G and all(divides(g, cand) for g in steps):
+            return float(cand)
+    return None  # pragma: no cover - GRID_STEPS ends with 100, a multiple of every step
+
+
+def recording_grids(X: np.ndarray, site: np.ndarray, n_sites: int, *,
+                    skip: Optional[np.ndarray] = None) -> np.ndarray:
+    """:func:`recording_grid` of every column of ``X`` (NaN: none, or a column in ``skip``)."""
+    out = np.full(X.shape[1], np.nan)
+    for j in range(X.shape[1]):
+        if skip is not None and skip[j]:
+            continue
+        g = recording_grid(X[:, j], site, n_sites)
+        if g is not None:
+            out[j] = g
+    return out
+
+
+def grid_decimals(step: float) -> int:
+    """Decimals needed to write multiples of ``step`` exactly (0.25 -> 2, 0.5 -> 1, 5 -> 0)."""
+    for d in range(0, 10):
+        if abs(step * 10 ** d - round(step * 10 ** d)) < 1e-9 * max(1.0, step * 10 ** d):
+            return d
+    return 10  # pragma: no cover
+
+
+def snap_to_grid(x: np.ndarray, step: float) -> np.ndarray:
+    """Round to the nearest multiple of ``step`` (halves upwards), written with
+    :func:`grid_decimals` decimals so that 0.1 + 0.2 reads 0.3. NaN stays NaN."""
+    x = np.asarray(x, dtype=float)
+    # Halves go up rather than to the even multiple: half-to-even would send a site shifted
+    # by exactly half a step to the even multiples only, a grid of its own.
+    return np.round(np.floor(x / step + 0.5) * step, grid_decimals(step))
+
+
+# ---------------------------------------------------------------------------
 # the fit
 # ---------------------------------------------------------------------------
 
@@ -487,6 +587,13 @@ class HarmonisationFit:
         Observed cells per site and feature in the fitting rows.
     combat : dict
         Priors and convergence of ComBat (empty for other methods).
+    grid : ndarray (p,)
+        Common recording grid of each feature (:func:`recording_grid`) that
+        harmonised values are rounded to; NaN: none (continuous values, an
+        unadjusted column, or a fit made with ``on_grid=False``).
+    lower, upper : ndarray (p,)
+        Smallest and largest value of each feature in the fitting rows (all
+        sites pooled): the range harmonised values are kept in.
     """
 
     method: str
@@ -504,6 +611,15 @@ class HarmonisationFit:
     pooled_quantiles: Optional[np.ndarray]
     n: np.ndarray
     combat: Dict[str, Any] = field(default_factory=dict)
+    grid: Optional[np.ndarray] = None
+    lower: Optional[np.ndarray] = None
+    upper: Optional[np.ndarray] = None
+
+    def __post_init__(self):
+        p = len(self.features)
+        for name in ("grid", "lower", "upper"):
+            if getattr(self, name) is None:
+                object.__setattr__(self, name, np.full(p, np.nan))
 
     @property
     def n_sites(self) -> int:
@@ -526,6 +642,9 @@ class HarmonisationFit:
             "delta": _arr(self.delta),
             "n": [[int(x) for x in row] for row in self.n],
             "combat": self.combat,
+            "grid": _arr(self.grid),
+            "lower": _arr(self.lower),
+            "upper": _arr(self.upper),
         }
         if self.quantiles is not None:
             d["quantiles"] = [_arr(self.quantiles[i]) for i in range(self.n_sites)]
@@ -552,7 +671,11 @@ class HarmonisationFit:
                        protect=tuple(d["protect"]), alpha=_unarr(d["alpha"]), sigma=_unarr(d["sigma"]),
                        beta=beta, gamma=_unarr(d["gamma"]).reshape(-1, p), delta=_unarr(d["delta"]).reshape(-1, p),
                        quantiles=quant, pooled_quantiles=pooled,
-                       n=np.asarray(d["n"], dtype=np.int64).reshape(-1, p), combat=dict(d.get("combat", {})))
+                       n=np.asarray(d["n"], dtype=np.int64).reshape(-1, p), combat=dict(d.get("combat", {})),
+                       # files written before the grid and range were stored: neither is applied
+                       grid=_unarr(d["grid"]) if "grid" in d else None,
+                       lower=_unarr(d["lower"]) if "lower" in d else None,
+                       upper=_unarr(d["upper"]) if "upper" in d else None)
         except InputError:
             raise
         except (KeyError, TypeError, ValueError, AttributeError) as exc:
@@ -583,7 +706,7 @@ def fit_harmoniser(X: np.ndarray, site: np.ndarray, *, method: str, site_labels:
                    feature_names: Optional[Sequence[str]] = None, design: Optional[np.ndarray] = None,
                    protect_spec: Sequence[dict] = (), categorical: Optional[np.ndarray] = None,
                    unchanged_reason: Optional[Dict[str, str]] = None, n_quantiles: int = 201,
-                   tol: float = 1e-4, max_iter: int = 1000) -> HarmonisationFit:
+                   tol: float = 1e-4, max_iter: int = 1000, on_grid: bool = True) -> HarmonisationFit:
     """Fit one harmonisation method.
 
     Parameters
@@ -610,6 +733,11 @@ def fit_harmoniser(X: np.ndarray, site: np.ndarray, *, method: str, site_labels:
         Grid size of the ``quantile`` method.
     tol, max_iter
         Convergence of the ComBat iteration.
+    on_grid : bool, default True
+        Store each adjusted feature's common recording grid
+        (:func:`recording_grid` of the fitting rows), which
+        :func:`apply_harmoniser` rounds to. False: no grid (the published
+        equations' continuous output).
 
     Returns
     -------
@@ -691,14 +819,64 @@ def fit_harmoniser(X: np.ndarray, site: np.ndarray, *, method: str, site_labels:
                     g = _quantile_grid(R[site == i, jj], probs)
                     if g is not None:
                         quant[i, :, j] = g
+    grid = np.full(p, np.nan)
+    lower = np.full(p, np.nan)
+    upper = np.full(p, np.nan)
+    for j in adj:
+        v = X[:, j]
+        ok = ~np.isnan(v)
+        lower[j], upper[j] = float(v[ok].min()), float(v[ok].max())
+        if on_grid:
+            g = recording_grid(v, site, k)
+            if g is not None:
+                grid[j] = g
     return HarmonisationFit(method=method, features=names, adjusted=tuple(bool(a) for a in adjusted),
                             unchanged=unchanged, site_labels=tuple(str(s) for s in site_labels),
                             protect=tuple(protect_spec), alpha=alpha, sigma=sigma, beta=beta, gamma=gamma,
-                            delta=delta, quantiles=quant, pooled_quantiles=pooled, n=counts, combat=combat_info)
+                            delta=delta, quantiles=quant, pooled_quantiles=pooled, n=counts, combat=combat_info,
+                            grid=grid, lower=lower, upper=upper)
+
+
+def clip_to_range(fit: HarmonisationFit, X: np.ndarray) -> Tuple[np.ndarray, np.ndarray]:
+    """Keep harmonised values inside the range recorded in the fitting rows.
+
+    A value below the smallest (above the largest) value recorded for the
+    feature at any site in the fitting rows is set to that value (moved
+    inwards to the feature's grid, when it has one). Such values are
+    extrapolations: a per-site shift or stretch can carry a site's extreme
+    values past anything recorded, e.g. below zero for a concentration.
+
+    Returns
+    -------
+    X : ndarray
+        A new matrix.
+    counts : ndarray (p, 2) of int
+        Values raised to the lower end and lowered to the upper end, per
+        feature.
+    """
+    X = np.array(X, dtype=float, copy=True)
+    p = X.shape[1]
+    counts = np.zeros((p, 2), dtype=np.int64)
+    for j in range(p):
+        lo, hi, g = fit.lower[j], fit.upper[j], fit.grid[j]
+        if not (np.isfinite(lo) and np.isfinite(hi)):
+            continue
+        if np.isfinite(g):
+            d = grid_decimals(g)
+            lo2, hi2 = round(math.ceil(lo / g - 1e-9) * g, d), round(math.floor(hi / g + 1e-9) * g, d)
+            if lo2 <= hi2:
+                lo, hi = lo2, hi2
+        v = X[:, j]
+        below, above = v < lo, v > hi
+        counts[j] = (int(below.sum()), int(above.sum()))
+        v[below] = lo
+        v[above] = hi
+    return X, counts
 
 
 def apply_harmoniser(fit: HarmonisationFit, X: np.ndarray, site: np.ndarray, *,
-                     design: Optional[np.ndarray] = None) -> np.ndarray:
+                     design: Optional[np.ndarray] = None, on_grid: bool = True,
+                     clip: bool = False) -> np.ndarray:
     """Apply a fitted harmonisation to rows of known sites.
 
     ``centre``/``scale``/``combat``: ``Y* = sigma / delta_i (Z - gamma_i) +
@@ -707,6 +885,13 @@ def apply_harmoniser(fit: HarmonisationFit, X: np.ndarray, site: np.ndarray, *,
     function at the site's empirical CDF of ``Y - D beta``, plus ``D beta``.
     Missing cells stay missing; unadjusted columns are copied. A site with no
     observed value of a feature when fitting keeps its values unchanged.
+
+    Then, for every adjusted feature, the values are rounded to the fit's
+    common recording grid (``fit.grid``, see :func:`recording_grid`; with
+    ``on_grid``, default True) and, with ``clip`` (default False), kept inside
+    the range recorded in the fitting rows (:func:`clip_to_range`, which
+    counts the values it moves: ``sitecheck harmonise`` and the scan's check
+    clip and say how many). Without either, the published equations alone.
 
     Returns
     -------
@@ -718,6 +903,18 @@ def apply_harmoniser(fit: HarmonisationFit, X: np.ndarray, site: np.ndarray, *,
         raise ParameterError(f"X has {X.shape[1]} columns; the fit has {len(fit.features)}")
     if D.shape[1] != fit.beta.shape[0]:
         raise ParameterError(f"the protected design has {D.shape[1]} columns; the fit has {fit.beta.shape[0]}")
+    out = _apply_equations(fit, X, site, D)
+    adj = np.flatnonzero(np.asarray(fit.adjusted, dtype=bool))
+    if on_grid:
+        for j in adj:
+            if np.isfinite(fit.grid[j]):
+                out[:, j] = snap_to_grid(out[:, j], float(fit.grid[j]))
+    if clip:
+        out = clip_to_range(fit, out)[0]
+    return out
+
+
+def _apply_equations(fit: HarmonisationFit, X: np.ndarray, site: np.ndarray, D: np.ndarray) -> np.ndarray:
     out = X.copy()
     adj = np.flatnonzero(np.asarray(fit.adjusted, dtype=bool))
     if not len(adj):
@@ -749,12 +946,13 @@ def apply_harmoniser(fit: HarmonisationFit, X: np.ndarray, site: np.ndarray, *,
     return out
 
 
-def harmonise(X: np.ndarray, site: np.ndarray, *, method: str, site_labels: Sequence[str],
+def harmonise(X: np.ndarray, site: np.ndarray, *, method: str, site_labels: Sequence[str], clip: bool = False,
               **kwargs) -> Tuple[np.ndarray, HarmonisationFit]:
-    """Fit and apply in one call: ``(harmonised X, fit)`` (see :func:`fit_harmoniser`)."""
+    """Fit and apply in one call: ``(harmonised X, fit)`` (see :func:`fit_harmoniser`;
+    ``clip`` as in :func:`apply_harmoniser`)."""
     design = kwargs.get("design")
     fit = fit_harmoniser(X, site, method=method, site_labels=site_labels, **kwargs)
-    return apply_harmoniser(fit, X, site, design=design), fit
+    return apply_harmoniser(fit, X, site, design=design, clip=clip), fit
 
 
 # ---------------------------------------------------------------------------
@@ -781,7 +979,8 @@ class SurvivingGap:
         statistic among those whose raw values show a specific cause, else
         the site that differs most.
     statistic : float
-        Kolmogorov-Smirnov D of that site against the rest (numeric), the
+        Kolmogorov-Smirnov D of that site against the rest beyond what the
+        recording grid explains (:func:`grid_ks_distance`; numeric), the
         difference in missing share (missingness) or Cramer's V (categorical).
     p_value, p_adj : float
         Feature p-value and its Benjamini-Hochberg adjustment over the
@@ -804,12 +1003,46 @@ class SurvivingGap:
                 "site": self.site, "statistic": self.statistic, "detail": self.detail, "n": self.n}
 
 
-def _ks_one_vs_rest(v: np.ndarray, site: np.ndarray, k: int, min_rows: int) -> Tuple[np.ndarray, float]:
-    """One-vs-rest two-sample KS D of every site (NaN when untested) and the
-    smallest p-value, Bonferroni-adjusted over the sites tested."""
+def grid_ks_distance(a: np.ndarray, b: np.ndarray, step: Optional[float]) -> float:
+    """Kolmogorov-Smirnov distance left once the recording grid has explained what it can.
+
+    ``max(sup_x F_a(x) - F_b(x + step), sup_x F_b(x) - F_a(x + step), 0)``:
+    each recorded value stands for any value within half a step of it, so
+    two samples whose distribution functions are less than one step apart
+    everywhere can come from one distribution. With ``step`` None or 0 this
+    is the two-sample KS statistic (:func:`scipy.stats.ks_2samp`).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> a = np.array([1.0, 2.0, 3.0]); b = a + 0.5          # half a step apart on a grid of 1
+    >>> grid_ks_distance(a, b, 1.0), round(grid_ks_distance(a, b, None), 3)
+    (0.0, 0.333)
+    """
+    a = np.sort(np.asarray(a, dtype=float))
+    b = np.sort(np.asarray(b, dtype=float))
+    if len(a) == 0 or len(b) == 0:
+        return float("nan")
+    g = float(step) if step is not None and np.isfinite(step) and step > 0 else 0.0
+    eps = 1e-9 * max(1.0, float(np.abs(a).max()), float(np.abs(b).max())) + 1e-6 * g
+    d = 0.0
+    for x, y in ((a, b), (b, a)):
+        u = np.unique(x)
+        fx = np.searchsorted(x, u, side="right") / len(x)
+        fy = np.searchsorted(y, u + g + (eps if g else 0.0), side="right") / len(y)
+        d = max(d, float((fx - fy).max()))
+    return max(d, 0.0)
+
+
+def _ks_one_vs_rest(v: np.ndarray, site: np.ndarray, k: int, min_rows: int,
+                    step: Optional[float] = None) -> Tuple[np.ndarray, float, np.ndarray]:
+    """One-vs-rest two-sample KS D of every site (NaN when untested), the
+    smallest p-value, Bonferroni-adjusted over the sites tested, and the
+    distance the grid cannot explain (:func:`grid_ks_distance`) per site."""
     from scipy.stats import ks_2samp
 
     D = np.full(k, np.nan)
+    Dg = np.full(k, np.nan)
     best_p, tested = 1.0, 0
     ok = ~np.isnan(v)
     for i in range(k):
@@ -820,10 +1053,11 @@ def _ks_one_vs_rest(v: np.ndarray, site: np.ndarray, k: int, min_rows: int) -> T
         tested += 1
         res = ks_2samp(a, b, method="asymp")
         D[i] = float(res.statistic)
+        Dg[i] = grid_ks_distance(a, b, step) if step else D[i]
         best_p = min(best_p, float(res.pvalue))
     if tested == 0:
-        return D, float("nan")
-    return D, min(1.0, best_p * tested)
+        return D, float("nan"), Dg
+    return D, min(1.0, best_p * tested), Dg
 
 
 def _missing_test(v: np.ndarray, site: np.ndarray, k: int) -> Tuple[float, float, int]:
@@ -952,7 +1186,8 @@ def diagnose(a: np.ndarray, b: np.ndarray) -> Tuple[str, str]:
 def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, names: Sequence[str],
                    site_labels: Sequence[str], categorical: Optional[np.ndarray] = None,
                    alpha: float = 0.05, min_effect: float = 0.05, min_rows: int = 10,
-                   case_mix: Optional[np.ndarray] = None) -> Tuple[Tuple[SurvivingGap, ...], int]:
+                   case_mix: Optional[np.ndarray] = None,
+                   grid: Optional[Sequence[float]] = None) -> Tuple[Tuple[SurvivingGap, ...], int]:
     """Features whose site gap survives harmonisation, with a reason.
 
     Numeric features: the two-sample Kolmogorov-Smirnov test of each site
@@ -966,6 +1201,17 @@ def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, n
     when ``p_adj < alpha`` and its effect reaches ``min_effect`` (KS D,
     difference in missing share, or Cramer's V), so that trivial differences
     in very large tables are not listed.
+
+    The recording grid: a gap between harmonised values survives only when it
+    is larger than what the feature's recording grid explains. Its effect is
+    then not the KS D but :func:`grid_ks_distance` with the feature's common
+    grid step ``G`` (``grid``, default :func:`recording_grid` of the raw
+    values): the part of the gap between the distribution functions that
+    remains after one of them is moved by up to one step ``G`` in the
+    direction that closes it. Every recorded value stands for anything within
+    half a step of it, so sites whose values differ by a fraction of the step
+    (a per-site offset grid, a shift smaller than the rounding) do not survive.
+    For continuous values (no grid) this is the KS D.
 
     ``case_mix`` (rows x features), the protected covariates' part of each
     harmonised value (``D beta``), lets a gap be attributed to case mix: when
@@ -990,6 +1236,10 @@ def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, n
     k = len(site_labels)
     p = X_raw.shape[1]
     cat = np.zeros(p, dtype=bool) if categorical is None else np.asarray(categorical, dtype=bool)
+    if grid is None:
+        steps = [None if cat[j] else recording_grid(X_raw[:, j], site, k) for j in range(p)]
+    else:
+        steps = [None if g is None or not np.isfinite(g) else float(g) for g in grid]
     rows: List[Tuple[int, float, float, str, str, int]] = []  # j, p, effect, reason, detail, site
     for j in range(p):
         v = X_harm[:, j]
@@ -1007,7 +1257,7 @@ def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, n
             rows.append((j, float(res.pvalue), V, "categorical, left unchanged",
                          f"Cramer's V {V:.2f} across sites", worst))
             continue
-        D_sites, p_ks = _ks_one_vs_rest(v, site, k, min_rows)
+        _, p_ks, D_sites = _ks_one_vs_rest(v, site, k, min_rows, steps[j])
         p_m, diff_m, i_m = _missing_test(X_raw[:, j], site, k)
         if not np.isfinite(p_ks) and i_m < 0:
             continue
@@ -1038,7 +1288,7 @@ def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, n
                 pick = (reason, detail, int(i))
                 break
         if pick is None and case_mix is not None and case_mix[:, j].any():
-            D_res, p_res = _ks_one_vs_rest(v - case_mix[:, j], site, k, min_rows)
+            _, p_res, D_res = _ks_one_vs_rest(v - case_mix[:, j], site, k, min_rows)
             if np.isfinite(p_res) and (p_res >= alpha or np.nanmax(D_res) < min_effect):
                 pick = ("case mix (protected)", "the gap disappears once the protected columns' effect is "
                         "removed: a difference in case mix, kept on purpose", int(order[0]))
@@ -1094,6 +1344,9 @@ class MethodCheck:
     unchanged : dict
         Feature -> why it was left unchanged.
     warnings : tuple of str
+    grid : dict
+        Feature -> the common recording grid step its harmonised values were
+        rounded to (features without a grid are not listed).
     """
 
     method: str
@@ -1114,6 +1367,7 @@ class MethodCheck:
     model: str = "boosting"
     n_splits: int = 3
     outcome_protected: bool = False
+    grid: Dict[str, float] = field(default_factory=dict)
 
     def to_dict(self) -> dict:
         return {
@@ -1134,6 +1388,8 @@ class MethodCheck:
             "protected": list(self.protected),
             "unchanged": dict(self.unchanged),
             "warnings": list(self.warnings),
+            "reprobe": "fitted within each training fold, applied to the held-out rows",
+            "grid": dict(self.grid),
         }
 
 
@@ -1223,8 +1479,8 @@ def outcome_auc_cv(X: np.ndarray, y: np.ndarray, site: np.ndarray, cat: np.ndarr
                 Dte = D[te].copy()
                 for c in outcome_cols:
                     Dte[:, c] = D[tr, c].mean()
-                Xtr = apply_harmoniser(fit, Xtr, site[tr], design=D[tr])
-                Xte = apply_harmoniser(fit, Xte, site[te], design=Dte)
+                Xtr = apply_harmoniser(fit, Xtr, site[tr], design=D[tr], clip=True)
+                Xte = apply_harmoniser(fit, Xte, site[te], design=Dte, clip=True)
             est = _estimator(model, cat, 2, len(tr), random_state=seed + 1000 * f)
             est.fit(Xtr, y[tr])
             proba = est.predict_proba(Xte)
@@ -1234,15 +1490,69 @@ def outcome_auc_cv(X: np.ndarray, y: np.ndarray, site: np.ndarray, cat: np.ndarr
     return float(auc), (float(ci[0]), float(ci[1])), int(len(y))
 
 
+def site_reprobe_cv(X: np.ndarray, site: np.ndarray, cat: np.ndarray, folds, *, method: str, seed: int,
+                    n_boot: int, n_permutations: int, model: str = "boosting", site_labels: Sequence[str] = (),
+                    design: Optional[np.ndarray] = None, protect_spec: Sequence[dict] = (),
+                    leave: Optional[np.ndarray] = None, reasons: Optional[Dict[str, str]] = None,
+                    names: Optional[Sequence[str]] = None):
+    """The site probe on harmonised features, leak-free.
+
+    In each fold the harmonisation (``method``, grid and range included) is
+    fitted on the training rows only and applied to the training and the
+    held-out rows; the probe's model (the factory of :mod:`sitecheck.models`
+    through :mod:`sitecheck.probe`, same seeds as the scan's probe) is fitted
+    on the harmonised training rows and scores the held-out rows. No scored
+    row shaped the harmonisation that was applied to it. The out-of-fold
+    probabilities are scored as the scan's probe is
+    (:func:`sitecheck.probe.score_crossfit`: macro one-vs-rest AUC, bootstrap
+    interval, fold-permutation p-value).
+
+    Returns
+    -------
+    ProbeScore
+    """
+    from threadpoolctl import threadpool_limits
+
+    from .probe import CrossFit, _estimator, _threads, score_crossfit
+
+    site = np.asarray(site).astype(np.int64)
+    k = len(site_labels)
+    proba = np.full((len(site), k), np.nan)
+    D = np.zeros((len(site), 0)) if design is None else design
+    fitted = []
+    n_iter = []
+    with threadpool_limits(limits=_threads(len(site))):
+        for f, (tr, te) in enumerate(folds):
+            fit = fit_harmoniser(X[tr], site[tr], method=method, site_labels=site_labels, feature_names=names,
+                                 design=D[tr], protect_spec=protect_spec, categorical=leave,
+                                 unchanged_reason=reasons)
+            Xtr = apply_harmoniser(fit, X[tr], site[tr], design=D[tr], clip=True)
+            Xte = apply_harmoniser(fit, X[te], site[te], design=D[te], clip=True)
+            est = _estimator(model, cat, k, len(tr), random_state=seed + 1000 * f)
+            est.fit(Xtr, site[tr])
+            block = np.zeros((len(te), k))
+            block[:, np.asarray(est.classes_, dtype=np.int64)] = est.predict_proba(Xte)
+            proba[te] = block
+            fitted.append(est)
+            if model == "boosting":
+                n_iter.append(int(est.n_iter_))
+    cf = CrossFit(proba=proba, models=tuple(fitted), folds=tuple(folds), classes=np.arange(k), model=model,
+                  n_iter=tuple(n_iter))
+    return score_crossfit(site, cf, n_boot=n_boot, n_permutations=n_permutations,
+                          random_state=np.random.default_rng([int(seed), 77]))
+
+
 def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Optional[Sequence[str]] = None,
                         random_state: Optional[int] = None, n_boot: int = 200, n_permutations: int = 199,
                         model: str = "boosting", n_splits: int = 3, probe_rows: int = 50_000,
                         alpha: float = 0.05, min_effect: float = 0.05) -> HarmonisationCheck:
     """Harmonise the scan's features with each method and check what is left.
 
-    For each method, on the scan's modelling rows: the site probe again
-    (:func:`sitecheck.probe.probe_matrix` on the harmonised features, the
-    scan's folds), the features whose gap survives (:func:`surviving_gaps`),
+    For each method, on the scan's modelling rows: the site probe again,
+    leak-free (:func:`site_reprobe_cv`: the harmonisation is fitted within
+    each training fold and applied to the held-out fold), the features whose
+    gap survives (:func:`surviving_gaps` on every row harmonised as the user
+    would, with the grid rule),
     and the outcome's cross-validated AUC from the features before and after
     harmonisation on the same folds (over-correction shows as a drop).
 
@@ -1273,11 +1583,13 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
 
     Notes
     -----
-    The outcome AUC after harmonisation is leak-free: the harmonisation is
-    fitted within each training fold and the held-out rows are harmonised
-    without their outcome (see :func:`outcome_auc_cv`), so protecting the
-    outcome cannot inflate it. The site re-probe uses the harmonisation
-    fitted on every row, as the user would apply it. Binary and categorical features are left
+    Both re-probes are leak-free: the harmonisation is fitted within each
+    training fold and applied to the held-out rows, which never shape it. For
+    the outcome AUC the held-out rows are also harmonised without their
+    outcome (see :func:`outcome_auc_cv`), so protecting the outcome cannot
+    inflate it. Harmonised values are rounded to each feature's common
+    recording grid and kept in the recorded range (:func:`apply_harmoniser`),
+    as ``sitecheck harmonise`` writes them. Binary and categorical features are left
     unchanged. A protected column that is confounded with site is dropped
     from the protection, with a warning.
 
@@ -1286,7 +1598,7 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
     Johnson, W. E., Li, C. and Rabinovic, A. (2007). Biostatistics 8(1), 118-127.
     """
     from .prepare import stratified_subsample
-    from .probe import make_folds, probe_matrix
+    from .probe import make_folds
 
     if not isinstance(n_splits, (int, np.integer)) or n_splits < 2:
         raise ParameterError(f"n_splits must be an integer of at least 2, got {n_splits!r}")
@@ -1347,15 +1659,16 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
     results = []
     for method in methods:
         Xh, fit = harmonise(X, prep.site, method=method, site_labels=prep.site_labels, feature_names=names,
-                            design=D, protect_spec=spec, categorical=leave, unchanged_reason=reasons)
-        Xs = Xh[sub]
-        score = probe_matrix(Xs, site_sub, cat, folds, random_state=seed, n_boot=n_boot,
-                             n_permutations=n_permutations, model=model)
+                            design=D, protect_spec=spec, categorical=leave, unchanged_reason=reasons, clip=True)
+        score = site_reprobe_cv(X[sub], site_sub, cat, folds, method=method, seed=seed, n_boot=n_boot,
+                                n_permutations=n_permutations, model=model, site_labels=prep.site_labels,
+                                design=D_sub, protect_spec=spec, leave=leave, reasons=reasons, names=names)
         case_mix = (D @ fit.beta) if D.shape[1] else None
         if case_mix is not None:
             case_mix[:, ~np.asarray(fit.adjusted, dtype=bool)] = 0.0
         gaps, n_tested = surviving_gaps(X, Xh, prep.site, names=names, site_labels=prep.site_labels,
-                                        categorical=leave, alpha=alpha, min_effect=min_effect, case_mix=case_mix)
+                                        categorical=leave, alpha=alpha, min_effect=min_effect, case_mix=case_mix,
+                                        grid=recording_grids(X, prep.site, k, skip=leave))
         after = None
         if before is not None:
             o = out_ok
@@ -1373,5 +1686,6 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
             outcome_auc_after_ci=None if after is None else after[1],
             outcome_n=0 if out_ok is None or before is None else int(out_ok.sum()), protected=tuple(protect),
             unchanged=dict(fit.unchanged), warnings=tuple(warnings), model=model, n_splits=len(folds),
-            outcome_protected=bool(table.outcome and table.outcome in protect)))
+            outcome_protected=bool(table.outcome and table.outcome in protect),
+            grid={n: float(g) for n, g in zip(names, fit.grid) if np.isfinite(g)}))
     return HarmonisationCheck(methods=tuple(results))

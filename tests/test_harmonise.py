@@ -64,11 +64,22 @@ def test_floor_effect_survives_every_method_with_its_reason(gaps_by_method, meth
         assert "potassium" not in gaps and "sodium" not in gaps
 
 
-def test_reasons_for_precision_and_unit_mixture(gaps_by_method):
+def test_reasons_for_precision_and_unit_mixture(injected, gaps_by_method):
+    X, site = injected
     gaps, _ = gaps_by_method["centre"]
     assert gaps["glucose"].reason == "unit mixture" and gaps["glucose"].site == "Corran Vale"
-    assert gaps["temperature"].reason == "precision" and gaps["temperature"].site == "Ashgrove"
-    assert "0.5" in gaps["temperature"].detail
+    # Ashgrove records temperature in steps of 0.5, the others in 0.1: every method returns
+    # temperature to the common grid 0.5, so its precision gap is repaired, not carried over.
+    fit = fit_harmoniser(X, site, method="centre", site_labels=LABELS, feature_names=NAMES)
+    assert fit.grid[1] == 0.5 and np.isnan(fit.grid[[0, 2, 3, 4, 5]]).all()
+    for m in METHODS:
+        assert "temperature" not in gaps_by_method[m][0], m
+    # Without the grid (the published equations alone), the gap survives with its reason.
+    Xh = apply_harmoniser(fit, X, site, on_grid=False)
+    raw_gaps = {g.feature: g for g in surviving_gaps(X, Xh, site, names=NAMES, site_labels=LABELS,
+                                                    grid=[np.nan] * 6)[0]}
+    assert raw_gaps["temperature"].reason == "precision" and raw_gaps["temperature"].site == "Ashgrove"
+    assert "0.5" in raw_gaps["temperature"].detail
     # A unit factor is a pure scale change: per-site standardisation removes it.
     assert "glucose" not in gaps_by_method["scale"][0]
     # Centring leaves the scale difference of potassium in place.
