@@ -205,7 +205,7 @@ def _one_line_error(res, text):
 def test_command_fit_then_apply_gives_the_same_table(tmp_path, demo_small_path):
     out = tmp_path / "h.csv"
     r = _cli(["harmonise", demo_small_path, "--site", "hospital", "--method", "combat", "--protect", "age",
-              "--protect", "sex", "--out", str(out), "-q"])
+              "--protect", "sex", "--out", str(out), "-q", "--despite-findings"])
     assert r.exit_code == 0, r.output
     params = json.loads((tmp_path / "h.csv.params.json").read_text())
     assert params["method"] == "combat" and params["site_column"] == "hospital"
@@ -223,7 +223,8 @@ def test_command_fit_then_apply_gives_the_same_table(tmp_path, demo_small_path):
     part = tmp_path / "part.csv"
     raw.iloc[:300].to_csv(part, index=False)
     out2 = tmp_path / "h2.csv"
-    r = _cli(["harmonise", str(part), "--apply", str(tmp_path / "h.csv.params.json"), "--out", str(out2), "-q"])
+    r = _cli(["harmonise", str(part), "--apply", str(tmp_path / "h.csv.params.json"), "--out", str(out2), "-q",
+              "--despite-findings"])
     assert r.exit_code == 0, r.output
     h2 = pd.read_csv(out2)
     pd.testing.assert_frame_equal(h2, pd.read_csv(out).iloc[:300], check_exact=False, rtol=1e-12)
@@ -234,7 +235,7 @@ def test_command_parquet_stays_parquet(tmp_path, demo_small_path):
     pd.read_csv(demo_small_path).to_parquet(src)
     out = tmp_path / "h.parquet"
     r = _cli(["harmonise", str(src), "--site", "hospital", "--method", "quantile", "--out", str(out),
-              "--params", str(tmp_path / "p.json"), "-q"])
+              "--params", str(tmp_path / "p.json"), "-q", "--despite-findings"])
     assert r.exit_code == 0, r.output
     h = pd.read_parquet(out)
     assert h.shape == pd.read_parquet(src).shape and (tmp_path / "p.json").exists()
@@ -247,7 +248,7 @@ def test_command_errors_exit_2_with_one_line(tmp_path, demo_small_path):
                           "--out", demo_small_path]), "--out must not be the input file")
     out = tmp_path / "h.csv"
     assert _cli(["harmonise", demo_small_path, "--site", "hospital", "--method", "scale", "--out", str(out),
-                 "-q"]).exit_code == 0
+                 "-q", "--despite-findings"]).exit_code == 0
     params = str(tmp_path / "h.csv.params.json")
     raw = pd.read_csv(demo_small_path, dtype=str, keep_default_na=False)
     new = raw.iloc[:50].copy()
@@ -256,6 +257,9 @@ def test_command_errors_exit_2_with_one_line(tmp_path, demo_small_path):
     new.to_csv(p1, index=False)
     _one_line_error(_cli(["harmonise", str(p1), "--apply", params, "--out", str(tmp_path / "o1.csv")]),
                     "site 'Elmstead' is not one of the fitted sites")
+    # Ground truth (demo_truth.json): glucose in mg/dL at one site, a -99 code in lactate at another.
+    _one_line_error(_cli(["harmonise", demo_small_path, "--site", "hospital", "--method", "combat",
+                          "--out", str(tmp_path / "o5.csv")]), "--despite-findings")
     p2 = tmp_path / "nosodium.csv"
     raw.iloc[:50].drop(columns=["sodium"]).to_csv(p2, index=False)
     _one_line_error(_cli(["harmonise", str(p2), "--apply", params, "--out", str(tmp_path / "o2.csv")]),
@@ -264,7 +268,7 @@ def test_command_errors_exit_2_with_one_line(tmp_path, demo_small_path):
                     "no site column")
     _one_line_error(_cli(["harmonise", demo_small_path, "--site", "hospital", "--method", "combat",
                           "--protect", "ward", "--out", str(tmp_path / "o4.csv")]), "'ward'")
-    for name in ("o1.csv", "o2.csv", "o3.csv", "o4.csv"):
+    for name in ("o1.csv", "o2.csv", "o3.csv", "o4.csv", "o5.csv"):
         assert not (tmp_path / name).exists()
 
 
