@@ -159,7 +159,7 @@ def _same_file(a: str, b: str) -> bool:
 def run_harmonise(data: str, *, site: Optional[str], method: Optional[str], protect: Sequence[str], out: str,
                   params_path: Optional[str], apply_path: Optional[str], identifiers: Sequence[str] = (),
                   excluded: Sequence[str] = (), outcome: Optional[str] = None, sep: Optional[str] = None,
-                  encoding: str = "utf-8", despite_findings: bool = False) -> Dict[str, object]:
+                  encoding: str = "utf-8", despite_findings: bool = False, seed: int = 0) -> Dict[str, object]:
     """Library entry of the command; returns a summary dict (paths, counts, warnings).
 
     Refuses (InputError) when a column to harmonise carries a blocking fingerprint
@@ -167,7 +167,10 @@ def run_harmonise(data: str, *, site: Optional[str], method: Optional[str], prot
     values are written on each feature's common recording grid, with as many decimals
     as the grid step needs, and kept inside the range recorded in the fitting rows
     (:func:`sitecheck.harmonise.clip_to_range`); the values moved to that range are
-    counted per feature (``clipped``) and reported in a warning.
+    counted per feature (``clipped``) and reported in a warning. Right-skewed non-negative
+    features are fitted on the log scale, and each recorded value is read as a uniform draw
+    from its site's recording cell (seeded by ``seed``: the same table and seed give the same
+    output; see :func:`sitecheck.harmonise.dither`).
     """
     from .harmonise import (HarmonisationFit, _prevalence_warning, apply_harmoniser, clip_to_range,
                             fit_harmoniser, grid_decimals, protected_design)
@@ -213,7 +216,7 @@ def run_harmonise(data: str, *, site: Optional[str], method: Optional[str], prot
         _check_findings(raw, site_col, adjusted_cols, identifiers, excluded, outcome, despite_findings,
                         warnings)
         D, _ = protected_design(frame.loc[has], [s["name"] for s in fit.protect], spec=fit.protect)
-        Xh = apply_harmoniser(fit, X, codes, design=D)
+        Xh = apply_harmoniser(fit, X, codes, design=D, random_state=[int(seed), 2])
         Xh, clipped = clip_to_range(fit, Xh)
         left = dict(doc.get("left_unchanged", {}))
         written_params = None
@@ -236,8 +239,8 @@ def run_harmonise(data: str, *, site: Optional[str], method: Optional[str], prot
         _check_findings(raw, site, adjust, identifiers, excluded, outcome, despite_findings, warnings)
         D, spec = protected_design(frame.loc[has], list(protect))
         fit = fit_harmoniser(X, codes, method=method, site_labels=labels, feature_names=adjust, design=D,
-                             protect_spec=spec)
-        Xh = apply_harmoniser(fit, X, codes, design=D)
+                             protect_spec=spec, log_skewed=True, random_state=[int(seed), 1])
+        Xh = apply_harmoniser(fit, X, codes, design=D, random_state=[int(seed), 2])
         Xh, clipped = clip_to_range(fit, Xh)
         if outcome and outcome not in protect:
             y = pd.to_numeric(frame.loc[has, outcome], errors="coerce").to_numpy(dtype=float, na_value=np.nan)
@@ -328,9 +331,12 @@ def run_harmonise(data: str, *, site: Optional[str], method: Optional[str], prot
 @click.option("--despite-findings", is_flag=True,
               help="Harmonise even when a column still carries a unit, missing-code, censoring or number-format "
                    "finding (refused otherwise: such values are not the same quantity as the other sites').")
+@click.option("--seed", default=0, show_default=True, type=int,
+              help="Seed of the within-cell draws (each recorded value is read as a uniform draw from its "
+                   "recording cell before it is mapped and rounded back to the grid).")
 @click.option("--quiet", "-q", is_flag=True, help="No summary on stdout.")
 def harmonise_cmd(data, site, method, protect, out, params_path, apply_path, outcome, identifiers, excluded, sep,
-                  encoding, despite_findings, quiet):
+                  encoding, despite_findings, seed, quiet):
     """Harmonise the numeric feature columns of DATA across sites and write the table to --out.
 
     Numeric feature columns are adjusted; categorical and binary columns, identifiers, the site, the
@@ -344,7 +350,7 @@ def harmonise_cmd(data, site, method, protect, out, params_path, apply_path, out
     """
     res = run_harmonise(data, site=site, method=method, protect=protect, out=out, params_path=params_path,
                         apply_path=apply_path, identifiers=identifiers, excluded=excluded, outcome=outcome,
-                        sep=sep, encoding=encoding, despite_findings=despite_findings)
+                        sep=sep, encoding=encoding, despite_findings=despite_findings, seed=seed)
     for w in res["warnings"]:
         click.echo(f"sitecheck: warning: {w}", err=True)
     if not quiet:

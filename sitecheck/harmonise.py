@@ -525,6 +525,66 @@ def recording_grids(X: np.ndarray, site: np.ndarray, n_sites: int, *,
     return out
 
 
+def site_steps(X: np.ndarray, site: np.ndarray, n_sites: int, *, min_count: int = 10) -> np.ndarray:
+    """Each site's own recording step per column (:func:`sitecheck.fingerprints.grid_step`),
+    shape (n_sites, p); NaN where a site has fewer than ``min_count`` values or none."""
+    from .fingerprints import grid_step
+
+    out = np.full((n_sites, X.shape[1]), np.nan)
+    for j in range(X.shape[1]):
+        col = X[:, j]
+        for i in range(n_sites):
+            v = col[(site == i) & ~np.isnan(col)]
+            if len(v) >= min_count:
+                g = grid_step(v)
+                if g is not None:
+                    out[i, j] = g
+    return out
+
+
+def dither(X: np.ndarray, site: np.ndarray, steps: np.ndarray, random_state) -> np.ndarray:
+    """Read every recorded value as a uniform draw from its recording cell.
+
+    Adds ``U(-1/2, 1/2) x step`` to each cell, with ``step`` the recording step
+    of the row's site and column (``steps``, shape (n_sites, p); NaN: no
+    noise). The draws are one ``random((n_rows, p))`` call of
+    ``numpy.random.default_rng(random_state)``, so row ``i`` gets the ``i``-th
+    row of the stream: the same rows in the same order get the same values.
+    """
+    rng = np.random.default_rng(random_state)
+    U = rng.random(X.shape) - 0.5
+    step = np.nan_to_num(np.asarray(steps, dtype=float)[site], nan=0.0)
+    return X + U * step
+
+
+def _log_offset(v: np.ndarray, step: Optional[float]) -> float:
+    """Offset ``c`` of the log scale for a right-skewed non-negative feature, else NaN.
+
+    The rule (our own cut-offs): every value >= 0, sample skewness above 1, and
+    ``log(x + c)`` less skewed than ``x`` in absolute value; ``c`` = 0 when
+    every value is positive, else the recording step (else the smallest
+    positive value).
+    """
+    from scipy.stats import skew
+
+    v = v[~np.isnan(v)]
+    if len(v) < 20 or v.min() < 0:
+        return float("nan")
+    sk = float(skew(v))
+    if not sk > 1.0:
+        return float("nan")
+    if v.min() > 0:
+        c = 0.0
+    elif step is not None and np.isfinite(step) and step > 0:
+        c = float(step)
+    else:
+        pos = v[v > 0]
+        if not len(pos):
+            return float("nan")
+        c = float(pos.min())
+    return c if abs(float(skew(np.log(v + c)))) < sk else float("nan")
+
+
 def grid_decimals(step: float) -> int:
     """Decimals needed to write multiples of ``step`` exactly (0.25 -> 2, 0.5 -> 1, 5 -> 0)."""
     for d in range(0, 10):
@@ -594,6 +654,12 @@ class HarmonisationFit:
     lower, upper : ndarray (p,)
         Smallest and largest value of each feature in the fitting rows (all
         sites pooled): the range harmonised values are kept in.
+    site_grid : ndarray (n_sites, p)
+        Each site's own recording step (the cell :func:`dither` spreads a
+        value over); NaN: none.
+    log_offset : ndarray (p,)
+        ``c`` of the log scale ``log(x + c)`` the feature was fitted on; NaN:
+        fitted on its own scale.
     """
 
     method: str
@@ -614,12 +680,16 @@ class HarmonisationFit:
     grid: Optional[np.ndarray] = None
     lower: Optional[np.ndarray] = None
     upper: Optional[np.ndarray] = None
+    site_grid: Optional[np.ndarray] = None
+    log_offset: Optional[np.ndarray] = None
 
     def __post_init__(self):
         p = len(self.features)
-        for name in ("grid", "lower", "upper"):
+        for name in ("grid", "lower", "upper", "log_offset"):
             if getattr(self, name) is None:
                 object.__setattr__(self, name, np.full(p, np.nan))
+        if self.site_grid is None:
+            object.__setattr__(self, "site_grid", np.full((len(self.site_labels), p), np.nan))
 
     @property
     def n_sites(self) -> int:
@@ -645,6 +715,8 @@ class HarmonisationFit:
             "grid": _arr(self.grid),
             "lower": _arr(self.lower),
             "upper": _arr(self.upper),
+            "site_grid": _arr(self.site_grid),
+            "log_offset": _arr(self.log_offset),
         }
         if self.quantiles is not None:
             d["quantiles"] = [_arr(self.quantiles[i]) for i in range(self.n_sites)]
@@ -675,7 +747,9 @@ class HarmonisationFit:
                        # files written before the grid and range were stored: neither is applied
                        grid=_unarr(d["grid"]) if "grid" in d else None,
                        lower=_unarr(d["lower"]) if "lower" in d else None,
-                       upper=_unarr(d["upper"]) if "upper" in d else None)
+                       upper=_unarr(d["upper"]) if "upper" in d else None,
+                       site_grid=_unarr(d["site_grid"]).reshape(-1, p) if "site_grid" in d else None,
+                       log_offset=_unarr(d["log_offset"]) if "log_offset" in d else None)
         except InputError:
             raise
         except (KeyError, TypeError, ValueError, AttributeError) as exc:
@@ -706,7 +780,8 @@ def fit_harmoniser(X: np.ndarray, site: np.ndarray, *, method: str, site_labels:
                    feature_names: Optional[Sequence[str]] = None, design: Optional[np.ndarray] = None,
                    protect_spec: Sequence[dict] = (), categorical: Optional[np.ndarray] = None,
                    unchanged_reason: Optional[Dict[str, str]] = None, n_quantiles: int = 201,
-                   tol: float = 1e-4, max_iter: int = 1000, on_grid: bool = True) -> HarmonisationFit:
+                   tol: float = 1e-4, max_iter: int = 1000, on_grid: bool = True, log_skewed: bool = False,
+                   random_state=None) -> HarmonisationFit:
     """Fit one harmonisation method.
 
     Parameters
@@ -738,6 +813,17 @@ def fit_harmoniser(X: np.ndarray, site: np.ndarray, *, method: str, site_labels:
         (:func:`recording_grid` of the fitting rows), which
         :func:`apply_harmoniser` rounds to. False: no grid (the published
         equations' continuous output).
+    log_skewed : bool, default False
+        Fit right-skewed non-negative features on the log scale
+        (``log(x + c)``, rule in :func:`_log_offset`); :func:`apply_harmoniser`
+        transforms back. ``sitecheck harmonise`` and the scan's check set it:
+        a heavy right tail makes a site's standard deviation so noisy that
+        removing it on the raw scale moves the site's lowest values (a site
+        with no site effect loses its zeros).
+    random_state : None, int or Generator
+        With a seed, the fit reads each recorded value as a uniform draw from
+        its site's recording cell (:func:`dither`); None fits the values as
+        they are.
 
     Returns
     -------
@@ -767,6 +853,30 @@ def fit_harmoniser(X: np.ndarray, site: np.ndarray, *, method: str, site_labels:
     if D.shape[1]:
         check_confounding(site, D, k, owners=_design_owner(protect_spec) if protect_spec else None)
     num = np.flatnonzero(~cat)
+    # The recording grid, each site's step, the recorded range and the log scale, from the raw values.
+    grid = np.full(p, np.nan)
+    lower = np.full(p, np.nan)
+    upper = np.full(p, np.nan)
+    log_offset = np.full(p, np.nan)
+    steps = np.full((k, p), np.nan)
+    if len(num):
+        steps[:, num] = site_steps(X[:, num], site, k)
+    for j in num:
+        v = X[:, j]
+        ok = ~np.isnan(v)
+        if not ok.any():
+            continue
+        lower[j], upper[j] = float(v[ok].min()), float(v[ok].max())
+        g = recording_grid(v, site, k)
+        if on_grid and g is not None:
+            grid[j] = g
+        if log_skewed:
+            log_offset[j] = _log_offset(v, g)
+    if not on_grid:
+        steps[:] = np.nan
+    if random_state is not None:
+        X = dither(X, site, steps, random_state)
+    X = _to_working(X, log_offset, lower)
     st = standardise_fit(X[:, num], site, D, k) if len(num) else None
     alpha = np.full(p, np.nan)
     sigma = np.full(p, np.nan)
@@ -819,22 +929,38 @@ def fit_harmoniser(X: np.ndarray, site: np.ndarray, *, method: str, site_labels:
                     g = _quantile_grid(R[site == i, jj], probs)
                     if g is not None:
                         quant[i, :, j] = g
-    grid = np.full(p, np.nan)
-    lower = np.full(p, np.nan)
-    upper = np.full(p, np.nan)
-    for j in adj:
-        v = X[:, j]
-        ok = ~np.isnan(v)
-        lower[j], upper[j] = float(v[ok].min()), float(v[ok].max())
-        if on_grid:
-            g = recording_grid(v, site, k)
-            if g is not None:
-                grid[j] = g
+    off = ~np.asarray(adjusted, dtype=bool)
+    grid[off], lower[off], upper[off], log_offset[off] = np.nan, np.nan, np.nan, np.nan
+    steps[:, off] = np.nan
     return HarmonisationFit(method=method, features=names, adjusted=tuple(bool(a) for a in adjusted),
                             unchanged=unchanged, site_labels=tuple(str(s) for s in site_labels),
                             protect=tuple(protect_spec), alpha=alpha, sigma=sigma, beta=beta, gamma=gamma,
                             delta=delta, quantiles=quant, pooled_quantiles=pooled, n=counts, combat=combat_info,
-                            grid=grid, lower=lower, upper=upper)
+                            grid=grid, lower=lower, upper=upper, site_grid=steps, log_offset=log_offset)
+
+
+def _to_working(X: np.ndarray, log_offset: np.ndarray, lower: np.ndarray) -> np.ndarray:
+    """``log(x + c)`` in the columns with a log offset (values kept above half the lowest recorded
+    ``x + c``, so a dithered zero stays in the domain); other columns as they are."""
+    cols = np.flatnonzero(np.isfinite(log_offset))
+    if not len(cols):
+        return X
+    X = np.array(X, dtype=float, copy=True)
+    for j in cols:
+        c = float(log_offset[j])
+        floor = 0.5 * (float(lower[j]) + c) if np.isfinite(lower[j]) and lower[j] + c > 0 else 1e-12
+        X[:, j] = np.log(np.maximum(X[:, j] + c, floor))
+    return X
+
+
+def _from_working(X: np.ndarray, log_offset: np.ndarray) -> np.ndarray:
+    cols = np.flatnonzero(np.isfinite(log_offset))
+    if not len(cols):
+        return X
+    X = np.array(X, dtype=float, copy=True)
+    for j in cols:
+        X[:, j] = np.exp(X[:, j]) - float(log_offset[j])
+    return X
 
 
 def clip_to_range(fit: HarmonisationFit, X: np.ndarray) -> Tuple[np.ndarray, np.ndarray]:
@@ -876,7 +1002,7 @@ def clip_to_range(fit: HarmonisationFit, X: np.ndarray) -> Tuple[np.ndarray, np.
 
 def apply_harmoniser(fit: HarmonisationFit, X: np.ndarray, site: np.ndarray, *,
                      design: Optional[np.ndarray] = None, on_grid: bool = True,
-                     clip: bool = False) -> np.ndarray:
+                     clip: bool = False, random_state=None) -> np.ndarray:
     """Apply a fitted harmonisation to rows of known sites.
 
     ``centre``/``scale``/``combat``: ``Y* = sigma / delta_i (Z - gamma_i) +
@@ -893,6 +1019,12 @@ def apply_harmoniser(fit: HarmonisationFit, X: np.ndarray, site: np.ndarray, *,
     counts the values it moves: ``sitecheck harmonise`` and the scan's check
     clip and say how many). Without either, the published equations alone.
 
+    With ``random_state``, each recorded value is first read as a uniform draw
+    from its site's recording cell (:func:`dither`): rounding a per-site map
+    of tied values back to the grid would otherwise leave each site its own
+    pattern of merged and skipped grid values. Features fitted on the log
+    scale (``log_skewed``) are transformed there and back.
+
     Returns
     -------
     ndarray (n_rows, p)
@@ -903,8 +1035,14 @@ def apply_harmoniser(fit: HarmonisationFit, X: np.ndarray, site: np.ndarray, *,
         raise ParameterError(f"X has {X.shape[1]} columns; the fit has {len(fit.features)}")
     if D.shape[1] != fit.beta.shape[0]:
         raise ParameterError(f"the protected design has {D.shape[1]} columns; the fit has {fit.beta.shape[0]}")
-    out = _apply_equations(fit, X, site, D)
+    W = X
+    if random_state is not None:
+        W = dither(W, site, fit.site_grid, random_state)
+    W = _to_working(W, fit.log_offset, fit.lower)
+    out = _from_working(_apply_equations(fit, W, site, D), fit.log_offset)
     adj = np.flatnonzero(np.asarray(fit.adjusted, dtype=bool))
+    keep = np.setdiff1d(np.arange(X.shape[1]), adj)
+    out[:, keep] = X[:, keep]
     if on_grid:
         for j in adj:
             if np.isfinite(fit.grid[j]):
@@ -947,12 +1085,25 @@ def _apply_equations(fit: HarmonisationFit, X: np.ndarray, site: np.ndarray, D: 
 
 
 def harmonise(X: np.ndarray, site: np.ndarray, *, method: str, site_labels: Sequence[str], clip: bool = False,
-              **kwargs) -> Tuple[np.ndarray, HarmonisationFit]:
+              random_state=None, **kwargs) -> Tuple[np.ndarray, HarmonisationFit]:
     """Fit and apply in one call: ``(harmonised X, fit)`` (see :func:`fit_harmoniser`;
-    ``clip`` as in :func:`apply_harmoniser`)."""
+    ``clip`` as in :func:`apply_harmoniser`; with ``random_state`` the fit and the
+    application each dither from their own stream of that seed)."""
     design = kwargs.get("design")
-    fit = fit_harmoniser(X, site, method=method, site_labels=site_labels, **kwargs)
-    return apply_harmoniser(fit, X, site, design=design, clip=clip), fit
+    rs_fit = rs_apply = None
+    if random_state is not None:
+        rs_fit, rs_apply = _streams(random_state)
+    fit = fit_harmoniser(X, site, method=method, site_labels=site_labels, random_state=rs_fit, **kwargs)
+    return apply_harmoniser(fit, X, site, design=design, clip=clip, random_state=rs_apply), fit
+
+
+def _streams(random_state) -> Tuple[Any, Any]:
+    """Two independent seeds (fit, apply) from an int, a sequence of ints or a Generator."""
+    if isinstance(random_state, np.random.Generator):
+        a, b = random_state.integers(0, 2**63 - 1, size=2)
+        return int(a), int(b)
+    base = list(np.atleast_1d(random_state).astype(np.int64))
+    return base + [1], base + [2]
 
 
 # ---------------------------------------------------------------------------
@@ -1491,14 +1642,15 @@ def outcome_auc_cv(X: np.ndarray, y: np.ndarray, site: np.ndarray, cat: np.ndarr
         for f, (tr, te) in enumerate(folds):
             Xtr, Xte = X[tr], X[te]
             if method is not None:
+                stream = [int(seed), RNG_STREAM, METHODS.index(method), f, 7]
                 fit = fit_harmoniser(Xtr, site[tr], method=method, site_labels=site_labels, feature_names=names,
                                      design=D[tr], protect_spec=protect_spec, categorical=leave,
-                                     unchanged_reason=reasons)
+                                     unchanged_reason=reasons, log_skewed=True, random_state=stream + [1])
                 Dte = D[te].copy()
                 for c in outcome_cols:
                     Dte[:, c] = D[tr, c].mean()
-                Xtr = apply_harmoniser(fit, Xtr, site[tr], design=D[tr], clip=True)
-                Xte = apply_harmoniser(fit, Xte, site[te], design=Dte, clip=True)
+                Xtr = apply_harmoniser(fit, Xtr, site[tr], design=D[tr], clip=True, random_state=stream + [2])
+                Xte = apply_harmoniser(fit, Xte, site[te], design=Dte, clip=True, random_state=stream + [3])
             est = _estimator(model, cat, 2, len(tr), random_state=seed + 1000 * f)
             est.fit(Xtr, y[tr])
             proba = est.predict_proba(Xte)
@@ -1541,11 +1693,12 @@ def site_reprobe_cv(X: np.ndarray, site: np.ndarray, cat: np.ndarray, folds, *, 
     n_iter = []
     with threadpool_limits(limits=_threads(len(site))):
         for f, (tr, te) in enumerate(folds):
+            stream = [int(seed), RNG_STREAM, METHODS.index(method), f]
             fit = fit_harmoniser(X[tr], site[tr], method=method, site_labels=site_labels, feature_names=names,
                                  design=D[tr], protect_spec=protect_spec, categorical=leave,
-                                 unchanged_reason=reasons)
-            Xtr = apply_harmoniser(fit, X[tr], site[tr], design=D[tr], clip=True)
-            Xte = apply_harmoniser(fit, X[te], site[te], design=D[te], clip=True)
+                                 unchanged_reason=reasons, log_skewed=True, random_state=stream + [1])
+            Xtr = apply_harmoniser(fit, X[tr], site[tr], design=D[tr], clip=True, random_state=stream + [2])
+            Xte = apply_harmoniser(fit, X[te], site[te], design=D[te], clip=True, random_state=stream + [3])
             est = _estimator(model, cat, k, len(tr), random_state=seed + 1000 * f)
             est.fit(Xtr, site[tr])
             block = np.zeros((len(te), k))
@@ -1677,7 +1830,8 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
     results = []
     for method in methods:
         Xh, fit = harmonise(X, prep.site, method=method, site_labels=prep.site_labels, feature_names=names,
-                            design=D, protect_spec=spec, categorical=leave, unchanged_reason=reasons, clip=True)
+                            design=D, protect_spec=spec, categorical=leave, unchanged_reason=reasons, clip=True,
+                            log_skewed=True, random_state=[seed, RNG_STREAM, METHODS.index(method), 99])
         score = site_reprobe_cv(X[sub], site_sub, cat, folds, method=method, seed=seed, n_boot=n_boot,
                                 n_permutations=n_permutations, model=model, site_labels=prep.site_labels,
                                 design=D_sub, protect_spec=spec, leave=leave, reasons=reasons, names=names)

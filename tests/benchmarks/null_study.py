@@ -76,11 +76,13 @@ LABS = (
 )
 
 
-def _site_sizes(rng: np.random.Generator, n_rows: int, k: int) -> np.ndarray:
-    """Unequal site sizes: Dirichlet(1.5) shares, at least 5% (and 25 rows) each."""
+def _site_sizes(rng: np.random.Generator, n_rows: int, k: int, min_share: float) -> np.ndarray:
+    """Unequal site sizes: Dirichlet(1.5) shares, each at least ``min_share`` of the rows
+    (and 25 rows) -- or, with many sites, at least half an equal share."""
+    floor = min(min_share, 0.5 / k)
     while True:
         share = rng.dirichlet(np.full(k, 1.5))
-        if share.min() >= 0.05 and share.min() * n_rows >= 25:
+        if share.min() >= floor and share.min() * n_rows >= 25:
             break
     n = np.floor(share * n_rows).astype(int)
     n[0] += n_rows - n.sum()
@@ -94,19 +96,22 @@ def _draw(rng, kind, centre, spread, n):
 
 
 def null_table(seed: int, *, n_rows: Optional[int] = None, n_sites: Optional[int] = None,
-               n_labs: int = 6, case_mix: Optional[bool] = None) -> Tuple[pd.DataFrame, dict]:
+               n_labs: int = 6, case_mix: Optional[bool] = None, min_share: float = 0.1
+               ) -> Tuple[pd.DataFrame, dict]:
     """One null table (no site effect) and its description.
 
-    Columns: ``hospital``, ``age`` (integer years) and ``n_labs`` labs drawn from
-    :data:`LABS` (at least one of each precision), rounded to their decimals, 0-4%
-    of cells missing completely at random. With ``case_mix`` the mean age differs
-    by site (up to about 8 years) and the labs with an age slope follow it.
+    Columns: ``hospital`` (2-8 sites of unequal size, by default), ``age`` (integer
+    years) and ``n_labs`` labs drawn from :data:`LABS` (at least one of each
+    precision), rounded to their decimals, 0-4% of cells missing completely at
+    random; 1,000-1,600 rows by default. With ``case_mix`` (odd seeds by default)
+    the mean age differs by site (site offsets drawn with SD 5 years) and the labs
+    with an age slope follow it.
     """
     rng = np.random.default_rng([seed, 14])
-    n_rows = int(rng.integers(500, 1201)) if n_rows is None else int(n_rows)
+    n_rows = int(rng.integers(1000, 1601)) if n_rows is None else int(n_rows)
     k = int(rng.integers(2, 9)) if n_sites is None else int(n_sites)
     case_mix = bool(seed % 2) if case_mix is None else bool(case_mix)
-    sizes = _site_sizes(rng, n_rows, k)
+    sizes = _site_sizes(rng, n_rows, k, min_share)
     site = np.repeat(np.arange(k), sizes)
     age_shift = rng.normal(0, 5, k) if case_mix else np.zeros(k)
     age = np.clip(np.round(rng.normal(58, 16, n_rows) + age_shift[site]), 18, 97)
