@@ -96,19 +96,19 @@ def _draw(rng, kind, centre, spread, n):
 
 
 def null_table(seed: int, *, n_rows: Optional[int] = None, n_sites: Optional[int] = None,
-               n_labs: int = 6, case_mix: Optional[bool] = None, min_share: float = 0.1
+               n_labs: int = 6, case_mix: Optional[bool] = None, min_share: float = 0.15
                ) -> Tuple[pd.DataFrame, dict]:
     """One null table (no site effect) and its description.
 
     Columns: ``hospital`` (2-8 sites of unequal size, by default), ``age`` (integer
     years) and ``n_labs`` labs drawn from :data:`LABS` (at least one of each
     precision), rounded to their decimals, 0-4% of cells missing completely at
-    random; 1,000-1,600 rows by default. With ``case_mix`` (odd seeds by default)
+    random; 600-900 rows by default. With ``case_mix`` (odd seeds by default)
     the mean age differs by site (site offsets drawn with SD 5 years) and the labs
     with an age slope follow it.
     """
     rng = np.random.default_rng([seed, 14])
-    n_rows = int(rng.integers(1000, 1601)) if n_rows is None else int(n_rows)
+    n_rows = int(rng.integers(600, 901)) if n_rows is None else int(n_rows)
     k = int(rng.integers(2, 9)) if n_sites is None else int(n_sites)
     case_mix = bool(seed % 2) if case_mix is None else bool(case_mix)
     sizes = _site_sizes(rng, n_rows, k, min_share)
@@ -390,8 +390,8 @@ def main(argv=None) -> int:
                 (null_rows if d["what"] == "null" else power_rows).extend(d["rows"])
         print(markdown(null_rows, power_rows))
         return 0
-    tasks = [("power", s) for s in range(a.start, a.start + a.power_tables)] + \
-            [("null", s) for s in range(a.start, a.start + a.tables)]
+    tasks = [("null", s) for s in range(a.start, a.start + a.tables)] + \
+            [("power", s) for s in range(a.start, a.start + a.power_tables)]
     null_rows, power_rows = [], []
     t0 = time.perf_counter()
 
