@@ -17,9 +17,11 @@ from ..safety import suppress_count
 _NAMES = {"centre": "per-site centring", "scale": "per-site standardisation",
           "quantile": "per-site quantile mapping", "combat": "ComBat (empirical Bayes)"}
 
-_INTRO = ("Each method was fitted on the scan's rows with the protected columns' effects kept, then the site "
-          "probe was run again on the harmonised features. A feature survives when its values still differ "
-          "between sites (Kolmogorov-Smirnov, one site against the rest, Benjamini-Hochberg adjusted). The "
+_INTRO = ("Each method was fitted with the protected columns' effects kept and its values returned to each "
+          "feature's common recording grid, as `sitecheck harmonise` writes them; the site probe was run again "
+          "with each method fitted within each training fold and applied to the held-out rows. A feature "
+          "survives when its values still differ between sites by more than its recording grid explains "
+          "(Kolmogorov-Smirnov, one site against the rest, Benjamini-Hochberg adjusted). The "
           "outcome AUC before and after (same folds) shows whether harmonisation erased real signal: a fall "
           "is over-correction; a rise with the outcome protected is expected and optimistic.")
 
