@@ -486,16 +486,16 @@ def recording_grid(x: np.ndarray, site: np.ndarray, n_sites: int, *, min_count: 
     >>> recording_grid(x, np.repeat([0, 1], 20), 2)
     0.5
     """
-    from .fingerprints import GRID_STEPS, grid_step
-
     x = np.asarray(x, dtype=float)
-    steps = []
-    for i in range(n_sites):
-        v = x[(site == i) & ~np.isnan(x)]
-        if len(v) >= min_count:
-            g = grid_step(v)
-            if g is not None:
-                steps.append(g)
+    return common_step(site_steps(x[:, None], np.asarray(site), n_sites, min_count=min_count)[:, 0])
+
+
+def common_step(steps: Sequence[float]) -> Optional[float]:
+    """The common grid of per-site steps (NaN: none): the coarsest, or the finest
+    candidate step of :data:`sitecheck.fingerprints.GRID_STEPS` that every step divides."""
+    from .fingerprints import GRID_STEPS
+
+    steps = [float(g) for g in steps if g is not None and np.isfinite(g)]
     if not steps:
         return None
     G = max(steps)
@@ -867,7 +867,7 @@ def fit_harmoniser(X: np.ndarray, site: np.ndarray, *, method: str, site_labels:
         if not ok.any():
             continue
         lower[j], upper[j] = float(v[ok].min()), float(v[ok].max())
-        g = recording_grid(v, site, k)
+        g = common_step(steps[:, j])
         if on_grid and g is not None:
             grid[j] = g
         if log_skewed:
@@ -1840,7 +1840,9 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
             case_mix[:, ~np.asarray(fit.adjusted, dtype=bool)] = 0.0
         gaps, n_tested = surviving_gaps(X, Xh, prep.site, names=names, site_labels=prep.site_labels,
                                         categorical=leave, alpha=alpha, min_effect=min_effect, case_mix=case_mix,
-                                        grid=recording_grids(X, prep.site, k, skip=leave))
+                                        grid=np.where(np.asarray(fit.adjusted, dtype=bool), fit.grid,
+                                                      recording_grids(X, prep.site, k,
+                                                                      skip=leave | np.asarray(fit.adjusted))))
         after = None
         if before is not None:
             o = out_ok
