@@ -14,13 +14,14 @@ from typing import Any, Callable, Dict, Optional, Sequence
 import numpy as np
 import pandas as pd
 
-from . import __version__
-from .config import load_config
+from sitecheck import __version__
+from sitecheck._runtime import SINGLE_THREAD_BELOW, thread_limit
+from sitecheck.reading.config import RunConfig, resolve_config
 from .errors import InputError
-from .intake import RawTable, frame_to_raw, read_table
-from .prepare import Prepared, prepare
-from .result import ScanResult
-from .roles import RoleSpec, Table, assign_roles
+from sitecheck.reading.intake import RawTable, frame_to_raw, read_table
+from sitecheck.table.prepare import Prepared, prepare
+from sitecheck.report.result import ScanResult
+from sitecheck.table.roles import RoleSpec, Table, assign_roles
 
 Progress = Callable[[str], None]
 
@@ -84,16 +85,14 @@ def _run_specs(prep: Prepared, options: ScanOptions, names, objects: Dict[str, A
                say: Progress, timings: Dict[str, float], threads: Optional[int] = 1) -> Dict[str, Any]:
     """Run the named analyses in turn with native thread pools limited to ``threads``
     (None: no limit); fill ``objects``."""
-    from threadpoolctl import threadpool_limits
-
-    from . import analyses
+    from sitecheck.analyses import registry as analyses
 
     for spec in analyses.REGISTRY:
         if spec.name not in names:
             continue
         say(f"{spec.name}...")
         t0 = time.perf_counter()
-        with threadpool_limits(limits=threads):
+        with thread_limit(threads):
             objects[spec.name] = spec.run(prep, options, objects)
         timings[spec.name] = round(time.perf_counter() - t0, 3)
     return objects
@@ -107,7 +106,7 @@ def _side_lane(prep: Prepared, options: ScanOptions, names) -> tuple:
 
 
 #: Above this many rows the scan runs in one process (a second one would copy the table).
-PARALLEL_MAX_ROWS = 200_000
+PARALLEL_MAX_ROWS = SINGLE_THREAD_BELOW
 
 
 def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Progress] = None,
@@ -126,7 +125,7 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
     """
     import multiprocessing as mp
 
-    from . import analyses
+    from sitecheck.analyses import registry as analyses
 
     if getattr(mp.current_process(), "_inheriting", False):
         # This is the spawned second process re-running a script that scans at import time:
@@ -258,27 +257,48 @@ def scan_table(table: Table, options: ScanOptions = ScanOptions(), *,
 
 def build_table(raw: RawTable, roles: RoleSpec, *, config_path: Optional[str] = None,
                 min_site_rows: Optional[int] = None, include_datetime: Optional[bool] = None):
-    """Merge roles over a config file and validate; return (Table, file options)."""
-    cfg = load_config(config_path)
-    merged = roles.merged_over(cfg.roles)
-    msr = min_site_rows if min_site_rows is not None else int(cfg.options.get("min_site_rows", 20))
-    inc = include_datetime if include_datetime is not None else bool(cfg.options.get("include_datetime", False))
-    table = assign_roles(raw, merged, min_site_rows=msr, include_datetime=inc)
-    return table, cfg.options
+    """Merge roles over a config file and validate; return (Table, the file's options)."""
+    run = resolve_config(config_path, roles=roles,
+                         options={"min_site_rows": min_site_rows, "include_datetime": include_datetime})
+    return _table_for(raw, run), run.file_options
+
+
+def _table_for(raw: RawTable, run: RunConfig) -> Table:
+    return assign_roles(raw, run.roles, min_site_rows=run.options.min_site_rows,
+                        include_datetime=run.options.include_datetime)
+
+
+def scan_configured(path: str, run: RunConfig, *, progress: Optional[Progress] = None) -> ScanResult:
+    """Read ``path`` and scan it as ``run`` (from :func:`sitecheck.reading.config.resolve_config`) says.
+
+    The one path of a file scan, shared by :func:`scan_file` and the command line.
+    """
+    if not isinstance(run, RunConfig):
+        raise TypeError(f"run must be a RunConfig (see sitecheck.reading.config.resolve_config), got {type(run).__name__}")
+    say = progress or (lambda msg: None)
+    say(f"reading {path}")
+    raw = read_table(path, sep=run.sep, encoding=run.encoding)
+    table = _table_for(raw, run)
+    say(f"{len(table.frame)} rows, {len(table.site_labels)} sites, {len(table.features)} features")
+    return scan_table(table, run.options, progress=progress, config=run.record())
 
 
 def scan_file(path: str, *, site: Optional[str] = None, outcome: Optional[str] = None,
               covariates: Optional[Sequence[str]] = None, groups: Optional[Sequence[str]] = None,
               identifiers: Optional[Sequence[str]] = None, excluded: Optional[Sequence[str]] = None,
-              config: Optional[str] = None, sep: Optional[str] = None, encoding: str = "utf-8",
+              config: Optional[str] = None, sep: Optional[str] = None, encoding: Optional[str] = None,
               options: Optional[ScanOptions] = None, progress: Optional[Progress] = None) -> ScanResult:
-    """Read a file and scan it. Role arguments override the config file's."""
-    raw = read_table(path, sep=sep, encoding=encoding)
-    roles = _spec(site, outcome, covariates, groups, identifiers, excluded)
-    opts = options or ScanOptions()
-    table, _ = build_table(raw, roles, config_path=config, min_site_rows=opts.min_site_rows,
-                           include_datetime=opts.include_datetime)
-    return scan_table(table, opts, progress=progress)
+    """Read a file and scan it.
+
+    Role arguments override the config file's roles; ``options`` fields set to
+    other than their default (or the keys of a mapping) override the file's
+    ``[options]``; ``sep`` and ``encoding`` override the file's. The command
+    line goes through the same loader (:func:`sitecheck.reading.config.resolve_config`),
+    so a config file gives the same report from either.
+    """
+    run = resolve_config(config, roles=_spec(site, outcome, covariates, groups, identifiers, excluded),
+                         options=options, sep=sep, encoding=encoding)
+    return scan_configured(path, run, progress=progress)
 
 
 def scan_frame(frame: pd.DataFrame, *, site: str, outcome: Optional[str] = None,

@@ -25,8 +25,8 @@ def demo_truth():
 def demo_table(demo_small_path):
     """The small demo fixture with the demo's roles, validated."""
     from sitecheck.demo import DEMO_ROLES
-    from sitecheck.intake import read_table
-    from sitecheck.roles import RoleSpec, assign_roles
+    from sitecheck.reading.intake import read_table
+    from sitecheck.table.roles import RoleSpec, assign_roles
 
     raw = read_table(demo_small_path)
     spec = RoleSpec(site=DEMO_ROLES["site"], outcome=DEMO_ROLES["outcome"],
@@ -36,7 +36,7 @@ def demo_table(demo_small_path):
 
 @pytest.fixture(scope="session")
 def demo_prepared(demo_table):
-    from sitecheck.prepare import prepare
+    from sitecheck.table.prepare import prepare
 
     return prepare(demo_table, random_state=0)
 

@@ -2,7 +2,7 @@ import numpy as np
 import pandas as pd
 
 from sitecheck.demo import GLUCOSE_MGDL_PER_MMOLL, SITES, generate_demo
-from sitecheck.intake import read_table
+from sitecheck.reading.intake import read_table
 
 
 def test_fixture_is_the_generators_output(demo_small_path, demo_truth):

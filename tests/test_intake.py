@@ -5,7 +5,7 @@ import pandas as pd
 import pytest
 
 from sitecheck.errors import InputError
-from sitecheck.intake import read_table
+from sitecheck.reading.intake import read_table
 
 from .conftest import write
 
@@ -63,8 +63,9 @@ def test_non_utf8_names_offset_and_suggests_encoding(tmp_path):
     data = "site,name\nA,ok\nB,caf".encode() + b"\xe9\n"
     path = write(tmp_path, "t.csv", data, mode="wb")
     # "site,name\n" (10 bytes) + "A,ok\n" (5) + "B,caf" (5): the bad byte is at offset 20
-    with pytest.raises(InputError, match=r"offset 20 .*--encoding"):
+    with pytest.raises(InputError, match=r"offset 20 .*give the file's encoding") as info:
         read_table(path)
+    assert info.value.option == "encoding"  # the command line names its --encoding flag
     raw = read_table(path, encoding="latin-1")
     assert raw.frame["name"].tolist() == ["ok", "café"]
 

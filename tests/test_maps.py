@@ -9,7 +9,7 @@ import pytest
 from scipy.optimize import brentq
 
 from sitecheck.errors import InputError
-from sitecheck.maps import compute_maps, embed, expected_random, kernel_weights, lisi, summarise_lisi
+from sitecheck.analyses.maps import compute_maps, embed, expected_random, kernel_weights, lisi, summarise_lisi
 
 
 # ----------------------------------------------------------------- LISI, published definition
@@ -134,7 +134,7 @@ def test_compute_maps_contract_and_determinism(maps_demo, demo_prepared):
     assert d["mixing"]["features"]["overall"]["normalised"] < 0.8
     # sklearn's silhouette_score on the same design and labels gives the same mean (reference library)
     from sklearn.metrics import silhouette_score
-    from sitecheck.maps import preprocess
+    from sitecheck.analyses.maps import preprocess
 
     idx = np.searchsorted(demo_prepared.rows, maps_demo.rows)
     Z = preprocess(demo_prepared.X[idx], demo_prepared.features.categorical)
@@ -156,9 +156,29 @@ def _fake_result(maps):
 
 
 @pytest.mark.parametrize("shareable", [False, True])
-def test_figures_written_and_non_empty(maps_demo, tmp_path, shareable):
+def test_figures_written_and_non_empty(maps_demo, tmp_path, shareable, monkeypatch):
+    import matplotlib.axes
+
     from sitecheck.render.figures import write_figures
 
+    drawn, scatter = [], matplotlib.axes.Axes.scatter
+    per_call = []
+
+    def spy(self, x, y, *a, **k):  # count the points each panel draws one by one
+        per_call.append(len(x))
+        return scatter(self, x, y, *a, **k)
+
+    monkeypatch.setattr(matplotlib.axes.Axes, "scatter", spy)
+    real_panel = __import__("sitecheck.render.figures", fromlist=["_panel"])._panel
+
+    def panel(*a, **k):
+        start = len(per_call)
+        res = real_panel(*a, **k)
+        if len(per_call) > start:
+            drawn.append(sum(per_call[start:]))
+        return res
+
+    monkeypatch.setattr("sitecheck.render.figures._panel", panel)
     out = write_figures(_fake_result(maps_demo), str(tmp_path), min_cell=10, shareable=shareable)
     rels = out["embedding"]
     # site and outcome colourings, each PNG + SVG
@@ -172,9 +192,16 @@ def test_figures_written_and_non_empty(maps_demo, tmp_path, shareable):
     assert png[:8] == b"\x89PNG\r\n\x1a\n"
     svg = (tmp_path / [r for r in rels if r.endswith(".svg")][0]).read_text()
     assert "<svg" in svg
-    if shareable:
-        # density mode draws no individual points: no scatter collections of one marker per row
-        assert "density" in rels[0]
+    # Individual points: the point mode draws each mapped row with Axes.scatter (rasterised, so the SVG holds one
+    # <image> per panel); the density mode must never call scatter and draws filled contours instead.
+    n_rows = maps_demo.coords["pca"].shape[0]
+    for rel in (r for r in rels if r.endswith(".svg")):
+        text = (tmp_path / rel).read_text()
+        if shareable:
+            assert "density" in rel and "<image" not in text and text.count('<g id="QuadContourSet') >= 3, rel
+        else:
+            assert text.count("<image") == 3 and "QuadContourSet" not in text, rel
+    assert drawn == ([] if shareable else [n_rows] * 6), drawn  # 3 panels x 2 colourings, every row once
 
 
 def test_site_labels_never_become_paths(maps_demo, tmp_path):
@@ -235,7 +262,7 @@ def test_palette_fallback_distinct_pairs():
 
 def test_maps_computed_apart_and_merged_equal_maps_computed_together(demo_prepared):
     # Consistency: the scan computes t-SNE apart from PCA and UMAP (two processes) and merges.
-    from sitecheck.maps import compute_maps, merge_maps
+    from sitecheck.analyses.maps import compute_maps, merge_maps
 
     kw = dict(max_rows=600, n_boot=50, tsne_max_iter=250, umap_n_epochs=50, random_state=3)
     together = compute_maps(demo_prepared, **kw)

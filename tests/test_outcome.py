@@ -6,11 +6,11 @@ import pytest
 from sklearn.metrics import confusion_matrix, roc_auc_score, roc_curve
 
 from sitecheck.errors import InputError
-from sitecheck.intake import frame_to_raw
-from sitecheck.outcome import (outcome_folds, outcome_risk, prevalence_by_site, rates_at, site_association,
+from sitecheck.reading.intake import frame_to_raw
+from sitecheck.analyses.outcome import (outcome_folds, outcome_risk, prevalence_by_site, rates_at, site_association,
                                site_only_scores, SortedScores, youden_threshold)
-from sitecheck.prepare import prepare
-from sitecheck.roles import RoleSpec, assign_roles
+from sitecheck.table.prepare import prepare
+from sitecheck.table.roles import RoleSpec, assign_roles
 
 SITES = np.array(["Alpha", "Beta", "Gamma", "Delta"])
 
@@ -197,6 +197,37 @@ def test_shortcut_feature_flagged_and_transport_gap_large(shortcut_result):
     assert d["leak_source"] == "site_association"
 
 
+def test_equalized_odds_heterogeneity_on_shortcut_and_null_tables(shortcut_result, null_result):
+    from sitecheck.analyses.heterogeneity import rate_heterogeneity
+    from sitecheck.report.schema import report_schema, validate
+
+    # Ground truth of the invented tables: with the shortcut the site decides the prediction
+    # (site TPRs 0 to 1); without it, and for the ward column in both, nothing differs by unit.
+    prep, res = shortcut_result
+    d = res.to_dict()
+    het = d["equalized_odds"]["heterogeneity"]
+    for rate in ("tpr", "fpr"):
+        h = het[rate]
+        assert h["exceeds_noise"] and h["p_value"] == pytest.approx(1 / 1000) and h["tau2_ci"][0] > 0.05
+        assert h["spread"] == pytest.approx(d["equalized_odds"][f"{rate}_spread"])
+        assert h["null"]["spread"]["q95"] < 0.3 < h["spread"]
+    assert het["tpr"]["small_units"] == ["Alpha"]  # 9 positives at Alpha
+    assert het["tpr"]["without_small"]["units_used"] == 3 and het["fpr"]["without_small"] is None
+    ward = d["equalized_odds_by_group"]["ward"]["heterogeneity"]
+    assert ward["tpr"]["tau2_ci"][0] == 0 and ward["tpr"]["p_value"] >= 0.05 and not ward["fpr"]["exceeds_noise"]
+    # the section's numbers are those of rate_heterogeneity on the per-site counts (its own generator)
+    eo = res.equalized_odds
+    ref = rate_heterogeneity([r.tp for r in eo.per_unit], [r.n_pos for r in eo.per_unit],
+                             [r.label for r in eo.per_unit], n_permutations=999,
+                             random_state=np.random.default_rng([res.seed, 7, 2]))
+    assert ref.to_dict() == het["tpr"]
+    assert validate(d, report_schema()["properties"]["outcome"]) == []
+    _, nres = null_result
+    nd = nres.to_dict()["equalized_odds"]["heterogeneity"]
+    assert all(nd[r]["tau2_ci"][0] == 0 and not nd[r]["exceeds_noise"] for r in ("tpr", "fpr"))
+    assert 0 < nd["tpr"]["sd_rate_ci"][1] < 0.2  # four sites, ~60 positives each: an SD above 0.2 ruled out
+
+
 def test_no_site_effect_gap_interval_covers_zero(null_result):
     _, res = null_result
     d = res.to_dict()
@@ -210,14 +241,23 @@ def test_no_site_effect_gap_interval_covers_zero(null_result):
 
 @pytest.mark.slow
 def test_null_gap_interval_coverage_over_seeds():
-    # Invented null tables: the 95% interval of the transport gap should cover 0 in most seeds.
+    # Invented null tables (nothing depends on the site): the 95% interval of the transport gap should cover 0.
+    # 60 small tables (200 rows, 3 folds) to keep it cheap. Limit: at least 53 of 60 covering, which passes
+    # with probability >= 0.99 at the nominal 95%. Power (scipy.stats.binom): a true 80% coverage fails it
+    # with probability 0.93, 85% with 0.70.
+    from scipy.stats import binom
+
+    n_runs, limit = 60, 53
+    assert binom.sf(limit - 1, n_runs, 0.95) >= 0.99 and binom.cdf(limit - 1, n_runs, 0.80) > 0.93
     cover = 0
-    for seed in range(10):
-        res = outcome_risk(prep_of(synth(400, shortcut=False, seed=100 + seed), groups=()),
-                           n_boot=100, n_repeats=1, importance_rows=100)
+    for seed in range(n_runs):
+        frame = synth(200, shortcut=False, seed=100 + seed)
+        prep = prepare(assign_roles(frame_to_raw(frame), RoleSpec(site="site", outcome="y")), n_splits=3,
+                       random_state=seed)
+        res = outcome_risk(prep, n_boot=100, n_repeats=1, importance_rows=50)
         lo, hi = res.transport_gap_ci
         cover += lo <= 0 <= hi
-    assert cover >= 8
+    assert cover >= limit, cover
 
 
 # ---------------------------------------------------------------- contract and behaviour
@@ -236,7 +276,11 @@ def test_report_keys_missing_outcome_and_determinism():
         assert set(v) >= {"p", "ci", "n"}
     for v in a["loso"].values():
         assert set(v) >= {"auc", "ci", "n"}
-    assert set(a["equalized_odds"]) >= {"threshold", "per_site", "tpr_spread", "fpr_spread"}
+    assert set(a["equalized_odds"]) >= {"threshold", "per_site", "tpr_spread", "fpr_spread", "tpr_spread_ci",
+                                        "fpr_spread_ci", "heterogeneity"}
+    for rate in ("tpr", "fpr"):
+        assert set(a["equalized_odds"]["heterogeneity"][rate]) >= {
+            "tau2", "tau2_ci", "i2", "i2_ci", "variance", "spread", "p_value", "null", "small_units", "without_small"}
     assert all(set(v) >= {"tpr", "fpr"} for v in a["equalized_odds"]["per_site"].values())
     c = outcome_risk(prep_of(frame, seed=1), n_boot=60, n_repeats=1).to_dict()
     assert c["pooled_auc"] != a["pooled_auc"]  # another seed, other folds
@@ -254,19 +298,25 @@ def test_given_threshold_and_invalid_options():
         outcome_risk(prep, threshold=1.5)
     with pytest.raises(InputError, match="n_boot"):
         outcome_risk(prep, n_boot=3)
+    with pytest.raises(InputError, match="min_rate_count"):
+        outcome_risk(prep, min_rate_count=0)
+    with pytest.raises(InputError, match="n_permutations"):
+        outcome_risk(prep, n_permutations=-1)
 
 
 def test_leak_scores_from_leakage_result_are_used():
     prep = prep_of(synth(600, seed=4))
 
-    class FakeLeakage:  # the leak ranking's to_dict() shape: features [{feature, score, score_ci}]
-        def to_dict(self):
-            return {"features": [{"feature": "f0", "score": 0.30, "score_ci": [0.2, 0.4]},
-                                 {"feature": "f1", "score": 0.10, "score_ci": [0.05, 0.15]},
-                                 {"feature": "f2", "score": 0.0, "score_ci": [-0.01, 0.01]},
-                                 {"feature": "f3", "score": 0.0, "score_ci": [-0.01, 0.01]}]}
+    from sitecheck.analyses.leakage import LeakageResult, LeakEntry
 
-    d = outcome_risk(prep, leakage=FakeLeakage(), n_boot=50, n_repeats=1).to_dict()
+    rows = [("f0", 0.30, (0.2, 0.4)), ("f1", 0.10, (0.05, 0.15)), ("f2", 0.0, (-0.01, 0.01)),
+            ("f3", 0.0, (-0.01, 0.01))]
+    given = LeakageResult(entries=tuple(LeakEntry(feature=f, score=s, score_ci=ci, rank=i + 1, cluster=i,
+                                                  univariate={}, missing_by_site={})
+                                        for i, (f, s, ci) in enumerate(rows)),
+                          clusters=(), missingness=None, baseline_auc=0.9, n_folds=5, n_repeats=2,
+                          n_rows_per_fold=100, threshold=0.7)
+    d = outcome_risk(prep, leakage=given, n_boot=50, n_repeats=1).to_dict()
     assert d["leak_source"] == "leakage"
     f = {r["feature"]: r for r in d["feature_risk"]}
     assert f["f0"]["leak_score"] == 0.30 and f["f0"]["leak_rank"] == 1 and f["f0"]["shortcut"]
@@ -317,9 +367,33 @@ def test_section_escapes_text_and_withholds_small_sites(shortcut_result):
     assert section.html({}, 10) == "" and section.markdown({}, 10) == ""
 
 
+def test_section_leads_with_heterogeneity_and_flags_small_units(shortcut_result):
+    from sitecheck.render.sections import outcome as section
+
+    _, res = shortcut_result
+    o = json.loads(json.dumps(res.to_dict()))
+    bad = "<b>ward & co</b>"
+    o["equalized_odds"]["heterogeneity"]["tpr"]["small_units"].append(bad)
+    o["equalized_odds"]["per_site"][bad] = {"tpr": 0.5, "fpr": 0.1, "tpr_ci": [0, 1], "fpr_ci": [0, 1], "n": 40,
+                                             "n_pos": 4, "n_neg": 36}
+    page = section.html({"outcome": o}, 10)
+    assert bad not in page and "&lt;b&gt;ward &amp; co&lt;/b&gt;" in page
+    # the lead: the heterogeneity reading comes before prevalence, and the range only "for comparison"
+    brief = page.index("In brief")
+    assert brief < page.index("Prevalence by site")
+    h = o["equalized_odds"]["heterogeneity"]["tpr"]
+    assert "differs across the 4 sites by more than sampling noise gives" in page[brief:page.index("Prevalence")]
+    eo_at = page.index("Equalized odds across sites")
+    assert page.index("permutation p", eo_at) < page.index("kept for comparison", eo_at)
+    assert f"{h['sd_rate']:.3f}" in page and "few positives" in page
+    assert page.count("few positives") == 2  # Alpha (9 positives) and the added unit
+    md = section.markdown({"outcome": o}, 10)
+    assert "by more than sampling noise gives" in md and "without small" in md and "<b>" not in md
+
+
 def test_leak_scores_switch_to_the_real_leak_ranking():
-    from sitecheck.leakage import rank_leakage
-    from sitecheck.probe import cross_fit
+    from sitecheck.analyses.leakage import rank_leakage
+    from sitecheck.analyses.probe import cross_fit
 
     prep = prep_of(synth(600, seed=6), groups=())
     cf = cross_fit(prep.X, prep.site, prep.features.categorical, prep.folds, random_state=0)

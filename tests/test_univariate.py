@@ -2,7 +2,7 @@ import numpy as np
 import pytest
 from scipy import stats as sps
 
-from sitecheck.univariate import (bh_adjust, cramers_v, epsilon_squared, missing_by_site, residualise, smd,
+from sitecheck.analyses.univariate import (bh_adjust, cramers_v, epsilon_squared, missing_by_site, residualise, smd,
                                   univariate_gaps)
 
 

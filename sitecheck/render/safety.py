@@ -65,8 +65,55 @@ def suppress_count(n: Any, min_cell: int) -> Any:
 
 
 #: Keys whose integer values are counts of patients or rows.
-COUNT_KEYS = frozenset({"n", "count", "rows", "n_missing", "unparsed_count", "n_rows", "n_pos", "n_neg",
+COUNT_KEYS = frozenset({"n", "count", "rows", "rows_used", "n_missing", "unparsed_count", "n_rows", "n_pos", "n_neg",
                         "positives", "negatives", "tp", "fp", "tn", "fn", "k", "cases", "n_events"})
+
+#: Keys whose string values are names from the data or fixed labels, never free text with counts.
+NAME_KEYS = frozenset({"name", "column", "feature", "site", "kind", "role", "path", "sha256", "schema",
+                       "site_column", "outcome", "verdict", "method", "levels", "features", "members", "test",
+                       "cluster", "panel", "model", "format", "severity"})
+
+# Nouns after which an integer in free text counts rows, values or patients ("3 rows", "2 value(s)",
+# "appears 4 times"); and the "n = 3" form. Numbers inside quoted names are never touched.
+_COUNT_NOUNS = (r"rows?|values?|value\(s\)|cells?|patients?|records?|cases?|attendances?|times|"
+                r"positives?|negatives?|events?|observations?|people|persons?|missing|unparsed")
+_TEXT_COUNT = re.compile(
+    rf"(?<![\w.,\-])(\d+)(?![\d.,]\d)(?=\s+(?:{_COUNT_NOUNS})(?!\w))"   # 3 rows, 2 value(s)
+    rf"|(?<=\bn = )(\d+)(?![\d.,]\d)|(?<=\bn=)(\d+)(?![\d.,]\d)"         # n = 3, n=3
+    rf"|(?<=\ball )(\d+)(?![\d.,]\d)(?=\s)"                               # all 3 (rows missing)
+)
+_QUOTED = re.compile(r"'(?:[^'\\]|\\.)*'|\"(?:[^\"\\]|\\.)*\"")
+
+
+def suppress_text(text: str, min_cell: int) -> str:
+    """Free text (warnings, details, reasons) as shown in shared outputs.
+
+    Every integer below ``min_cell`` (and above 0) that counts rows, values or
+    patients ("3 rows", "2 value(s)", "appears 4 times", "n = 3", "all 3 rows")
+    becomes ``"<min_cell"``. Quoted names from the data (``'Ward 3'``) are left
+    as they are.
+
+    Examples
+    --------
+    >>> suppress_text("site 'Ward 3' has 3 rows, below the minimum of 5", 10)
+    "site 'Ward 3' has <10 rows, below the minimum of 5"
+    >>> suppress_text("column 'urea': 12 value(s) did not parse", 10)
+    "column 'urea': 12 value(s) did not parse"
+    """
+    if not isinstance(text, str) or not text:
+        return text
+
+    def sub(m: re.Match) -> str:
+        k = int(next(g for g in m.groups() if g is not None))
+        return f"<{min_cell}" if 0 < k < min_cell else m.group(0)
+
+    parts, last = [], 0
+    for q in _QUOTED.finditer(text):
+        parts.append(_TEXT_COUNT.sub(sub, text[last:q.start()]))
+        parts.append(q.group(0))
+        last = q.end()
+    parts.append(_TEXT_COUNT.sub(sub, text[last:]))
+    return "".join(parts)
 
 
 def shareable_document(doc: Any, *, min_cell: int, small_sites: frozenset = frozenset()) -> Any:
@@ -74,8 +121,10 @@ def shareable_document(doc: Any, *, min_cell: int, small_sites: frozenset = froz
 
     Counts (values under :data:`COUNT_KEYS`, per-site row counts, missing-code
     counts and confusion-matrix cells) below ``min_cell`` become ``"<min_cell"``;
-    any per-site entry of a site in ``small_sites`` is replaced by
-    ``"withheld"``. This is the single place where small-cell suppression is applied.
+    counts written in free text (warnings, details, reasons: any string not
+    under :data:`NAME_KEYS`) go through :func:`suppress_text`; any per-site
+    entry of a site in ``small_sites`` is replaced by ``"withheld"``. This is
+    the single place where small-cell suppression is applied.
     """
 
     def walk(obj: Any, key: str = "", counts: bool = False) -> Any:
@@ -95,6 +144,8 @@ def shareable_document(doc: Any, *, min_cell: int, small_sites: frozenset = froz
             return obj
         if isinstance(obj, int) and (counts or key in COUNT_KEYS):
             return suppress_count(obj, min_cell)
+        if isinstance(obj, str) and key not in NAME_KEYS:
+            return suppress_text(obj, min_cell)
         return obj
 
     out = walk(doc)

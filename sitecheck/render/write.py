@@ -5,7 +5,7 @@ import json
 import os
 from typing import Callable, Dict, List
 
-from ..result import ScanResult
+from sitecheck.report.result import ScanResult
 from .html import render_html
 from .markdown import render_markdown
 from .safety import atomic_write, shareable_document

@@ -17,8 +17,8 @@ GOAL_SECONDS = 20.0
 
 
 def make_table(n_rows: int = 100_000, n_features: int = 50, seed: int = 0):
-    from sitecheck.intake import frame_to_raw
-    from sitecheck.roles import RoleSpec, assign_roles
+    from sitecheck.reading.intake import frame_to_raw
+    from sitecheck.table.roles import RoleSpec, assign_roles
 
     rng = np.random.default_rng(seed)
     sites = np.array(["Site-A", "Site-B", "Site-C", "Site-D", "Site-E"], dtype=object)
@@ -44,7 +44,7 @@ def make_table(n_rows: int = 100_000, n_features: int = 50, seed: int = 0):
 
 
 def main() -> int:
-    from sitecheck.fingerprints import find_fingerprints
+    from sitecheck.analyses.fingerprints import find_fingerprints
 
     table = make_table()
     t0 = time.perf_counter()

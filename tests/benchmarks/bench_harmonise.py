@@ -20,8 +20,8 @@ GOAL_SECONDS = 120.0
 
 
 def make_table(n_rows: int = 100_000, n_features: int = 50, seed: int = 0):
-    from sitecheck.intake import frame_to_raw
-    from sitecheck.roles import RoleSpec, assign_roles
+    from sitecheck.reading.intake import frame_to_raw
+    from sitecheck.table.roles import RoleSpec, assign_roles
 
     rng = np.random.default_rng(seed)
     sites = np.array(["Hollin Mere", "Kestrel Row", "Larchbank", "Moss Edge"], dtype=object)  # invented
@@ -46,8 +46,8 @@ def make_table(n_rows: int = 100_000, n_features: int = 50, seed: int = 0):
 
 
 def main() -> int:
-    from sitecheck.harmonise import harmonisation_check
-    from sitecheck.prepare import prepare
+    from sitecheck.harmonise.methods import harmonisation_check
+    from sitecheck.table.prepare import prepare
 
     t0 = time.perf_counter()
     table = make_table()

@@ -27,10 +27,10 @@ import json, sys, time
 t_start = time.perf_counter()
 import numpy as np
 from sitecheck.demo import generate_demo, DEMO_ROLES
-from sitecheck.intake import frame_to_raw
-from sitecheck.roles import RoleSpec, assign_roles
-from sitecheck.prepare import prepare, stratified_subsample
-from sitecheck import maps
+from sitecheck.reading.intake import frame_to_raw
+from sitecheck.table.roles import RoleSpec, assign_roles
+from sitecheck.table.prepare import prepare, stratified_subsample
+from sitecheck.analyses import maps
 
 threads = None if sys.argv[1] == "default" else int(sys.argv[1])
 demo = generate_demo(12_000, seed=7)

@@ -3,7 +3,7 @@
 Invented data: four sites, two covariates and a group column, 50 numeric
 features of which three shift by site and five drive a binary outcome (one
 of them both: a shortcut). The table goes through roles and prepare (the
-default 100,000-row modelling subsample), then :func:`sitecheck.outcome.outcome_risk`
+default 100,000-row modelling subsample), then :func:`sitecheck.analyses.outcome.outcome_risk`
 runs with its defaults. Prints the seconds; exits 1 above the goal.
 Run: ``python tests/benchmarks/bench_outcome.py``.
 """
@@ -19,8 +19,8 @@ GOAL_SECONDS = 120.0
 
 
 def make_table(n_rows: int = 100_000, n_features: int = 50, seed: int = 0):
-    from sitecheck.intake import frame_to_raw
-    from sitecheck.roles import RoleSpec, assign_roles
+    from sitecheck.reading.intake import frame_to_raw
+    from sitecheck.table.roles import RoleSpec, assign_roles
 
     rng = np.random.default_rng(seed)
     sites = np.array(["North Vale", "Eastmere", "Southholm", "Westbrook"], dtype=object)
@@ -45,8 +45,8 @@ def make_table(n_rows: int = 100_000, n_features: int = 50, seed: int = 0):
 
 
 def main() -> int:
-    from sitecheck.outcome import outcome_risk
-    from sitecheck.prepare import prepare
+    from sitecheck.analyses.outcome import outcome_risk
+    from sitecheck.table.prepare import prepare
 
     t0 = time.perf_counter()
     table = make_table()

@@ -30,10 +30,10 @@ def make_frame(n_sites: int, rows_per_site: int, n_features: int, seed: int = 0,
 
 
 def run(name: str, frame: pd.DataFrame, goal: float, **probe_kw) -> bool:
-    from sitecheck.intake import frame_to_raw
-    from sitecheck.prepare import prepare
-    from sitecheck.probe import site_probe
-    from sitecheck.roles import RoleSpec, assign_roles
+    from sitecheck.reading.intake import frame_to_raw
+    from sitecheck.table.prepare import prepare
+    from sitecheck.analyses.probe import site_probe
+    from sitecheck.table.roles import RoleSpec, assign_roles
 
     table = assign_roles(frame_to_raw(frame), RoleSpec(site="site"))
     t0, c0 = time.perf_counter(), time.process_time()

@@ -240,8 +240,8 @@ def inject(frame: pd.DataFrame, kind: str, size: float, seed: int) -> Tuple[pd.D
 
 def run_table(seed: int, *, plain: bool = True) -> dict:
     """Scan one null table and harmonise it with each method; the figures of the bounds."""
-    from sitecheck.commands_harmonise import run_harmonise
-    from sitecheck.harmonise import METHODS
+    from sitecheck.cli.harmonise import run_harmonise
+    from sitecheck.harmonise.methods import METHODS
     from sitecheck.scan import ScanOptions, scan_frame
 
     frame, info = null_table(seed)
@@ -276,9 +276,9 @@ def run_table(seed: int, *, plain: bool = True) -> dict:
 
 def run_power(seed: int) -> List[dict]:
     """Fingerprints of one table with each injected effect at each size."""
-    from sitecheck.fingerprints import find_fingerprints
-    from sitecheck.intake import frame_to_raw
-    from sitecheck.roles import RoleSpec, assign_roles
+    from sitecheck.analyses.fingerprints import find_fingerprints
+    from sitecheck.reading.intake import frame_to_raw
+    from sitecheck.table.roles import RoleSpec, assign_roles
 
     frame, info = null_table(seed)
     covs = ("age",) if info["case_mix"] else None

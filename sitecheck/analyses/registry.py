@@ -1,7 +1,7 @@
 """The registry of analyses run by a scan, in order.
 
 Each entry names a ``report.json`` section, says when it applies, runs the
-analysis (a pure function of :class:`~sitecheck.prepare.Prepared`, the scan
+analysis (a pure function of :class:`~sitecheck.table.prepare.Prepared`, the scan
 options and earlier results) and maps its result to report sections. To add
 an analysis, write its module, then add an :class:`Analysis` here.
 """
@@ -36,7 +36,7 @@ class Analysis:
 
 
 def _run_probe(prep, options, objects):
-    from .probe import site_probe
+    from sitecheck.analyses.probe import site_probe
 
     return site_probe(prep, random_state=options.seed)
 
@@ -53,8 +53,8 @@ def _probe_sections(result):
 def _run_leakage(prep, options, objects):
     import numpy as np
 
-    from .leakage import rank_leakage
-    from .probe import probe_matrix
+    from sitecheck.analyses.leakage import rank_leakage
+    from sitecheck.analyses.probe import probe_matrix
 
     probe = objects.get("probe")
     if probe is None:
@@ -71,14 +71,14 @@ def _run_leakage(prep, options, objects):
 
 
 def _run_outcome(prep, options, objects):
-    from .outcome import outcome_risk
+    from sitecheck.analyses.outcome import outcome_risk
 
     return outcome_risk(prep, leakage=objects.get("leakage"), threshold=options.threshold,
                         random_state=options.seed)
 
 
 def _run_fingerprints(prep, options, objects):
-    from .fingerprints import find_fingerprints
+    from sitecheck.analyses.fingerprints import find_fingerprints
 
     return find_fingerprints(prep)
 
@@ -90,7 +90,7 @@ def _fingerprint_sections(result):
 
 
 def _run_maps(prep, options, objects):
-    from .maps import compute_maps
+    from sitecheck.analyses.maps import compute_maps
 
     try:  # one core per analysis: UMAP's numba kernels stay on this process's lane
         import numba
@@ -102,14 +102,14 @@ def _run_maps(prep, options, objects):
 
 
 def _run_tsne(prep, options, objects):
-    from .maps import compute_maps
+    from sitecheck.analyses.maps import compute_maps
 
     return compute_maps(prep, max_rows=options.map_rows, methods=("tsne",), score_design=False,
                         random_state=options.seed)
 
 
 def _merge_maps(whole, part):
-    from .maps import merge_maps
+    from sitecheck.analyses.maps import merge_maps
 
     return merge_maps(whole, part)
 
@@ -117,7 +117,7 @@ def _merge_maps(whole, part):
 
 
 def _run_harmonise(prep, options, objects):
-    from .harmonise import harmonisation_check
+    from sitecheck.harmonise.methods import harmonisation_check
 
     return harmonisation_check(prep, random_state=options.seed)
 

@@ -15,7 +15,7 @@ from typing import List, Sequence, Tuple
 import numpy as np
 from scipy import stats as _st
 
-from .errors import ParameterError
+from sitecheck.errors import ParameterError
 
 #: Resamples handled per vectorised block (bounds memory at block x n floats).
 _BLOCK = 64
@@ -262,6 +262,8 @@ def wilson_ci(k, n, alpha: float = 0.05) -> Tuple[float, float]:
 def bh_adjust(pvalues) -> np.ndarray:
     """Benjamini-Hochberg adjusted p-values (step-up, monotone, capped at 1).
 
+    Missing p-values (NaN) stay missing and do not count among the tests.
+
     References
     ----------
     Benjamini, Y. & Hochberg, Y. (1995). Controlling the false discovery rate.
@@ -270,6 +272,11 @@ def bh_adjust(pvalues) -> np.ndarray:
     p = np.asarray(pvalues, dtype=float)
     if p.ndim != 1:
         raise ParameterError("pvalues must be 1-D")
+    ok = ~np.isnan(p)
+    if not ok.all():
+        out = np.full(p.shape, np.nan)
+        out[ok] = bh_adjust(p[ok])
+        return out
     m = len(p)
     if m == 0:
         return p.copy()

@@ -1,6 +1,6 @@
 """The JSON Schema (draft 2020-12) of ``report.json``.
 
-The document's ``schema`` field carries :data:`sitecheck.result.SCHEMA_VERSION`.
+The document's ``schema`` field carries :data:`sitecheck.report.result.SCHEMA_VERSION`.
 Minor versions add keys; a major version renames or removes one. Sections are
 present only when their analysis ran (``outcome`` needs ``--outcome``).
 """
@@ -8,7 +8,8 @@ from __future__ import annotations
 
 from typing import Any, Dict
 
-from .result import SCHEMA_VERSION
+from sitecheck.report.gates import FINGERPRINT_KINDS
+from sitecheck.report.result import SCHEMA_VERSION
 
 NUM = {"type": ["number", "null"]}
 CI = {"type": "array", "items": NUM, "minItems": 2, "maxItems": 2, "description": "95% interval [low, high]"}
@@ -39,8 +40,7 @@ def report_schema() -> Dict[str, Any]:
                        "missing_by_site": {"type": "object"}},
                       ["feature", "score", "score_ci", "rank", "cluster", "univariate", "missing_by_site"])
     fingerprint = _obj({"feature": {"type": "string"}, "site": {"type": ["string", "null"]},
-                        "kind": {"enum": ["unit_ratio", "precision", "heaping", "floor", "ceiling", "missing_code",
-                                          "site_missing", "exclusive_level", "shift", "scale"]},
+                        "kind": {"enum": list(FINGERPRINT_KINDS)},
                         "detail": {"type": "string"}, "evidence": {"type": "object"}},
                        ["feature", "site", "kind", "detail", "evidence"])
     embedding = _obj({"n_used": COUNT, "methods": {"type": "array"}, "mixing": {"type": "object"},
@@ -52,10 +52,31 @@ def report_schema() -> Dict[str, Any]:
                                                                       ["feature", "reason", "p_adj"])},
                         "outcome_auc_before": NUM, "outcome_auc_after": NUM},
                        ["probe_auc", "probe_auc_ci", "surviving", "outcome_auc_before", "outcome_auc_after"])
+    # equalized odds: heterogeneity of TPR and FPR across units against the within-class permutation null
+    ci_or_null = {"anyOf": [CI, {"type": "null"}]}
+    null_summary = _obj({"median": NUM, "q95": NUM}, ["median", "q95"])
+    rate_het_props = {
+        "units_used": {"type": "integer"}, "small_units": {"type": "array", "items": {"type": "string"}},
+        "empty_units": {"type": "array", "items": {"type": "string"}}, "min_count": {"type": "integer"},
+        "pooled_rate": NUM, "q": NUM, "df": {"type": ["integer", "null"]}, "q_p_value": NUM,
+        "tau2": NUM, "tau2_ci": ci_or_null, "i2": NUM, "i2_ci": ci_or_null, "sd_rate": NUM, "sd_rate_ci": ci_or_null,
+        "variance": NUM, "spread": NUM, "permutations": {"type": "integer"}, "p_value": NUM,
+        "variance_p_value": NUM, "spread_p_value": NUM, "exceeds_noise": {"type": ["boolean", "null"]},
+        "null": _obj({k: null_summary for k in ("tau2", "i2", "variance", "spread")},
+                     ["tau2", "i2", "variance", "spread"]),
+        "without_small": {"type": ["object", "null"]}}
+    rate_het = _obj(rate_het_props, list(rate_het_props))
+    heterogeneity = _obj({"method": {"type": "string"}, "scale": {"type": "string"}, "min_count": {"type": "integer"},
+                          "permutations": {"type": "integer"}, "tpr": rate_het, "fpr": rate_het},
+                         ["method", "scale", "min_count", "permutations", "tpr", "fpr"])
+    eo_common = {"threshold": NUM, "tpr_spread": NUM, "fpr_spread": NUM, "heterogeneity": heterogeneity}
     outcome = _obj({"prevalence": {"type": "object"}, "site_only_auc": NUM, "pooled_auc": NUM,
                     "loso": {"type": "object"}, "transport_gap": NUM, "shortcut_candidates": {"type": "array"},
-                    "equalized_odds": _obj({"threshold": NUM, "per_site": {"type": "object"}, "tpr_spread": NUM,
-                                            "fpr_spread": NUM}, ["threshold", "per_site", "tpr_spread", "fpr_spread"])},
+                    "equalized_odds": _obj({**eo_common, "per_site": {"type": "object"}},
+                                           ["threshold", "per_site", "tpr_spread", "fpr_spread", "heterogeneity"]),
+                    "equalized_odds_by_group": {"type": "object", "additionalProperties": _obj(
+                        {**eo_common, "per_group": {"type": "object"}},
+                        ["threshold", "per_group", "tpr_spread", "fpr_spread", "heterogeneity"])}},
                    ["prevalence", "site_only_auc", "pooled_auc", "loso", "transport_gap", "shortcut_candidates",
                     "equalized_odds"])
     column = _obj({"name": {"type": "string"}, "role": {"enum": ["site", "outcome", "covariate", "group", "identifier",

@@ -24,18 +24,19 @@ from scipy import stats as sps
 from scipy.cluster import hierarchy
 from scipy.spatial.distance import squareform
 
-from .errors import InputError
-from .prepare import Prepared
-from .univariate import covariate_design, missing_by_site, univariate_gaps
+from sitecheck._runtime import derived_seed, native_threads, stream, thread_limit
+from sitecheck.errors import InputError
+from sitecheck.table.prepare import Prepared
+from sitecheck.analyses.univariate import covariate_design, missing_by_site, univariate_gaps
 
 
 def macro_auc_scorer(estimator, X, y) -> float:
     """Macro one-vs-rest ROC AUC of ``estimator`` on (X, y) (binary: plain AUC).
 
-    Computed with :func:`sitecheck.stats.macro_ovr_auc` (rank form, equal to
+    Computed with :func:`sitecheck.analyses.stats.macro_ovr_auc` (rank form, equal to
     scikit-learn's ``roc_auc_score(multi_class="ovr")``, measured 3-5x faster; this
     scorer runs once per permutation)."""
-    from .stats import macro_ovr_auc
+    from sitecheck.analyses.stats import macro_ovr_auc
 
     proba = estimator.predict_proba(X)
     return macro_ovr_auc(np.asarray(y), proba)
@@ -75,7 +76,7 @@ class _TreeParts:
             if colmap is None or Xpre.shape != X.shape:
                 return None
             bitsets, f_idx_map = estimator._bin_mapper.make_known_categories_bitsets()
-            n_threads = 1 if X.shape[0] < 20000 else (os.cpu_count() or 1)
+            n_threads = native_threads(X.shape[0]) or (os.cpu_count() or 1)
             predictors = estimator._predictors
             k = estimator.n_trees_per_iteration_
             parts = np.empty((len(predictors), X.shape[0], k))
@@ -149,16 +150,14 @@ def grouped_permutation_importance(estimator, X: np.ndarray, y: np.ndarray, grou
     drops : ndarray (n_groups, n_repeats)
         Baseline score minus permuted score.
     """
-    from threadpoolctl import threadpool_limits
-
-    from .stats import macro_ovr_auc
+    from sitecheck.analyses.stats import macro_ovr_auc
 
     rs = np.random.RandomState(random_state) if not isinstance(random_state, np.random.RandomState) else random_state
     seed = rs.randint(np.iinfo(np.int32).max + 1)
     y = np.asarray(y)
     # Many small predictions: OpenMP start-up and spin-waiting cost more than they save
     # (measured 30x slower per call on a busy 2-core machine), so score single-threaded.
-    with threadpool_limits(limits=1 if X.shape[0] < 20000 else None, user_api="openmp"):
+    with thread_limit(native_threads(X.shape[0]), user_api="openmp"):
         fast = _TreeParts.build(estimator, X) if scoring is macro_auc_scorer else None
         if fast is not None:
             baseline = macro_ovr_auc(y, fast.proba(fast.parts))
@@ -392,10 +391,10 @@ def rank_leakage(prep: Prepared, crossfit, *, n_repeats: Optional[int] = None, m
     X, names = enc.X, list(enc.names)
     y = prep.site
     p = X.shape[1]
-    from .prepare import stratified_subsample
+    from sitecheck.table.prepare import stratified_subsample
 
-    rng = np.random.default_rng([seed, 4242])
-    corr_rows = stratified_subsample(y, int(max_cluster_rows), np.random.default_rng([seed, 4243]))
+    rng = stream(seed, "leakage.permutations")
+    corr_rows = stratified_subsample(y, int(max_cluster_rows), stream(seed, "leakage.cluster_rows"))
     cl = correlation_clusters(X[corr_rows], enc.categorical, threshold=cluster_threshold)
     groups: List[Tuple[str, List[int]]] = [(f"feature:{n}", [j]) for j, n in enumerate(names)]
     for c in np.unique(cl):
@@ -415,7 +414,7 @@ def rank_leakage(prep: Prepared, crossfit, *, n_repeats: Optional[int] = None, m
             te = te[stratified_subsample(y[te], max_rows_per_fold, rng)]
         n_rows = max(n_rows, len(te))
         base, drops = grouped_permutation_importance(model, X[te], y[te], [g[1] for g in groups],
-                                                     n_repeats=n_repeats, random_state=seed + f)
+                                                     n_repeats=n_repeats, random_state=derived_seed(seed, "leakage.fold_repeats", f))
         base_scores.append(base)
         fold_drops[f] = drops.mean(axis=1)
     score = fold_drops.mean(axis=0)

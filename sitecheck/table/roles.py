@@ -1,6 +1,6 @@
 """Column roles, kinds and hygiene findings.
 
-:func:`assign_roles` turns a :class:`~sitecheck.intake.RawTable` and a
+:func:`assign_roles` turns a :class:`~sitecheck.reading.intake.RawTable` and a
 :class:`RoleSpec` into a validated :class:`Table`: every column gets a role
 (``site``, ``outcome``, ``covariate``, ``group``, ``identifier``,
 ``excluded`` or ``feature``), a kind (``numeric``, ``binary``,
@@ -12,13 +12,13 @@ from __future__ import annotations
 import difflib
 import re
 from dataclasses import dataclass, field, replace
-from typing import Dict, List, Optional, Sequence, Tuple
+from typing import Any, Dict, List, Optional, Sequence, Tuple
 
 import numpy as np
 import pandas as pd
 
-from .errors import InputError
-from .intake import ColumnIntake, RawTable
+from sitecheck.errors import InputError
+from sitecheck.reading.intake import ColumnIntake, RawTable
 
 ROLES = ("site", "outcome", "covariate", "group", "identifier", "excluded", "feature")
 KINDS = ("numeric", "binary", "categorical", "datetime", "text")
@@ -47,6 +47,25 @@ _IDENT_PATTERNS = [
     r"biometric", r"finger_?print", r"photo(graph)?",
 ]
 _IDENT_RE = re.compile(r"^(?:" + "|".join(_IDENT_PATTERNS) + r")$")
+
+
+def value_label(value: Any) -> Optional[str]:
+    """The text label of one site or group value, the same everywhere it is shown or matched.
+
+    Missing values (None, NaN, NaT) give None; whole-number floats lose their ``.0`` (a site
+    column read as numbers with gaps is float: 3.0 is site "3").
+
+    Examples
+    --------
+    >>> from sitecheck.table.roles import value_label
+    >>> value_label(3.0), value_label("Ashby"), value_label(float("nan"))
+    ('3', 'Ashby', None)
+    """
+    if value is None or value is pd.NaT or (isinstance(value, (float, np.floating)) and np.isnan(value)):
+        return None
+    if isinstance(value, (float, np.floating)) and float(value).is_integer():
+        return str(int(value))
+    return str(value)
 
 
 def _norm_name(name: str) -> str:
@@ -302,7 +321,7 @@ def assign_roles(
     Parameters
     ----------
     raw : RawTable
-        Output of :func:`sitecheck.intake.read_table`.
+        Output of :func:`sitecheck.reading.intake.read_table`.
     spec : RoleSpec
         Requested roles; ``spec.site`` is required.
     min_site_rows : int, default 20
@@ -326,7 +345,8 @@ def assign_roles(
     frame = raw.frame
     names = list(frame.columns)
     if not spec.site:
-        raise InputError("no site column given; pass --site COLUMN or set site in the config file")
+        raise InputError("no site column given; name the column that holds the site (site in the config file)",
+                         option="site")
     if spec.site not in names:
         raise InputError(f"site column {spec.site!r} not found in the table{_closest(spec.site, names)}")
     covs = tuple(spec.covariates or ())
@@ -352,7 +372,7 @@ def assign_roles(
 
     # -- sites -------------------------------------------------------------
     site_raw = frame[spec.site]
-    site_str = site_raw.map(lambda v: None if pd.isna(v) else (str(int(v)) if isinstance(v, float) and float(v).is_integer() else str(v)))
+    site_str = site_raw.map(value_label)
     n_site_missing = int(site_str.isna().sum())
     if n_site_missing:
         warnings.append(f"{n_site_missing} rows have no value in site column {spec.site!r} and were left out")
@@ -366,7 +386,7 @@ def assign_roles(
     if len(kept) < 2:
         raise InputError(
             f"site column {spec.site!r}: only {len(kept)} site(s) have at least {min_site_rows} rows; "
-            "at least two are needed (see --min-site-rows)"
+            "at least two are needed (lower min_site_rows to keep smaller sites)", option="min_site_rows"
         )
     keep_mask = site_str.isin(kept).to_numpy()
     frame = frame.loc[keep_mask].reset_index(drop=True).copy()
@@ -504,7 +524,9 @@ def assign_roles(
 
     usable = [c for c in columns if c.role == "feature"]
     if not usable:
-        raise InputError("no usable feature left after roles and hygiene checks; see the columns' reasons with --verbose or list features in the config")
+        why = "; ".join(f"{c.name!r}: {c.reason}" for c in columns if c.role not in ("site", "outcome"))[:300]
+        raise InputError(f"no usable feature left after roles and hygiene checks ({why}); "
+                         "list the features to use under features in the config")
 
     panels = {}
     for pname, members in (spec.panels or {}).items():

@@ -1,7 +1,7 @@
 """The ``sitecheck harmonise`` command: fit a harmonisation on a table (or apply
 saved parameters to new rows of known sites) and write the harmonised table.
 
-Thin layer over :mod:`sitecheck.harmonise`: read, choose columns, call the
+Thin layer over :mod:`sitecheck.harmonise.methods`: read, choose columns, call the
 library, write files atomically, print a summary. Errors the user can fix
 raise :class:`~sitecheck.errors.InputError` (exit code 2, one line).
 """
@@ -16,19 +16,16 @@ import click
 import numpy as np
 import pandas as pd
 
-from .errors import InputError
+from sitecheck.errors import InputError
 
 #: Extra keys of the parameters file written by the command (beside the fit's own).
 FILE_KEYS = ("site_column", "input_sha256", "rows_fitted", "left_unchanged")
 
 
 def _site_label(v) -> Optional[str]:
-    # Same normalisation as sitecheck.roles (integral floats read as integers).
-    if v is None or (isinstance(v, float) and np.isnan(v)) or v is pd.NaT:
-        return None
-    if isinstance(v, float) and float(v).is_integer():
-        return str(int(v))
-    return str(v)
+    from sitecheck.table.roles import value_label
+
+    return value_label(v)
 
 
 def _site_codes(frame: pd.DataFrame, site_col: str, labels: Sequence[str], *, fitted: bool) -> Tuple[np.ndarray, np.ndarray]:
@@ -58,7 +55,7 @@ def _numeric_matrix(frame: pd.DataFrame, names: Sequence[str], raw) -> np.ndarra
 def _choose_columns(raw, site: str, protect: Sequence[str], identifiers: Sequence[str],
                     excluded: Sequence[str], outcome: Optional[str]):
     """Numeric feature columns to harmonise, and the others left unchanged with why."""
-    from .roles import RoleSpec, assign_roles
+    from sitecheck.table.roles import RoleSpec, assign_roles
 
     spec = RoleSpec(site=site, covariates=tuple(protect) or None, identifiers=tuple(identifiers) or None,
                     excluded=tuple(excluded) or None, outcome=outcome)
@@ -80,18 +77,18 @@ def _choose_columns(raw, site: str, protect: Sequence[str], identifiers: Sequenc
 
 def blocking_findings(raw, site: str, features: Sequence[str], *, identifiers: Sequence[str] = (),
                       excluded: Sequence[str] = (), outcome: Optional[str] = None) -> list:
-    """Fingerprints of a blocking kind (:data:`sitecheck.harmonise.BLOCKING_KINDS`) on the
+    """Fingerprints of a blocking kind (:data:`sitecheck.harmonise.methods.BLOCKING_KINDS`) on the
     columns about to be harmonised: a unit, a missing-value code, a censored limit or a
     number format that differs by site. Empty when the table has fewer than two sites."""
-    from .fingerprints import find_fingerprints
-    from .harmonise import BLOCKING_KINDS
-    from .roles import RoleSpec, assign_roles
+    from sitecheck.analyses.fingerprints import find_fingerprints
+    from sitecheck.harmonise.methods import BLOCKING_KINDS
+    from sitecheck.table.roles import RoleSpec, assign_roles
 
+    if raw.frame[site].dropna().nunique() < 2:
+        return []  # a batch from one site: nothing to compare it with
     spec = RoleSpec(site=site, identifiers=tuple(identifiers) or None, excluded=tuple(excluded) or None,
                     outcome=outcome)
     table = assign_roles(raw, spec, min_site_rows=1)
-    if len(table.site_labels) < 2:
-        return []
     wanted = set(features)
     res = find_fingerprints(table, covariates=[])
     return [f for f in res.findings if f.kind in BLOCKING_KINDS and f.feature in wanted]
@@ -134,7 +131,7 @@ def _publish(path: str) -> str:
 
 
 def _write_table(frame: pd.DataFrame, path: str, fmt: str, sep: Optional[str]) -> str:
-    from .render.safety import atomic_write
+    from sitecheck.render.safety import atomic_write
 
     if fmt == "parquet":
         buf = io.BytesIO()
@@ -166,15 +163,15 @@ def run_harmonise(data: str, *, site: Optional[str], method: Optional[str], prot
     (:func:`blocking_findings`) unless ``despite_findings``; then it warns. Harmonised
     values are written on each feature's common recording grid, with as many decimals
     as the grid step needs, and kept inside the range recorded in the fitting rows
-    (:func:`sitecheck.harmonise.clip_to_range`); the values moved to that range are
+    (:func:`sitecheck.harmonise.methods.clip_to_range`); the values moved to that range are
     counted per feature (``clipped``) and reported in a warning. Right-skewed non-negative
     features are fitted on the log scale, and each recorded value is read as a uniform draw
     from its site's recording cell (seeded by ``seed``: the same table and seed give the same
-    output; see :func:`sitecheck.harmonise.dither`).
+    output; see :func:`sitecheck.harmonise.methods.dither`).
     """
-    from .harmonise import (HarmonisationFit, _prevalence_warning, apply_harmoniser, clip_to_range,
-                            fit_harmoniser, grid_decimals, protected_design)
-    from .intake import detect_format, read_table
+    from sitecheck.harmonise.methods import (HarmonisationFit, _prevalence_warning, apply_harmoniser,
+                                             clip_to_range, fit_harmoniser, grid_decimals, protected_design)
+    from sitecheck.reading.intake import detect_format, read_table
 
     if _same_file(data, out):
         raise InputError("--out must not be the input file; the input is never overwritten")
@@ -253,7 +250,7 @@ def run_harmonise(data: str, *, site: Optional[str], method: Optional[str], prot
         doc = fit.to_dict()
         doc.update({"site_column": site, "input_sha256": raw.sha256, "rows_fitted": int(has.sum()),
                     "left_unchanged": left})
-        from .render.safety import atomic_write
+        from sitecheck.render.safety import atomic_write
 
         written_params = _publish(atomic_write(
             os.path.dirname(os.path.abspath(params_path)), os.path.basename(params_path),

@@ -10,15 +10,22 @@ trains the real model,
   each held-out row is scored by its site's outcome prevalence in the
   training folds;
 - a baseline outcome model of the probe's family
-  (:func:`sitecheck.models.make_booster`) on the features and covariates: the
+  (:func:`sitecheck.analyses.models.make_booster`) on the features and covariates: the
   pooled cross-validated AUC against the leave-one-site-out (LOSO) AUC of each
   held-out site, and the transport gap (pooled AUC minus the row-weighted mean
   LOSO AUC) with a bootstrap interval;
 - shortcut candidates: features that rank high both as site leakers and as
   outcome drivers (held-out permutation importance of the outcome model);
 - per-site (and per-group) true and false positive rates of the baseline model
-  at one stated threshold, and their spreads across sites: the equalized-odds
-  gaps.
+  at one stated threshold (equalized odds), and whether they differ across
+  sites by more than sampling noise: the between-unit variance tau^2 of each
+  rate (DerSimonian-Laird, Q-profile interval, I^2), the variance and range of
+  the observed rates, each beside its null distribution with the unit labels
+  permuted within the outcome class and a permutation p-value, and the same
+  without the units that have fewer than ``min_rate_count`` positives
+  (negatives) (:mod:`sitecheck.analyses.heterogeneity`). The range (max - min) is kept
+  but is not the headline: across many small units it is large even when every
+  unit has the same true rates.
 
 Rows with a missing outcome are left out; how many is stated.
 
@@ -35,6 +42,10 @@ Hardt, M., Price, E. and Srebro, N. (2016). Equality of opportunity in
 supervised learning. Advances in Neural Information Processing Systems 29.
 Efron, B. and Tibshirani, R. J. (1993). An Introduction to the Bootstrap.
 Chapman & Hall (percentile intervals).
+DerSimonian, R. and Laird, N. (1986). Meta-analysis in clinical trials.
+Controlled Clinical Trials 7, 177-188.
+Viechtbauer, W. (2007). Confidence intervals for the amount of heterogeneity
+in meta-analysis. Statistics in Medicine 26, 37-52.
 """
 from __future__ import annotations
 
@@ -48,18 +59,20 @@ from sklearn.base import clone
 from sklearn.metrics import roc_curve
 from sklearn.model_selection import StratifiedKFold
 
-from .errors import InputError
-from .leakage import grouped_permutation_importance
-from .models import make_booster
-from .prepare import Prepared
-from .probe import cross_fit
+from sitecheck._runtime import SINGLE_THREAD_BELOW as _SINGLE_THREAD_BELOW, derived_seed, stream, thread_limit
+from sitecheck.errors import InputError
+from sitecheck.analyses.heterogeneity import MIN_COUNT, SCALE, RateHeterogeneity, rate_heterogeneity
+from sitecheck.analyses.leakage import LeakageResult, grouped_permutation_importance
+from sitecheck.analyses.models import make_booster
+from sitecheck.table.prepare import Prepared
+from sitecheck.analyses.probe import cross_fit
 
 #: Generator stream of this analysis (keeps its bootstrap independent of others).
 RNG_STREAM = 7
 
 #: Below this many rows the models run on one OpenMP thread: thread start-up
 #: then costs more than it saves, and much more on a loaded machine.
-SINGLE_THREAD_BELOW = 200_000
+SINGLE_THREAD_BELOW = _SINGLE_THREAD_BELOW
 
 #: Bootstrap resamples handled per vectorised block (bounds memory at block x n floats).
 BOOT_BLOCK = 32
@@ -84,11 +97,11 @@ def _ci(pair: Any) -> Optional[List[Optional[float]]]:
 
 
 # --------------------------------------------------------------------------
-# small statistics (shared ones come from sitecheck.stats)
+# small statistics (shared ones come from sitecheck.analyses.stats)
 # --------------------------------------------------------------------------
 
 def _wilson(k: int, n: int) -> Interval:
-    from .stats import wilson_ci
+    from sitecheck.analyses.stats import wilson_ci
 
     if n <= 0:
         return None
@@ -97,7 +110,7 @@ def _wilson(k: int, n: int) -> Interval:
 
 def _auc_ci(y: np.ndarray, score: np.ndarray, *, n_boot: int, random_state: int):
     """AUC and bootstrap interval (None, None when only one class is present)."""
-    from .stats import binary_auc_ci
+    from sitecheck.analyses.stats import binary_auc_ci
 
     y = np.asarray(y, dtype=float)
     if len(y) == 0 or y.min() == y.max():
@@ -190,30 +203,16 @@ def site_association(X: np.ndarray, site: np.ndarray, categorical: np.ndarray) -
     return score, pval
 
 
-def _leak_from_result(leakage: Any, names: Sequence[str]) -> Optional[Tuple[np.ndarray, np.ndarray]]:
-    """Per-feature leak scores and interval lower bounds from the leak-ranking
-    result (``objects["leakage"]``), if it has them."""
-    if leakage is None:
+def _leak_from_result(leakage: Optional[LeakageResult],
+                      names: Sequence[str]) -> Optional[Tuple[np.ndarray, np.ndarray]]:
+    """Per-feature leak scores and interval lower bounds from the leak ranking, if it ranked any."""
+    if leakage is None or not leakage.entries:
         return None
-    doc = leakage.to_dict() if hasattr(leakage, "to_dict") else leakage
-    if not isinstance(doc, dict):
-        return None
-    for key in ("features", "ranking", "scores"):
-        rows = doc.get(key)
-        if isinstance(rows, list) and rows and isinstance(rows[0], dict):
-            found: Dict[str, Tuple[float, float]] = {}
-            for r in rows:
-                name = r.get("feature", r.get("name"))
-                val = r.get("score", r.get("importance"))
-                ci = r.get("score_ci") or (None, None)
-                if name is not None and val is not None:
-                    lo = ci[0] if ci and ci[0] is not None else np.nan
-                    found[str(name)] = (float(val), float(lo))
-            if found:
-                miss = (np.nan, np.nan)
-                return (np.array([found.get(n, miss)[0] for n in names], dtype=float),
-                        np.array([found.get(n, miss)[1] for n in names], dtype=float))
-    return None
+    found = {e.feature: (float(e.score), float(e.score_ci[0]) if e.score_ci[0] is not None else np.nan)
+             for e in leakage.entries}
+    miss = (np.nan, np.nan)
+    return (np.array([found.get(n, miss)[0] for n in names], dtype=float),
+            np.array([found.get(n, miss)[1] for n in names], dtype=float))
 
 
 # --------------------------------------------------------------------------
@@ -294,7 +293,9 @@ class Rates:
 
 @dataclass(frozen=True)
 class EqualizedOdds:
-    """Per-unit rates at one threshold and their spreads (max - min across units)."""
+    """Per-unit rates at one threshold, their heterogeneity against its permutation
+    null (``tpr_heterogeneity``, ``fpr_heterogeneity``; None when not computed) and
+    their spreads (max - min across units, with a bootstrap interval)."""
 
     threshold: float
     threshold_rule: str
@@ -305,13 +306,34 @@ class EqualizedOdds:
     fpr_spread_ci: Interval
     n: int
     n_missing: int = 0
+    tpr_heterogeneity: Optional[RateHeterogeneity] = None
+    fpr_heterogeneity: Optional[RateHeterogeneity] = None
 
     def to_dict(self, key: str = "per_site") -> Dict[str, Any]:
-        return {"threshold": _f(self.threshold), "threshold_rule": self.threshold_rule,
-                key: {r.label: r.to_dict() for r in self.per_unit},
-                "tpr_spread": _f(self.tpr_spread), "tpr_spread_ci": _ci(self.tpr_spread_ci),
-                "fpr_spread": _f(self.fpr_spread), "fpr_spread_ci": _ci(self.fpr_spread_ci),
-                "n": self.n, "n_missing": self.n_missing}
+        out = {"threshold": _f(self.threshold), "threshold_rule": self.threshold_rule,
+               key: {r.label: r.to_dict() for r in self.per_unit},
+               "tpr_spread": _f(self.tpr_spread), "tpr_spread_ci": _ci(self.tpr_spread_ci),
+               "fpr_spread": _f(self.fpr_spread), "fpr_spread_ci": _ci(self.fpr_spread_ci),
+               "spread_method": ("max - min of the observed rates over units with positives (TPR) or "
+                                 "negatives (FPR); percentile interval from a site-stratified bootstrap "
+                                 "(biased upward when units are small: read the heterogeneity instead)"),
+               "n": self.n, "n_missing": self.n_missing}
+        if self.tpr_heterogeneity is not None and self.fpr_heterogeneity is not None:
+            h = self.tpr_heterogeneity
+            out["heterogeneity"] = {
+                "method": ("between-unit variance tau2 of each rate: DerSimonian-Laird estimate with a "
+                           "Q-profile 95% interval (Viechtbauer 2007) and I2 (Higgins & Thompson 2002); "
+                           "sd_rate is the standard deviation of the true rates tau2 implies; variance "
+                           "(divisor k - 1) and spread (max - min) of the observed rates; null: unit labels "
+                           "permuted within the outcome class (positives for TPR, negatives for FPR), "
+                           "p-values (1 + #null >= observed) / (1 + permutations), p_value from Q"),
+                "scale": SCALE,
+                "min_count": h.min_count,
+                "small_rule": (f"units with fewer than {h.min_count} positives (TPR) or negatives (FPR) are "
+                               "flagged small; without_small repeats the analysis without them"),
+                "permutations": h.n_permutations,
+                "tpr": h.to_dict(), "fpr": self.fpr_heterogeneity.to_dict()}
+        return out
 
 
 @dataclass(frozen=True)
@@ -394,7 +416,7 @@ class OutcomeRisk:
             "equalized_odds": self.equalized_odds.to_dict("per_site"),
             "equalized_odds_by_group": {g: e.to_dict("per_group")
                                         for g, e in self.equalized_odds_by_group.items()},
-            "model": "gradient boosting (sitecheck.models.make_booster) on features and covariates",
+            "model": "gradient boosting on features and covariates",
             "n_splits": self.n_splits,
             "n_boot": self.n_boot,
             "importance": {"method": "held-out permutation importance (AUC drop), mean over folds, "
@@ -461,12 +483,19 @@ def site_only_scores(y: np.ndarray, site: np.ndarray, folds) -> np.ndarray:
 
 def rates_at(y: np.ndarray, pred: np.ndarray, unit: np.ndarray, labels: Sequence[str], *,
              threshold: float, rule: str, spread_ci: Optional[Tuple[Interval, Interval]] = None,
-             n_missing: int = 0) -> EqualizedOdds:
+             n_missing: int = 0, min_count: int = MIN_COUNT, n_permutations: Optional[int] = None,
+             random_state: Any = None) -> EqualizedOdds:
     """TPR and FPR per unit (site or group level) of 0/1 predictions ``pred``.
 
     TPR = TP / (TP + FN) and FPR = FP / (FP + TN) per unit, Wilson intervals;
     the spreads are max - min over units with positives (TPR) or negatives
     (FPR): the equalized-odds gaps of Hardt, Price & Srebro (2016).
+
+    With ``n_permutations`` (0 or more) and ``random_state`` (an int or a
+    Generator), the heterogeneity of each rate across units is added
+    (:func:`sitecheck.analyses.heterogeneity.rate_heterogeneity` on the TP and FP
+    counts, ``min_count`` flagging small units); the TPR null is drawn first,
+    then the FPR null, from one generator.
     """
     per = []
     for i, lab in enumerate(labels):
@@ -484,10 +513,20 @@ def rates_at(y: np.ndarray, pred: np.ndarray, unit: np.ndarray, labels: Sequence
     ts = max(tprs) - min(tprs) if len(tprs) > 1 else None
     fs = max(fprs) - min(fprs) if len(fprs) > 1 else None
     tci, fci = spread_ci if spread_ci is not None else (None, None)
+    th = fh = None
+    if n_permutations is not None:
+        if random_state is None:
+            raise InputError("rates_at needs random_state (an integer seed or a Generator) for the permutation null")
+        rng = random_state if isinstance(random_state, np.random.Generator) else np.random.default_rng(random_state)
+        labs = [r.label for r in per]
+        th = rate_heterogeneity([r.tp for r in per], [r.n_pos for r in per], labs, min_count=min_count,
+                                n_permutations=n_permutations, random_state=rng)
+        fh = rate_heterogeneity([r.fp for r in per], [r.n_neg for r in per], labs, min_count=min_count,
+                                n_permutations=n_permutations, random_state=rng)
     return EqualizedOdds(threshold=float(threshold), threshold_rule=rule, per_unit=tuple(per),
                          tpr_spread=ts, tpr_spread_ci=tci if ts is not None else None,
                          fpr_spread=fs, fpr_spread_ci=fci if fs is not None else None,
-                         n=int(len(y)), n_missing=int(n_missing))
+                         n=int(len(y)), n_missing=int(n_missing), tpr_heterogeneity=th, fpr_heterogeneity=fh)
 
 
 def _spreads(y, pred, unit, n_units, W) -> np.ndarray:
@@ -518,22 +557,21 @@ def _pct(v: np.ndarray) -> Interval:
 
 def _level_label(value: Any, binary: Optional[Tuple[str, str]]) -> Optional[str]:
     """A group level as the user wrote it (binary columns were recoded to 0/1)."""
-    if value is None or (isinstance(value, float) and math.isnan(value)):
-        return None
+    from sitecheck.table.roles import value_label
+
     if binary is not None and isinstance(value, (int, float, np.integer, np.floating)) and value in (0, 1):
         return str(binary[int(value)])
-    if isinstance(value, (float, np.floating)) and float(value).is_integer():
-        return str(int(value))
-    return str(value)
+    return value_label(value)
 
 
 # --------------------------------------------------------------------------
 # the analysis
 # --------------------------------------------------------------------------
 
-def outcome_risk(prep: Prepared, *, leakage: Any = None, threshold: Optional[float] = None,
+def outcome_risk(prep: Prepared, *, leakage: Optional[LeakageResult] = None, threshold: Optional[float] = None,
                  n_boot: int = 500, n_repeats: int = 3, importance_rows: int = 4000,
                  top_k: Optional[int] = None, min_importance: float = 0.01, max_iter: int = 200,
+                 min_rate_count: int = MIN_COUNT, n_permutations: int = 999,
                  random_state: Optional[int] = None) -> OutcomeRisk:
     """Measure how far a model could use the site as a shortcut to the outcome.
 
@@ -541,7 +579,7 @@ def outcome_risk(prep: Prepared, *, leakage: Any = None, threshold: Optional[flo
     ----------
     prep : Prepared
         Must have an outcome.
-    leakage : object, optional
+    leakage : LeakageResult, optional
         The leak-ranking result (``objects["leakage"]``); its per-feature scores
         rank the site leakers. Without it, :func:`site_association` is used.
     threshold : float in (0, 1), optional
@@ -563,7 +601,14 @@ def outcome_risk(prep: Prepared, *, leakage: Any = None, threshold: Optional[flo
         Smallest mean drop in held-out outcome AUC for an outcome driver.
     max_iter : int, default 200
         Boosting iterations of the fallback leave-one-site-out fits (the
-        cross-fits use the probe's settings, :func:`sitecheck.probe.cross_fit`).
+        cross-fits use the probe's settings, :func:`sitecheck.analyses.probe.cross_fit`).
+    min_rate_count : int, default 10
+        Sites (group levels) with fewer positives than this are flagged small
+        for the TPR, with fewer negatives for the FPR; the heterogeneity is
+        also given without them.
+    n_permutations : int, default 999
+        Permutations of the site (group) labels within each outcome class for
+        the null of the TPR and FPR heterogeneity.
     random_state : int, optional
         Defaults to ``prep.seed``.
 
@@ -576,39 +621,45 @@ def outcome_risk(prep: Prepared, *, leakage: Any = None, threshold: Optional[flo
     The intervals of the AUCs are stratified-bootstrap percentile intervals
     with the predictions held fixed (evaluation uncertainty, not refitting).
     The transport gap and the rate spreads share one bootstrap that resamples
-    rows within each site. Tables with fewer than ``SINGLE_THREAD_BELOW`` rows
+    rows within each site. Whether the TPR and FPR differ across sites beyond
+    sampling noise is read from their heterogeneity (tau^2, Q-profile interval,
+    I^2) and its permutation null, computed on the fixed out-of-fold
+    predictions (no refitting). Tables with fewer than ``SINGLE_THREAD_BELOW`` rows
     are modelled on one thread (results do not depend on it).
 
     References
     ----------
     Hardt, M., Price, E. and Srebro, N. (2016). Equality of opportunity in
     supervised learning. NeurIPS 29.
+    DerSimonian, R. and Laird, N. (1986). Controlled Clinical Trials 7, 177-188.
+    Viechtbauer, W. (2007). Statistics in Medicine 26, 37-52.
     Youden, W. J. (1950). Index for rating diagnostic tests. Cancer 3, 32-35.
     Wilson, E. B. (1927). JASA 22, 209-212.
     Breiman, L. (2001). Random forests. Machine Learning 45, 5-32.
     """
     if prep.outcome is not None and int(np.sum(~np.isnan(prep.outcome))) < SINGLE_THREAD_BELOW:
-        from threadpoolctl import threadpool_limits
-
-        with threadpool_limits(limits=1, user_api="openmp"):
+        with thread_limit(1, user_api="openmp"):
             return _outcome_risk(prep, leakage=leakage, threshold=threshold, n_boot=n_boot, n_repeats=n_repeats,
                                  importance_rows=importance_rows, top_k=top_k, min_importance=min_importance,
-                                 max_iter=max_iter, random_state=random_state)
+                                 max_iter=max_iter, min_rate_count=min_rate_count,
+                                 n_permutations=n_permutations, random_state=random_state)
     return _outcome_risk(prep, leakage=leakage, threshold=threshold, n_boot=n_boot, n_repeats=n_repeats,
                          importance_rows=importance_rows, top_k=top_k, min_importance=min_importance,
-                         max_iter=max_iter, random_state=random_state)
+                         max_iter=max_iter, min_rate_count=min_rate_count, n_permutations=n_permutations,
+                         random_state=random_state)
 
 
 def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_rows, top_k, min_importance,
-                  max_iter, random_state) -> OutcomeRisk:
+                  max_iter, min_rate_count, n_permutations, random_state) -> OutcomeRisk:
     name = prep.table.outcome or "outcome"
     if prep.outcome is None:
-        raise InputError("the outcome analysis needs an outcome column (--outcome)")
+        raise InputError("the outcome analysis needs an outcome column; none was given")
     if threshold is not None:
         if not isinstance(threshold, (int, float)) or not (0.0 < float(threshold) < 1.0):
             raise InputError(f"threshold must be a number strictly between 0 and 1, got {threshold!r}")
-    for opt, val, lo in (("n_boot", n_boot, 50), ("n_repeats", n_repeats, 1), ("importance_rows", importance_rows, 50)):
-        if not isinstance(val, (int, np.integer)) or val < lo:
+    for opt, val, lo in (("n_boot", n_boot, 50), ("n_repeats", n_repeats, 1), ("importance_rows", importance_rows, 50),
+                         ("min_rate_count", min_rate_count, 1), ("n_permutations", n_permutations, 0)):
+        if not isinstance(val, (int, np.integer)) or isinstance(val, bool) or val < lo:
             raise InputError(f"{opt} must be an integer of at least {lo}, got {val!r}")
     seed = int(prep.seed if random_state is None else random_state)
 
@@ -649,7 +700,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
     pooled = cross_fit(X, yi, cat, folds, model="boosting", random_state=seed)
     oof = pooled.proba[:, 1]
     fold_models = pooled.models
-    pooled_auc, pooled_ci = _auc_ci(y, oof, n_boot=n_boot, random_state=seed + 1)
+    pooled_auc, pooled_ci = _auc_ci(y, oof, n_boot=n_boot, random_state=derived_seed(seed, "outcome.pooled"))
 
     # leave one site out
     loso_pred = np.full(n, np.nan)
@@ -657,9 +708,9 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
     site_folds = [(np.flatnonzero(site != i), np.flatnonzero(site == i)) for i in range(len(labels))]
     trainable = [len(te) > 0 and len(tr) > 0 and 0 < y[tr].sum() < len(tr) for tr, te in site_folds]
     if all(trainable):
-        loso_pred = cross_fit(X, yi, cat, site_folds, model="boosting", random_state=seed + 1).proba[:, 1]
+        loso_pred = cross_fit(X, yi, cat, site_folds, model="boosting", random_state=derived_seed(seed, "outcome.pooled")).proba[:, 1]
     else:  # a held-out site whose complement has one class only: fit the others one by one
-        model = make_booster(cat, random_state=seed + 1, max_iter=max_iter)
+        model = make_booster(cat, random_state=derived_seed(seed, "outcome.pooled"), max_iter=max_iter)
         for i, (tr, te) in enumerate(site_folds):
             if trainable[i]:
                 loso_pred[te] = clone(model).fit(X[tr], yi[tr]).predict_proba(X[te])[:, 1]
@@ -670,7 +721,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
                                         n_pos=int(y[te].sum()), n_train=int(len(tr))))
             continue
         p = loso_pred[te]
-        a, aci = _auc_ci(y[te], p, n_boot=n_boot, random_state=seed + 2 + i)
+        a, aci = _auc_ci(y[te], p, n_boot=n_boot, random_state=derived_seed(seed, "outcome.site_ci", i))
         loso_rows.append(HeldOutAUC(site=str(lab), auc=a, ci=aci, n=int(len(te)),
                                     n_pos=int(y[te].sum()), n_train=int(len(tr))))
     ok_sites = [i for i, h in enumerate(loso_rows) if h.auc is not None]
@@ -682,7 +733,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
     if threshold is None:
         thr, rule = youden_threshold(y, oof), "pooled Youden point of the out-of-fold predictions"
     else:
-        thr, rule = float(threshold), "given (--threshold)"
+        thr, rule = float(threshold), "given (threshold option)"
     pred = (oof >= thr).astype(float)
 
     # per-group units (levels coded 0..L-1, missing -1)
@@ -725,19 +776,23 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
         with np.errstate(invalid="ignore", divide="ignore"):
             gaps[blk] = pa - np.nansum(la * ww, axis=1) / ww.sum(axis=1)
     gap_ci = _pct(gaps) if gap is not None else None
+    # heterogeneity nulls: their own generators, so the bootstrap above is unchanged
     eo = rates_at(y, pred, site, labels, threshold=thr, rule=rule,
-                  spread_ci=(_pct(sp_site[:, 0]), _pct(sp_site[:, 1])))
+                  spread_ci=(_pct(sp_site[:, 0]), _pct(sp_site[:, 1])), min_count=int(min_rate_count),
+                  n_permutations=int(n_permutations), random_state=stream(seed, "outcome", 2))
     eo_groups: Dict[str, EqualizedOdds] = {}
-    for g, (unit, levels) in group_units.items():
+    for gi, (g, (unit, levels)) in enumerate(group_units.items()):
         sel = unit >= 0
         eo_groups[g] = rates_at(y[sel], pred[sel], unit[sel], levels, threshold=thr, rule=rule,
                                 spread_ci=(_pct(sp_group[g][:, 0]), _pct(sp_group[g][:, 1])),
-                                n_missing=int((~sel).sum()))
+                                n_missing=int((~sel).sum()), min_count=int(min_rate_count),
+                                n_permutations=int(n_permutations),
+                                random_state=stream(seed, "outcome", 3, gi))
 
     # outcome drivers: held-out permutation importance per fold
     imp = np.zeros((len(folds), X.shape[1]))
     n_imp = 0
-    sub_rng = np.random.default_rng([seed, RNG_STREAM, 1])
+    sub_rng = stream(seed, "outcome", 1)
     singletons = [[j] for j in range(X.shape[1])]
     for f, ((tr, te), m) in enumerate(zip(folds, fold_models)):
         rows = te
@@ -747,7 +802,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
             rows = te
         # scikit-learn's permutation scheme with the probe's tree-wise re-prediction (equal results)
         _, drops = grouped_permutation_importance(m, X[rows], y[rows].astype(np.int64), singletons,
-                                                  n_repeats=n_repeats, random_state=seed + f)
+                                                  n_repeats=n_repeats, random_state=derived_seed(seed, "leakage.fold_repeats", f))
         imp[f] = drops.mean(axis=1)
         n_imp += int(len(rows))
     mean_imp = imp.mean(axis=0)
@@ -757,7 +812,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
         half = np.full(X.shape[1], np.nan)
 
     # site leakers
-    from .stats import bh_adjust
+    from sitecheck.analyses.stats import bh_adjust
 
     got = _leak_from_result(leakage, names[:n_feat])
     if got is not None and not np.all(np.isnan(got[0])):

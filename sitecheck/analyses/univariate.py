@@ -31,16 +31,7 @@ from scipy import stats as sps
 SMD_FLAG = 0.1
 
 
-def bh_adjust(pvalues: Sequence[float]) -> np.ndarray:
-    """:func:`sitecheck.stats.bh_adjust` over the non-missing p-values (NaN kept as NaN)."""
-    from .stats import bh_adjust as _bh
-
-    p = np.asarray(pvalues, dtype=float)
-    out = np.full(p.shape, np.nan)
-    ok = ~np.isnan(p)
-    if ok.any():
-        out[ok] = _bh(p[ok])
-    return out
+from sitecheck.analyses.stats import bh_adjust  # noqa: E402  (one Benjamini-Hochberg, NaN-aware)
 
 
 def smd(a: np.ndarray, b: np.ndarray, *, binary: bool = False) -> float:

@@ -65,3 +65,38 @@ class ScanResult:
             doc[key] = value
         doc["run"] = self.run
         return to_jsonable(doc)
+
+    def summary(self, *, max_warnings: int = 5) -> str:
+        """A few lines for a terminal: rows and sites, the site probe's AUC with its interval,
+        p-value and verdict, and the first warnings.
+
+        Parameters
+        ----------
+        max_warnings : int, default 5
+            How many warnings to list; the rest are counted.
+
+        Returns
+        -------
+        str
+            Lines separated by newlines, without a trailing newline. This text is for the
+            person running the scan (counts are not suppressed); shared outputs are the
+            report files.
+        """
+        from sitecheck import __version__
+
+        if isinstance(max_warnings, bool) or not isinstance(max_warnings, int) or max_warnings < 0:
+            raise ValueError(f"max_warnings must be a non-negative integer, got {max_warnings!r}")
+        doc = self.to_dict()
+        inp = doc.get("input", {})
+        lines = [f"sitecheck {__version__}: {inp.get('rows_used')} rows, {len(inp.get('sites') or {})} sites"]
+        probe = doc.get("probe")
+        if isinstance(probe, dict) and probe.get("auc") is not None:
+            lo, hi = probe["auc_ci"]
+            lines.append(f"site probe: AUC {probe['auc']:.3f} (95% CI {lo:.3f} to {hi:.3f}), "
+                         f"p = {probe['p_value']:.3g}, n = {probe.get('n_used', inp.get('rows_used'))}, "
+                         f"verdict: {probe['verdict']}")
+        warnings = doc.get("warnings", [])
+        lines += [f"warning: {w}" for w in warnings[:max_warnings]]
+        if len(warnings) > max_warnings:
+            lines.append(f"({len(warnings) - max_warnings} more warnings in the report)")
+        return "\n".join(lines)

@@ -27,7 +27,7 @@ survive harmonisation.
 
 Harmonised values are put back on the feature's common recording grid
 (:func:`recording_grid`: the coarsest step any site records in, found with
-:func:`sitecheck.fingerprints.grid_step`) and kept inside the range of values
+:func:`sitecheck.analyses.fingerprints.grid_step`) and kept inside the range of values
 recorded in the fitting rows (:func:`apply_harmoniser`). A site shifted by a
 fraction of the grid step would otherwise sit on its own offset grid, and that
 offset alone identifies the site to any classifier.
@@ -60,7 +60,7 @@ from typing import Any, Dict, List, Optional, Sequence, Tuple
 import numpy as np
 import pandas as pd
 
-from .errors import InputError, ParameterError
+from sitecheck.errors import InputError, ParameterError
 
 METHODS = ("centre", "scale", "quantile", "combat")
 
@@ -465,9 +465,9 @@ def _map_quantiles(v: np.ndarray, site_q: np.ndarray, pooled_q: np.ndarray, prob
 def recording_grid(x: np.ndarray, site: np.ndarray, n_sites: int, *, min_count: int = 10) -> Optional[float]:
     """The feature's common recording grid: the coarsest step any site records in.
 
-    Each site's step is :func:`sitecheck.fingerprints.grid_step` of its
+    Each site's step is :func:`sitecheck.analyses.fingerprints.grid_step` of its
     observed values (the coarsest of
-    :data:`sitecheck.fingerprints.GRID_STEPS` holding 98% of them), for sites
+    :data:`sitecheck.analyses.fingerprints.GRID_STEPS` holding 98% of them), for sites
     with at least ``min_count`` observed values. The common grid is the
     coarsest of these steps, or, when the steps do not divide it (0.2 and
     0.25), the finest candidate step that every site's step divides.
@@ -492,8 +492,8 @@ def recording_grid(x: np.ndarray, site: np.ndarray, n_sites: int, *, min_count: 
 
 def common_step(steps: Sequence[float]) -> Optional[float]:
     """The common grid of per-site steps (NaN: none): the coarsest, or the finest
-    candidate step of :data:`sitecheck.fingerprints.GRID_STEPS` that every step divides."""
-    from .fingerprints import GRID_STEPS
+    candidate step of :data:`sitecheck.analyses.fingerprints.GRID_STEPS` that every step divides."""
+    from sitecheck.analyses.fingerprints import GRID_STEPS
 
     steps = [float(g) for g in steps if g is not None and np.isfinite(g)]
     if not steps:
@@ -526,9 +526,9 @@ def recording_grids(X: np.ndarray, site: np.ndarray, n_sites: int, *,
 
 
 def site_steps(X: np.ndarray, site: np.ndarray, n_sites: int, *, min_count: int = 10) -> np.ndarray:
-    """Each site's own recording step per column (:func:`sitecheck.fingerprints.grid_step`),
+    """Each site's own recording step per column (:func:`sitecheck.analyses.fingerprints.grid_step`),
     shape (n_sites, p); NaN where a site has fewer than ``min_count`` values or none."""
-    from .fingerprints import grid_step
+    from sitecheck.analyses.fingerprints import grid_step
 
     out = np.full((n_sites, X.shape[1]), np.nan)
     for j in range(X.shape[1]):
@@ -542,17 +542,60 @@ def site_steps(X: np.ndarray, site: np.ndarray, n_sites: int, *, min_count: int 
     return out
 
 
+def _mix64(z: np.ndarray) -> np.ndarray:
+    """SplitMix64's finaliser (Steele, Lea & Flood 2014), element-wise on uint64 (wrapping)."""
+    z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
+    z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
+    return z ^ (z >> np.uint64(31))
+
+
+def within_cell_uniforms(X: np.ndarray, site: np.ndarray, random_state) -> np.ndarray:
+    """One uniform number in [0, 1) per cell, a function of the seed, the row's values
+    (every column, and its site), the column, and which copy of an identical row it is.
+
+    A row gets the same numbers in any order or subset of the table (as long as it has
+    no identical copy before it): applying saved parameters to some rows again gives the
+    values they got when the whole table was harmonised. Identical rows are spread: the
+    k-th copy gets the k-th number. Rows are hashed with SplitMix64's finaliser over the
+    bits of their values; different rows give practically independent numbers.
+    """
+    key = np.random.SeedSequence(random_state).generate_state(1, np.uint64)[0]
+    X = np.asarray(X, dtype=float)
+    n, p = X.shape
+    bits = np.where(np.isnan(X), np.nan, X + 0.0).view(np.uint64)   # one NaN pattern, -0.0 as 0.0
+    with np.errstate(over="ignore"):
+        h = _mix64(np.full(n, key, dtype=np.uint64) ^ np.asarray(site, dtype=np.uint64))
+        for j in range(p):
+            h = _mix64(h ^ bits[:, j])
+        # Identical rows (same site, same values) are told apart by their occurrence: the k-th copy of a row
+        # gets the k-th number, so ties are spread while a row kept alone still gets its first number.
+        order = np.argsort(h, kind="stable")
+        hs = h[order]
+        start = np.r_[0, np.flatnonzero(hs[1:] != hs[:-1]) + 1]
+        occ_sorted = np.arange(n) - np.repeat(start, np.diff(np.r_[start, n]))
+        occ = np.empty(n, dtype=np.uint64)
+        occ[order] = occ_sorted.astype(np.uint64)
+        h = _mix64(h ^ _mix64(occ * np.uint64(0xD1B54A32D192ED03) + np.uint64(1)))
+        cols = (np.arange(1, p + 1, dtype=np.uint64) * np.uint64(0x9E3779B97F4A7C15))[None, :]
+        u = _mix64(h[:, None] ^ cols)
+    return (u >> np.uint64(11)).astype(np.float64) * (1.0 / 9007199254740992.0)
+
+
 def dither(X: np.ndarray, site: np.ndarray, steps: np.ndarray, random_state) -> np.ndarray:
     """Read every recorded value as a uniform draw from its recording cell.
 
-    Adds ``U(-1/2, 1/2) x step`` to each cell, with ``step`` the recording step
-    of the row's site and column (``steps``, shape (n_sites, p); NaN: no
-    noise). The draws are one ``random((n_rows, p))`` call of
-    ``numpy.random.default_rng(random_state)``, so row ``i`` gets the ``i``-th
-    row of the stream: the same rows in the same order get the same values.
+    Adds ``(u - 1/2) x step`` to each cell, with ``step`` the recording step of
+    the row's site and column (``steps``, shape (n_sites, p); NaN: no noise)
+    and ``u`` from :func:`within_cell_uniforms` (a function of the seed and the
+    row's values: the same rows give the same values in any order or subset).
+
+    References
+    ----------
+    Machado, J. A. F. and Santos Silva, J. M. C. (2005). Quantiles for counts. JASA
+    100(472), 1226-1237 (adding uniform noise to discrete values, "jittering", so that
+    quantile methods for continuous data apply).
     """
-    rng = np.random.default_rng(random_state)
-    U = rng.random(X.shape) - 0.5
+    U = within_cell_uniforms(X, site, random_state) - 0.5
     step = np.nan_to_num(np.asarray(steps, dtype=float)[site], nan=0.0)
     return X + U * step
 
@@ -1100,7 +1143,7 @@ def harmonise(X: np.ndarray, site: np.ndarray, *, method: str, site_labels: Sequ
 def _streams(random_state) -> Tuple[Any, Any]:
     """Two independent seeds (fit, apply) from an int, a sequence of ints or a Generator."""
     if isinstance(random_state, np.random.Generator):
-        a, b = random_state.integers(0, 2**63 - 1, size=2)
+        a, b = random_state.integers(0, 2**62, size=2)
         return int(a), int(b)
     base = list(np.atleast_1d(random_state).astype(np.int64))
     return base + [1], base + [2]
@@ -1400,7 +1443,7 @@ def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, n
     """
     from scipy.stats import chi2_contingency
 
-    from .stats import bh_adjust
+    from sitecheck.analyses.stats import bh_adjust
 
     k = len(site_labels)
     p = X_raw.shape[1]
@@ -1627,13 +1670,13 @@ def outcome_auc_cv(X: np.ndarray, y: np.ndarray, site: np.ndarray, cat: np.ndarr
     applied to its held-out rows, whose outcome columns in the protected
     design are set to the training mean (a deployed model does not know the
     outcome), so the AUC is not inflated by protecting the outcome. The model
-    is the probe's (:mod:`sitecheck.probe`), fitted per fold with the same
+    is the probe's (:mod:`sitecheck.analyses.probe`), fitted per fold with the same
     seeds. Returns ``(auc, (lo, hi), n)`` with a stratified-bootstrap interval.
     """
     from threadpoolctl import threadpool_limits
 
-    from . import stats
-    from .probe import _estimator, _threads
+    from sitecheck.analyses import stats
+    from sitecheck.analyses.probe import _estimator, _threads
 
     y = np.asarray(y).astype(np.int64)
     score = np.full(len(y), np.nan)
@@ -1669,12 +1712,12 @@ def site_reprobe_cv(X: np.ndarray, site: np.ndarray, cat: np.ndarray, folds, *, 
 
     In each fold the harmonisation (``method``, grid and range included) is
     fitted on the training rows only and applied to the training and the
-    held-out rows; the probe's model (the factory of :mod:`sitecheck.models`
-    through :mod:`sitecheck.probe`, same seeds as the scan's probe) is fitted
+    held-out rows; the probe's model (the factory of :mod:`sitecheck.analyses.models`
+    through :mod:`sitecheck.analyses.probe`, same seeds as the scan's probe) is fitted
     on the harmonised training rows and scores the held-out rows. No scored
     row shaped the harmonisation that was applied to it. The out-of-fold
     probabilities are scored as the scan's probe is
-    (:func:`sitecheck.probe.score_crossfit`: macro one-vs-rest AUC, bootstrap
+    (:func:`sitecheck.analyses.probe.score_crossfit`: macro one-vs-rest AUC, bootstrap
     interval, fold-permutation p-value).
 
     Returns
@@ -1683,7 +1726,7 @@ def site_reprobe_cv(X: np.ndarray, site: np.ndarray, cat: np.ndarray, folds, *, 
     """
     from threadpoolctl import threadpool_limits
 
-    from .probe import CrossFit, _estimator, _threads, score_crossfit
+    from sitecheck.analyses.probe import CrossFit, _estimator, _threads, score_crossfit
 
     site = np.asarray(site).astype(np.int64)
     k = len(site_labels)
@@ -1768,8 +1811,8 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
     ----------
     Johnson, W. E., Li, C. and Rabinovic, A. (2007). Biostatistics 8(1), 118-127.
     """
-    from .prepare import stratified_subsample
-    from .probe import make_folds
+    from sitecheck.table.prepare import stratified_subsample
+    from sitecheck.analyses.probe import make_folds
 
     if not isinstance(n_splits, (int, np.integer)) or n_splits < 2:
         raise ParameterError(f"n_splits must be an integer of at least 2, got {n_splits!r}")

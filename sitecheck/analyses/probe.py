@@ -5,12 +5,12 @@ classifier predicts the site from the features; its out-of-fold macro
 one-vs-rest ROC AUC measures how much site signal the pooled data carries
 (0.5: none; 1: the sites are perfectly separable).
 
-The default probe is gradient boosting (:func:`sitecheck.models.make_booster`,
+The default probe is gradient boosting (:func:`sitecheck.analyses.models.make_booster`,
 native missing values and categoricals); a regularised logistic regression
-(:func:`sitecheck.models.make_linear`) gives a second opinion. Intervals come
+(:func:`sitecheck.analyses.models.make_linear`) gives a second opinion. Intervals come
 from a stratified bootstrap of the out-of-fold predictions; the p-value from a
 label-permutation test within the held-out folds
-(:func:`sitecheck.stats.fold_permutation_pvalue`), which needs no refitting.
+(:func:`sitecheck.analyses.stats.fold_permutation_pvalue`), which needs no refitting.
 
 References
 ----------
@@ -25,11 +25,11 @@ from typing import Any, Dict, List, Optional, Sequence, Tuple, Union
 import numpy as np
 from sklearn.base import clone
 from sklearn.model_selection import StratifiedKFold
-from threadpoolctl import threadpool_limits
 
-from . import stats
-from .errors import InputError, ParameterError
-from .models import make_booster, make_linear
+from sitecheck.analyses import stats
+from sitecheck._runtime import derived_seed, native_threads, stream, thread_limit
+from sitecheck.errors import InputError, ParameterError
+from sitecheck.analyses.models import make_booster, make_linear
 
 MODELS = ("boosting", "linear")
 
@@ -157,18 +157,14 @@ def cross_fit(X, y, categorical, folds, *, model: str = "boosting", random_state
         folds = make_folds(y, int(folds), random_state=seed)
     folds = tuple((np.asarray(tr), np.asarray(te)) for tr, te in folds)
     k = int(y.max()) + 1
-    with threadpool_limits(limits=_threads(len(y))):
+    with thread_limit(_threads(len(y))):
         return _cross_fit(X, y, cat, folds, model, seed, k)
 
 
-#: Below this many rows boosting runs single-threaded: OpenMP start-up and spin-waiting cost
+#: Below this many rows (sitecheck._runtime.SINGLE_THREAD_BELOW) boosting runs single-threaded: OpenMP start-up and spin-waiting cost
 #: far more than they save on small fits, and badly so when other processes share the cores
 #: (measured: 1,000 rows x 20 features, 4 classes: 1.5 s with 2 threads, 0.16 s with 1).
-_SINGLE_THREAD_BELOW = 200_000
-
-
-def _threads(n: int) -> Optional[int]:
-    return 1 if n < _SINGLE_THREAD_BELOW else None
+_threads = native_threads
 
 
 def _cross_fit(X, y, cat, folds, model, seed, k) -> CrossFit:
@@ -176,7 +172,7 @@ def _cross_fit(X, y, cat, folds, model, seed, k) -> CrossFit:
     fitted: List[Any] = []
     n_iter: List[int] = []
     for f, (tr, te) in enumerate(folds):
-        est = _estimator(model, cat, k, len(tr), random_state=seed + 1000 * f)
+        est = _estimator(model, cat, k, len(tr), random_state=derived_seed(seed, "probe.fold_model", f))
         if model == "linear" and X.shape[1] == 0:
             raise InputError("no feature columns to probe")
         est.fit(X[tr], y[tr])
@@ -217,7 +213,7 @@ class ProbeScore:
     balanced_accuracy : float
     ci_widening : float
         Factor (>= 1) by which the bootstrap interval was stretched to match the
-        fold-to-fold spread (:func:`sitecheck.stats.widened_ci`).
+        fold-to-fold spread (:func:`sitecheck.analyses.stats.widened_ci`).
     fold_auc : tuple of float
         Macro AUC of each test fold alone.
     """
@@ -304,7 +300,7 @@ def probe_matrix(X, y, categorical, folds, *, random_state, n_boot: int = 500,
     """
     fit = cross_fit(X, y, categorical, folds, model=model, random_state=random_state)
     return score_crossfit(y, fit, n_boot=n_boot, n_permutations=n_permutations,
-                          random_state=np.random.default_rng([int(random_state), 77]))
+                          random_state=stream(int(random_state), "probe.small_sites"))
 
 
 def verdict(auc_ci: Sequence[float], p_value: Optional[float] = None) -> str:
@@ -557,7 +553,7 @@ def site_probe(prep, *, n_boot: int = 500, n_permutations: int = 999, linear: bo
                          "covariate, group, identifier or excluded)")
     X, y, cat = prep.X, np.asarray(prep.site, dtype=np.int64), prep.features.categorical
     labels = tuple(prep.site_labels)
-    rng = lambda stream: np.random.default_rng([seed, 3000 + stream])  # noqa: E731
+    rng = lambda part: stream(seed, "probe", offset=part)  # noqa: E731
     fit = cross_fit(X, y, cat, prep.folds, model="boosting", random_state=seed)
     score = _score_fit(y, fit, rng(0), n_boot, n_permutations)
     counts = np.bincount(y, minlength=len(labels))
@@ -573,8 +569,10 @@ def site_probe(prep, *, n_boot: int = 500, n_permutations: int = 999, linear: bo
     cm = None
     if case_mix and prep.covariates is not None and prep.covariates.n_features:
         C, ccat = prep.covariates.X, prep.covariates.categorical
-        fc = cross_fit(C, y, ccat, prep.folds, model="boosting", random_state=seed + 1)
-        fb = cross_fit(np.hstack([X, C]), y, np.r_[cat, ccat], prep.folds, model="boosting", random_state=seed + 2)
+        fc = cross_fit(C, y, ccat, prep.folds, model="boosting",
+                       random_state=derived_seed(seed, "probe.covariates_only"))
+        fb = cross_fit(np.hstack([X, C]), y, np.r_[cat, ccat], prep.folds, model="boosting",
+                       random_state=derived_seed(seed, "probe.features_and_covariates"))
         # "with features" nests the case-mix model: the average of its out-of-fold probabilities
         # and those of the features+covariates model. Uninformative features then cannot drag the
         # AUC below the covariates-only model through dilution (measured: -0.006 to -0.013 AUC for
@@ -609,7 +607,7 @@ def site_probe(prep, *, n_boot: int = 500, n_permutations: int = 999, linear: bo
                 wo[key] = {"auc": None, "auc_ci": [None, None], "p_value": None, "n": int(ok.sum()),
                            "skipped": f"fewer than two sites with at least {min_rows} rows in this outcome class"}
                 continue
-            s = _sub_probe(X[rows[ok]], yy[ok], cat, prep.n_splits, seed + 10 + int(v), rng(10 + int(v)),
+            s = _sub_probe(X[rows[ok]], yy[ok], cat, prep.n_splits, derived_seed(seed, "probe.stratum", int(v)), rng(10 + int(v)),
                            n_boot, n_permutations)
             wo[key] = {"auc": s.auc, "auc_ci": list(s.auc_ci), "p_value": s.p_value, "n": s.n,
                        "verdict": verdict(s.auc_ci, s.p_value), "sites": kept, "dropped_sites": dropped,
@@ -623,7 +621,8 @@ def site_probe(prep, *, n_boot: int = 500, n_permutations: int = 999, linear: bo
             if len(kept) < 2:
                 skipped[gname] = f"fewer than two levels with at least {min_rows} rows"
                 continue
-            s = _sub_probe(X[ok], yy[ok], cat, prep.n_splits, seed + 100 + gi, rng(100 + gi), n_boot, n_permutations)
+            s = _sub_probe(X[ok], yy[ok], cat, prep.n_splits, derived_seed(seed, "probe.group", gi),
+                           rng(100 + gi), n_boot, n_permutations)
             gprobes[gname] = GroupProbe(column=gname, score=s, verdict=verdict(s.auc_ci, s.p_value), levels=kept,
                                         dropped_levels=dropped, n_missing=n_miss)
     return ProbeResult(

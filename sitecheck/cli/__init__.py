@@ -9,10 +9,16 @@ from typing import Optional
 
 import click
 
-from . import __version__
-from .errors import InputError
+from sitecheck import __version__
+from sitecheck.errors import InputError
+from sitecheck.report.gates import FINGERPRINT_KINDS, check_gates
 
 EXIT_OK, EXIT_GATE, EXIT_INPUT, EXIT_INTERNAL = 0, 1, 2, 3
+
+#: The flag of each library setting that an InputError may name (``InputError.option``).
+OPTION_FLAGS = {"encoding": "--encoding", "sep": "--sep", "min_site_rows": "--min-site-rows", "site": "--site",
+                "min_cell": "--min-cell", "folds": "--folds", "seed": "--seed", "max_rows": "--max-rows",
+                "map_rows": "--map-rows", "outcome": "--outcome"}
 
 
 class _Group(click.Group):
@@ -22,14 +28,19 @@ class _Group(click.Group):
             return super().main(*args, **{**kwargs, "standalone_mode": False})
         except click.exceptions.Exit as exc:
             sys.exit(exc.exit_code)
-        except click.ClickException as exc:
-            exc.show()
+        except click.ClickException as exc:  # usage errors too: one line, with where to find help
+            msg = exc.format_message().replace("\n", " ")
+            ctx = getattr(exc, "ctx", None)
+            hint = f" (see '{ctx.command_path} --help')" if ctx is not None else ""
+            click.echo(f"sitecheck: error: {msg}{hint}", err=True)
             sys.exit(EXIT_INPUT)
         except click.exceptions.Abort:
             click.echo("sitecheck: aborted", err=True)
             sys.exit(EXIT_INPUT)
         except InputError as exc:
-            click.echo(f"sitecheck: error: {exc}", err=True)
+            flag = OPTION_FLAGS.get(getattr(exc, "option", None) or "")
+            click.echo(f"sitecheck: error: {exc}" + (f" (option {flag})" if flag and flag not in str(exc) else ""),
+                       err=True)
             sys.exit(EXIT_INPUT)
         except KeyboardInterrupt:
             click.echo("sitecheck: interrupted", err=True)
@@ -75,7 +86,7 @@ def _common_scan_options(f):
         click.option("--exclude", "excluded", multiple=True, metavar="COL", help="Column to leave out (repeatable)."),
         click.option("--config", type=click.Path(dir_okay=False), metavar="FILE", help="TOML file with roles, [panels] and [options]; flags override it."),
         click.option("--sep", metavar="CHAR", help="Field separator (default from the extension)."),
-        click.option("--encoding", default="utf-8", show_default=True, help="Text encoding of CSV/TSV input."),
+        click.option("--encoding", default=None, help="Text encoding of CSV/TSV input (default utf-8)."),
         click.option("--out", "out_dir", default="sitecheck-report", show_default=True, type=click.Path(file_okay=False), help="Output directory."),
         click.option("--seed", type=int, default=None, help="Random seed (default 0)."),
         click.option("--folds", type=click.IntRange(2, 20), default=None, help="Cross-validation folds (default 5)."),
@@ -87,8 +98,9 @@ def _common_scan_options(f):
         click.option("--shareable", is_flag=True, help="Suppress small cells in report.json too and draw maps as densities, for reports that leave the data enclave."),
         click.option("--fail-above", type=click.FloatRange(0.5, 1.0), default=None, metavar="AUC",
                      help="Gate: exit 1 when the probe AUC's lower 95% bound exceeds AUC."),
-        click.option("--fail-on", "fail_on", multiple=True, metavar="KIND",
-                     help="Gate: exit 1 when a fingerprint of this kind is found (repeatable; e.g. unit_ratio, missing_code)."),
+        click.option("--fail-on", "fail_on", multiple=True, metavar="KIND", type=click.Choice(FINGERPRINT_KINDS),
+                     help="Gate: exit 1 when a fingerprint of this kind is found (repeatable; one of "
+                          + ", ".join(FINGERPRINT_KINDS) + ")."),
         click.option("--quiet", "-q", is_flag=True, help="No progress messages on stderr."),
     ]
     for o in reversed(opts):
@@ -96,103 +108,57 @@ def _common_scan_options(f):
     return f
 
 
-def _options_from(cfg_options: dict, **flags):
-    from .scan import ScanOptions
-
-    base = ScanOptions()
-    kw = {}
-    for key in ("seed", "folds", "max_rows", "map_rows", "min_site_rows", "min_cell", "include_datetime",
-                "cluster_threshold", "threshold"):
-        val = flags.get(key)
-        if val is None:
-            val = cfg_options.get(key, getattr(base, key))
-        kw[key] = val
-    return ScanOptions(**kw)
+#: The command-line flag of each gate (the library names gates by their option key).
+GATE_FLAGS = {"fail_above": "--fail-above", "fail_on": "--fail-on"}
 
 
 def _run_scan(data, *, site, outcome, covariates, groups, identifiers, excluded, config, sep, encoding,
               out_dir, quiet, shareable=False, fail_above=None, fail_on=(), **flags):
-    from .intake import read_table
-    from .render import write_report
-    from .roles import RoleSpec
-    from .scan import build_table, scan_table
-    from .config import load_config
+    """Resolve the configuration (the library's one loader), scan, write, print the summary and
+    the failed gates; exit 1 when a gate failed."""
+    from sitecheck.reading.config import resolve_config
+    from sitecheck.render import write_report
+    from sitecheck.scan import scan_configured
+    from sitecheck.table.roles import RoleSpec
 
     progress = Progress(quiet)
     t = lambda v: tuple(v) if v else None  # noqa: E731
     spec = RoleSpec(site=site, outcome=outcome, covariates=t(covariates), groups=t(groups),
                     identifiers=t(identifiers), excluded=t(excluded))
-    cfg = load_config(config)
-    _check_gate_kinds(tuple(fail_on) or tuple(cfg.options.get("fail_on", ())))
-    progress(f"reading {data}")
-    raw = read_table(data, sep=sep if sep is not None else cfg.options.get("sep"),
-                     encoding=encoding if encoding != "utf-8" else cfg.options.get("encoding", "utf-8"))
-    options = _options_from(cfg.options, **flags)
-    table, _ = build_table(raw, spec, config_path=config, min_site_rows=options.min_site_rows,
-                           include_datetime=options.include_datetime)
-    progress(f"{len(table.frame)} rows, {len(table.site_labels)} sites, {len(table.features)} features")
-    result = scan_table(table, options, progress=progress, config={"file": config} if config else {})
+    if encoding is not None:
+        import codecs
+
+        try:
+            codecs.lookup(encoding)
+        except LookupError:
+            raise InputError(f"--encoding {encoding!r}: not a known text encoding (for example utf-8, latin-1)") from None
+    if sep is not None and len(sep) != 1:
+        raise InputError(f"--sep {sep!r}: must be a single character")
+    run = resolve_config(config, roles=spec, options=flags, sep=sep, encoding=encoding,
+                         fail_above=fail_above, fail_on=tuple(fail_on) or None)
+    if run.roles.site is None:
+        raise InputError("no site column given; pass --site COLUMN or set site in the config file")
     _check_out_dir(out_dir, data)
+    result = scan_configured(data, run, progress=progress)
     progress(f"writing report to {out_dir}")
-    fail_above = fail_above if fail_above is not None else cfg.options.get("fail_above")
-    fail_on = tuple(fail_on) or tuple(cfg.options.get("fail_on", ()))
-    paths = write_report(result, out_dir, min_cell=options.min_cell, shareable=shareable)
-    failed = evaluate_gates(result.to_dict(), fail_above=fail_above, fail_on=fail_on)
-    click.echo(summary_text(result, paths, failed))
+    paths = write_report(result, out_dir, min_cell=run.options.min_cell, shareable=shareable)
+    failed = check_gates(result, run.gates)
+    lines = [result.summary(),
+             "report: " + ", ".join(paths[k] for k in ("report.html", "report.json", "findings.md") if k in paths)]
+    for f in failed:
+        setting = f"{f.setting:g}" if isinstance(f.setting, float) else f.setting
+        lines.append(f"FAILED gate {GATE_FLAGS[f.gate]} {setting}: {f.message}")
+    click.echo("\n".join(lines))
     if failed:
         sys.exit(EXIT_GATE)
     return result
 
 
-FINGERPRINT_KINDS = ("unit_ratio", "precision", "heaping", "floor", "ceiling", "missing_code", "site_missing",
-                     "exclusive_level", "shift", "scale")
-
-
-def _check_gate_kinds(kinds) -> None:
-    for k in kinds:
-        if k not in FINGERPRINT_KINDS:
-            raise InputError(f"--fail-on {k!r}: unknown fingerprint kind; choose from {', '.join(FINGERPRINT_KINDS)}")
-
-
-def evaluate_gates(doc: dict, *, fail_above=None, fail_on=()) -> list:
-    """Return one message per failed gate (empty when all pass)."""
-    failed = []
-    probe = doc.get("probe")
-    if fail_above is not None and probe and probe.get("auc_ci"):
-        lo = probe["auc_ci"][0]
-        if lo is not None and lo > fail_above:
-            failed.append(f"gate --fail-above {fail_above}: probe AUC lower bound {lo:.3f} exceeds it")
-    if fail_on:
-        found = [f for f in doc.get("fingerprints", []) or [] if f.get("kind") in fail_on]
-        for kind in fail_on:
-            hits = [f for f in found if f["kind"] == kind]
-            if hits:
-                where = ", ".join(f"{h['feature']} at {h['site']}" for h in hits[:5])
-                failed.append(f"gate --fail-on {kind}: {len(hits)} finding(s) ({where})")
-    return failed
-
-
 def _check_out_dir(out_dir: str, data: str) -> None:
+    if os.path.realpath(data) == os.path.realpath(out_dir):
+        raise InputError(f"--out {out_dir}: is the input file; choose a directory for the report")
     if os.path.exists(out_dir) and not os.path.isdir(out_dir):
         raise InputError(f"--out {out_dir}: exists and is not a directory")
-    if os.path.realpath(data) == os.path.realpath(out_dir):
-        raise InputError("--out must not be the input file")
-
-
-def summary_text(result, paths, failed=()) -> str:
-    """The one-screen summary printed on stdout at the end of a scan."""
-    doc = result.to_dict()
-    lines = [f"sitecheck {__version__}: {doc['input']['rows_used']} rows, {len(doc['input']['sites'])} sites"]
-    probe = doc.get("probe")
-    if probe:
-        lines.append(f"site probe: AUC {probe['auc']:.3f} (95% CI {probe['auc_ci'][0]:.3f} to {probe['auc_ci'][1]:.3f}), "
-                     f"p = {probe['p_value']:.3g}, verdict: {probe['verdict']}")
-    for w in doc.get("warnings", [])[:5]:
-        lines.append(f"warning: {w}")
-    lines.append("report: " + ", ".join(paths[k] for k in ("report.html", "report.json", "findings.md") if k in paths))
-    for msg in failed:
-        lines.append(f"FAILED {msg}")
-    return "\n".join(lines)
 
 
 @main.command("scan", epilog="Example:\n\n  sitecheck scan pooled.csv --site hospital --outcome died --covariate age --covariate sex --out report")
@@ -211,14 +177,14 @@ def scan_cmd(data, **kw):
 @click.option("--quiet", "-q", is_flag=True, help="No progress messages on stderr.")
 def demo_cmd(out_dir, rows, seed, quiet):
     """Write the invented four-hospital demo table into --out and scan it."""
-    from .demo import DEMO_ROLES, write_demo
+    from sitecheck.demo import DEMO_ROLES, write_demo
 
     paths = write_demo(out_dir, n_rows=rows, seed=seed)
     if not quiet:
         click.echo(f"demo table: {paths['data']} (ground truth: {paths['truth']})", err=True)
     _run_scan(paths["data"], site=DEMO_ROLES["site"], outcome=DEMO_ROLES["outcome"],
               covariates=DEMO_ROLES["covariates"], groups=(), identifiers=DEMO_ROLES["identifiers"], excluded=(),
-              config=None, sep=None, encoding="utf-8", out_dir=os.path.join(out_dir, "report"), quiet=quiet,
+              config=None, sep=None, encoding=None, out_dir=os.path.join(out_dir, "report"), quiet=quiet,
               seed=None, folds=None, max_rows=None, map_rows=None, min_site_rows=None, min_cell=None,
               include_datetime=None)
 
@@ -228,12 +194,12 @@ def schema_cmd():
     """Print the JSON Schema of report.json (versioned)."""
     import json
 
-    from .schema import report_schema
+    from sitecheck.report.schema import report_schema
 
     click.echo(json.dumps(report_schema(), indent=2))
 
 
-from .commands_harmonise import harmonise_cmd  # noqa: E402  (issue 6: the harmonise command)
+from sitecheck.cli.harmonise import harmonise_cmd  # noqa: E402  (issue 6: the harmonise command)
 
 main.add_command(harmonise_cmd)
 

@@ -26,8 +26,8 @@ from sklearn.decomposition import PCA
 from sklearn.metrics import silhouette_samples
 from sklearn.neighbors import NearestNeighbors
 
-from .errors import InputError
-from .prepare import Prepared, stratified_subsample
+from sitecheck.errors import InputError
+from sitecheck.table.prepare import Prepared, stratified_subsample
 
 METHODS: Tuple[str, ...] = ("pca", "tsne", "umap")
 
@@ -262,8 +262,8 @@ def silhouette_by_site(X, site, site_labels: Sequence[str], *, max_rows: int = 3
 
 def preprocess(X, categorical) -> np.ndarray:
     """The map design: see :data:`PREPROCESSING` (uses
-    :func:`sitecheck.models.linear_preprocessor` with robust scaling)."""
-    from .models import linear_preprocessor
+    :func:`sitecheck.analyses.models.linear_preprocessor` with robust scaling)."""
+    from sitecheck.analyses.models import linear_preprocessor
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -372,12 +372,11 @@ def embed(Z, *, methods: Sequence[str] = METHODS, random_state: int = 0, tsne_ma
 # --------------------------------------------------------------------------- the analysis
 
 def _label(x) -> str:
-    """Display text of a group value (whole-number floats without the trailing .0)."""
-    if x is None or (isinstance(x, float) and np.isnan(x)):
-        return "missing"
-    if isinstance(x, (float, np.floating)) and float(x).is_integer():
-        return str(int(x))
-    return str(x)
+    """Display text of a group value (:func:`sitecheck.table.roles.value_label`; missing as "missing")."""
+    from sitecheck.table.roles import value_label
+
+    lab = value_label(x)
+    return "missing" if lab is None else lab
 
 
 @dataclass(frozen=True, eq=False)

@@ -21,7 +21,7 @@ from typing import Dict, List, Optional, Tuple
 import numpy as np
 import pandas as pd
 
-from .errors import InputError
+from sitecheck.errors import InputError
 
 #: Text read as missing, compared after stripping white space. Matching is
 #: case-insensitive for the alphabetic codes.
@@ -131,7 +131,7 @@ def _check_encoding(path: str, compressed: bool, encoding: str) -> None:
     try:
         decoder = codecs.getincrementaldecoder(encoding)(errors="strict")
     except LookupError:
-        raise InputError(f"--encoding {encoding!r} is not a known text encoding") from None
+        raise InputError(f"{encoding!r} is not a known text encoding", option="encoding") from None
     opener = gzip.open if compressed else open
     offset = 0
     try:
@@ -147,7 +147,7 @@ def _check_encoding(path: str, compressed: bool, encoding: str) -> None:
                     pos = offset + exc.start
                     raise InputError(
                         f"{path}: byte 0x{chunk[exc.start]:02x} at offset {pos} is not valid "
-                        f"{encoding}; pass --encoding (for example --encoding latin-1)"
+                        f"{encoding}; give the file's encoding (for example latin-1)", option="encoding"
                     ) from None
                 offset += len(chunk)
     except (OSError, EOFError, gzip.BadGzipFile) as exc:
@@ -190,7 +190,7 @@ def _read_text_columns(path: str, fmt: str, sep: Optional[str], encoding: str):
     if sep is None:
         sep = "\t" if fmt.startswith("tsv") else ","
     if len(sep) != 1:
-        raise InputError(f"--sep must be a single character, got {sep!r}")
+        raise InputError(f"the field separator must be a single character, got {sep!r}", option="sep")
     enc_norm = codecs.lookup(encoding).name if _known(encoding) else encoding
     if enc_norm in ("utf-8", "utf_8"):
         _check_encoding(path, compressed, "utf-8")
@@ -221,8 +221,8 @@ def _read_text_columns(path: str, fmt: str, sep: Optional[str], encoding: str):
         raise InputError(f"{path}: cannot be read ({exc})") from None
     if table.num_columns != len(names):
         raise InputError(
-            f"{path}: header has {len(names)} columns but rows have {table.num_columns}; check --sep"
-        )
+            f"{path}: header has {len(names)} columns but rows have {table.num_columns}; check the field separator",
+            option="sep")
     if table.num_rows == 0:
         raise InputError(f"{path}: the file has a header but no data rows")
     return {name: table.column(i) for i, name in enumerate(names)}, names

@@ -14,7 +14,7 @@ cleaned by earlier ones and skip what is already explained:
 3. ``missing_code`` -- sentinel values (-1, -9, -99, -999, 99, 999, 9999, ...)
    far outside the feature's range at one site; removed before step 4.
 4. ``unit_ratio`` -- the site's quantiles are a published conversion factor
-   times the others' (:mod:`sitecheck.units`), or Fahrenheit against Celsius.
+   times the others' (:mod:`sitecheck.table.units`), or Fahrenheit against Celsius.
    Sites with a unit finding leave the reference of later detectors.
 5. ``floor`` / ``ceiling`` -- a point mass at the site's minimum/maximum that
    the other sites do not show at that value, while they do have values
@@ -42,12 +42,11 @@ import numpy as np
 import pandas as pd
 from scipy import stats as _st
 
-from .result import to_jsonable as _jsonable
-from .errors import InputError, ParameterError
-from .units import TEMPERATURE, candidate_factors, conversions_for, is_temperature
+from sitecheck.report.result import to_jsonable as _jsonable
+from sitecheck.errors import InputError, ParameterError
+from sitecheck.table.units import TEMPERATURE, candidate_factors, conversions_for, is_temperature
 
-KINDS = ("unit_ratio", "precision", "heaping", "floor", "ceiling", "missing_code", "site_missing",
-         "exclusive_level", "shift", "scale")
+from sitecheck.report.gates import FINGERPRINT_KINDS as KINDS  # noqa: E402  (the one list of kinds)
 
 #: Candidate recording steps, coarsest last.
 GRID_STEPS = (0.001, 0.002, 0.005, 0.01, 0.02, 0.025, 0.05, 0.1, 0.2, 0.25, 0.5, 1.0, 2.0, 5.0, 10.0,
@@ -355,7 +354,7 @@ def detect_unit_ratio(vals: Sequence[np.ndarray], name: Optional[str] = None, *,
     median is within a factor 1.5 of the median of the other sites' medians.
     The ratio of the site's quantiles (10, 25, 50, 75, 90%) to the reference's
     must be near-constant (a unit change scales every quantile) and its median
-    ratio must match a factor ``f`` or ``1/f`` of :mod:`sitecheck.units`: within
+    ratio must match a factor ``f`` or ``1/f`` of :mod:`sitecheck.table.units`: within
     10% (quantile spread within 30%) for the analyte named by the column, within
     5% (spread 15%) for the table's other factors on any positive feature.
     Temperature is affine: the site's median between 86 and 113 against a
@@ -844,8 +843,8 @@ _EXPLAIN = {
 
 
 def _table_of(data):
-    from .prepare import Prepared
-    from .roles import Table
+    from sitecheck.table.prepare import Prepared
+    from sitecheck.table.roles import Table
 
     if isinstance(data, Prepared):
         return data.table

@@ -1,7 +1,7 @@
 """Everything the analyses share, computed once.
 
 :func:`prepare` encodes the feature (and covariate) columns of a
-:class:`~sitecheck.roles.Table` into numeric matrices, draws the
+:class:`~sitecheck.table.roles.Table` into numeric matrices, draws the
 site-stratified subsample used for modelling, and fixes the stratified folds.
 """
 from __future__ import annotations
@@ -13,8 +13,9 @@ import numpy as np
 import pandas as pd
 from sklearn.model_selection import StratifiedKFold
 
-from .errors import InputError
-from .roles import Table
+from sitecheck._runtime import stream
+from sitecheck.errors import InputError
+from sitecheck.table.roles import Table
 
 #: Categorical levels kept per column before rarer ones are lumped into one
 #: "other" code (HistGradientBoosting accepts at most 255 categories).
@@ -172,7 +173,7 @@ def prepare(table: Table, *, n_splits: int = 5, max_rows: int = 100_000, random_
     if not isinstance(max_rows, (int, np.integer)) or max_rows < 100:
         raise InputError(f"max_rows must be an integer of at least 100, got {max_rows!r}")
     seed = int(random_state)
-    rng = np.random.default_rng([seed, 9001])
+    rng = stream(seed, "prepare.subsample")
     site_all = table.frame[table.site].to_numpy(dtype=object)
     rows = stratified_subsample(site_all, int(max_rows), rng)
     sub = table.frame.iloc[rows]

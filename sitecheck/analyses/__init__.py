@@ -1,0 +1,1 @@
+"""The analyses a scan runs (one module each) and their registry."""

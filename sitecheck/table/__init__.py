@@ -1,0 +1,1 @@
+"""The table: column roles and hygiene, units, the encoded matrices every analysis shares, repairs."""
