@@ -341,14 +341,17 @@ def summarise(rows: List[dict]) -> List[Tuple[str, str, str, bool]]:
     return out
 
 
-def power_table(rows: List[dict]) -> List[Tuple[str, str, str, str]]:
+def power_table(rows: List[dict]) -> List[Tuple[str, ...]]:
+    """Per kind and size: the share found with the right kind at the right feature and site, and (in
+    brackets) the share with any finding at that feature and site."""
     out = []
     for kind, sizes in POWER_SIZES.items():
         cells = []
         for which in ("small", "large"):
             sel = [r for r in rows if r["kind"] == kind and r["size"] == which]
             k = sum(r["found"] for r in sel)
-            cells.append(f"{k}/{len(sel)} = {k / max(len(sel), 1):.0%}")
+            a = sum(r["any_at_site"] for r in sel)
+            cells.append(f"{k}/{len(sel)} = {k / max(len(sel), 1):.0%} ({a / max(len(sel), 1):.0%})")
         out.append((kind, f"{sizes[0]:g} / {sizes[1]:g}", cells[0], cells[1]))
     return out
 
@@ -359,7 +362,8 @@ def markdown(null_rows: List[dict], power_rows: List[dict]) -> str:
         lines += ["| measure (null tables) | bound | observed [Wilson 95% CI] | met |", "|---|---|---|---|"]
         lines += [f"| {a} | {b} | {c} | {'yes' if d else 'NO'} |" for a, b, c, d in summarise(null_rows)]
     if power_rows:
-        lines += ["", "| injected kind | size (small / large) | found, small | found, large |", "|---|---|---|---|"]
+        lines += ["", "| injected kind | size (small / large) | right kind and site, small (any finding there) | "
+                  "right kind and site, large (any finding there) |", "|---|---|---|---|"]
         lines += [f"| {a} | {b} | {c} | {d} |" for a, b, c, d in power_table(power_rows)]
     return "\n".join(lines)
 
