@@ -29,10 +29,13 @@ The power table: the same generator with one injected effect of each fingerprint
 kind at two sizes, at one site; the share of tables where the fingerprints report
 that kind at that site.
 
-Run (CPU-heavy; about 2 hours on one core for 200 tables; ``--jobs`` processes)::
+Run (CPU-heavy: about 10 CPU seconds per null table, dominated by the five plain probes; the power part
+is cheap)::
 
-    nice python tests/benchmarks/null_study.py --tables 200 --power-tables 50 --jobs 2 \\
-        --save tests/benchmarks/null_study.jsonl --markdown
+    nice python tests/benchmarks/null_study.py --tables 200 --power-tables 0 --jobs 2 \
+        --save tests/benchmarks/null_study.jsonl
+    nice python tests/benchmarks/null_study.py --tables 0 --power-tables 50 \
+        --save tests/benchmarks/null_study_power.jsonl
 
 ``--table-from FILE`` prints the tables from saved results without running anything.
 ``tests/test_harmonise.py`` imports :func:`null_table` and :func:`plain_probe_auc`
