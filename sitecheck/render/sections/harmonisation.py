@@ -18,7 +18,7 @@ _NAMES = {"centre": "per-site centring", "scale": "per-site standardisation",
           "quantile": "per-site quantile mapping", "combat": "ComBat (empirical Bayes)"}
 
 _INTRO = ("Each method was fitted with the protected columns' effects kept and its values returned to each "
-          "feature's common recording grid, as `sitecheck harmonise` writes them; the site probe was run again "
+          "feature's common recording grid, as the harmonise command writes them; the site probe was run again "
           "with each method fitted within each training fold and applied to the held-out rows. A feature "
           "survives when its values still differ between sites by more than its recording grid explains "
           "(Kolmogorov-Smirnov, one site against the rest, Benjamini-Hochberg adjusted). The "
