@@ -463,9 +463,10 @@ def _map_quantiles(v: np.ndarray, site_q: np.ndarray, pooled_q: np.ndarray, prob
 
     With ``n_site`` (the site's fitting values): a monotone piecewise-linear map
     from the site's quantiles to the pooled quantiles at ``K + 1`` probabilities
-    evenly spaced from ``1/(n+1)`` to ``n/(n+1)``, ``K = n // 20``
-    (:data:`QUANTILE_ROWS_PER_KNOT`, at most the grid's own resolution); beyond
-    the end knots a value keeps its distance to the end (slope 1). A map with a
+    evenly spaced from ``10/n`` to ``1 - 10/n``, ``K = n // 20``
+    (:data:`QUANTILE_ROWS_PER_KNOT`, at most the grid's own resolution; a site
+    with 20 values or fewer is shifted by its median); beyond the end knots a
+    value keeps its distance to the end (slope 1). A map with a
     knot per 1/200 of the distribution copies a small site's sampling noise onto
     its new rows, and stretches its extreme values to the pooled extremes (its
     minimum became the pooled minimum): a site signal of the map's own making.
@@ -477,7 +478,10 @@ def _map_quantiles(v: np.ndarray, site_q: np.ndarray, pooled_q: np.ndarray, prob
         out = np.interp(prob, probs, pooled_q)
         return np.where(np.isnan(v), np.nan, out)
     K = int(min(max(n_site // QUANTILE_ROWS_PER_KNOT, 1), len(probs) - 1))
-    pk = np.linspace(1.0 / (n_site + 1), n_site / (n_site + 1.0), K + 1)
+    # The end knots keep half an interval's values beyond them: extreme order statistics of a small site are
+    # too noisy to set the slope of the map's end pieces.
+    p_lo = min(0.5, 0.5 * QUANTILE_ROWS_PER_KNOT / n_site)
+    pk = np.linspace(p_lo, 1.0 - p_lo, K + 1) if p_lo < 0.5 else np.array([0.5])
     sk = np.interp(pk, probs, site_q)
     qk = np.interp(pk, probs, pooled_q)
     # ties in the site's knots (a point mass): keep the first of each value, so the map stays a function
