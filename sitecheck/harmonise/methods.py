@@ -747,14 +747,13 @@ class HarmonisationFit:
     Parameters save as JSON and load again, so new rows from the same sites can be harmonised
     alike (``sitecheck harmonise --apply``):
 
-    >>> import json
     >>> import numpy as np
     >>> from sitecheck import HarmonisationFit, apply_harmoniser, fit_harmoniser
     >>> site = np.array([0, 0, 0, 1, 1, 1])
     >>> X = np.array([[4.0], [5.0], [6.0], [8.0], [9.0], [10.0]])
     >>> fit = fit_harmoniser(X, site, method="scale", site_labels=["Ashby", "Brill"])
-    >>> saved = json.dumps(fit.to_dict())
-    >>> again = HarmonisationFit.from_dict(json.loads(saved))
+    >>> _ = fit.save("sodium.params.json")
+    >>> again = HarmonisationFit.load("sodium.params.json")
     >>> again.method, bool(np.array_equal(apply_harmoniser(again, X, site), apply_harmoniser(fit, X, site)))
     ('scale', True)
     """
@@ -819,6 +818,43 @@ class HarmonisationFit:
             d["quantiles"] = [_arr(self.quantiles[i]) for i in range(self.n_sites)]
             d["pooled_quantiles"] = _arr(self.pooled_quantiles)
         return d
+
+    def save(self, path: str, **extra) -> str:
+        """Write the parameters (:meth:`to_dict`, plus ``extra`` keys) as JSON to ``path``, atomically
+        (a temporary file beside it, then a rename); return the path."""
+        import json
+        import os
+        import tempfile
+
+        doc = {**self.to_dict(), **extra}
+        folder = os.path.dirname(os.path.abspath(path))
+        fd, tmp = tempfile.mkstemp(dir=folder, prefix=".sitecheck-", suffix=".json.tmp")
+        try:
+            with os.fdopen(fd, "w", encoding="utf-8") as fh:
+                fh.write(json.dumps(doc, indent=1, allow_nan=False) + "\n")
+            os.replace(tmp, path)
+        except BaseException:
+            if os.path.exists(tmp):
+                os.unlink(tmp)
+            raise
+        return path
+
+    @classmethod
+    def load(cls, path: str) -> "HarmonisationFit":
+        """Read parameters written by :meth:`save` (or ``sitecheck harmonise``); InputError naming
+        the file if it cannot be read or is not a parameters file."""
+        import json
+
+        try:
+            with open(path, encoding="utf-8") as fh:
+                doc = json.load(fh)
+        except OSError as exc:
+            raise InputError(f"parameters file {path}: cannot be read ({exc.strerror})") from None
+        except json.JSONDecodeError as exc:
+            raise InputError(f"parameters file {path}: not JSON ({exc.msg} at line {exc.lineno})") from None
+        if not isinstance(doc, dict):
+            raise InputError(f"parameters file {path}: not a parameters file")
+        return cls.from_dict(doc)
 
     @classmethod
     def from_dict(cls, d: dict) -> "HarmonisationFit":
