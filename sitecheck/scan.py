@@ -123,7 +123,7 @@ def _versions() -> Dict[str, str]:
     import importlib.metadata as md
 
     out = {"sitecheck": __version__, "python": platform.python_version()}
-    for pkg in ("numpy", "pandas", "scikit-learn", "scipy", "umap-learn", "matplotlib", "pyarrow"):
+    for pkg in ("numpy", "pandas", "scikit-learn", "scipy", "umap-learn", "openTSNE", "matplotlib", "pyarrow"):
         try:
             out[pkg] = md.version(pkg)
         except md.PackageNotFoundError:  # pragma: no cover
@@ -239,7 +239,7 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
             and (a.on != "residual" or repaired is not None)]
     names = {a.name for a in todo} - set(done) - set(failures)
     needed = {d for a in todo for d in a.needs}
-    side = [a.name for a in sorted(todo, key=lambda a: -a.priority)
+    side = [a.name for a in sorted(todo, key=lambda a: -a.cost(_prep_for(preps, a)))
             if not a.needs and a.name not in needed and a.name in names]
     spec_of = {a.name: a for a in todo}
     objects: Dict[str, Any] = dict(done)

@@ -64,11 +64,22 @@ def test_floor_effect_survives_every_method_with_its_reason(gaps_by_method, meth
         assert "potassium" not in gaps and "sodium" not in gaps
 
 
-def test_reasons_for_precision_and_unit_mixture(gaps_by_method):
+def test_reasons_for_precision_and_unit_mixture(injected, gaps_by_method):
+    X, site = injected
     gaps, _ = gaps_by_method["centre"]
     assert gaps["glucose"].reason == "unit mixture" and gaps["glucose"].site == "Corran Vale"
-    assert gaps["temperature"].reason == "precision" and gaps["temperature"].site == "Ashgrove"
-    assert "0.5" in gaps["temperature"].detail
+    # Ashgrove records temperature in steps of 0.5, the others in 0.1: every method returns
+    # temperature to the common grid 0.5, so its precision gap is repaired, not carried over.
+    fit = fit_harmoniser(X, site, method="centre", site_labels=LABELS, feature_names=NAMES)
+    assert fit.grid[1] == 0.5 and np.isnan(fit.grid[[0, 2, 3, 4, 5]]).all()
+    for m in METHODS:
+        assert "temperature" not in gaps_by_method[m][0], m
+    # Without the grid (the published equations alone), the gap survives with its reason.
+    Xh = apply_harmoniser(fit, X, site, on_grid=False)
+    raw_gaps = {g.feature: g for g in surviving_gaps(X, Xh, site, names=NAMES, site_labels=LABELS,
+                                                    grid=[np.nan] * 6)[0]}
+    assert raw_gaps["temperature"].reason == "precision" and raw_gaps["temperature"].site == "Ashgrove"
+    assert "0.5" in raw_gaps["temperature"].detail
     # A unit factor is a pure scale change: per-site standardisation removes it.
     assert "glucose" not in gaps_by_method["scale"][0]
     # Centring leaves the scale difference of potassium in place.
@@ -171,21 +182,28 @@ def test_scan_check_on_the_demo(demo_prepared, demo_truth):
         assert surv["albumin"]["reason"] == "missingness"
         assert surv["albumin"]["site"] == truth[("albumin", "site_missing")]
         assert all(0 <= s["p_adj"] < 0.05 for s in d["surviving"])
-    assert doc["centre"]["surviving"] and {"glucose"} <= {s["feature"] for s in doc["centre"]["surviving"]}
+    # The -99 code in lactate cannot be harmonised away (it shows as a point mass at the site's floor).
+    lac = {s["feature"]: s for s in doc["centre"]["surviving"]}["lactate"]
+    assert lac["reason"] == "floor or ceiling" and lac["site"] == truth[("lactate", "missing_code")]
+    assert "-99" in lac["detail"]
+    # Every method returns temperature to the common grid 0.5 (Aldermoor's rounding habit), so its
+    # precision gap is repaired; sodium (integers) stays on whole numbers.
+    for d in doc.values():
+        assert d["grid"]["temperature"] == 0.5 and d["grid"]["sodium"] == 1.0
+        assert "temperature" not in {s["feature"] for s in d["surviving"]}
+        assert d["reprobe"].startswith("fitted within each training fold")
     # No other unexplained gap: apart from gaps attributed to the protected case mix, what survives is exactly
-    # the demo's injected artefacts that a location/scale fix cannot undo (demo_truth.json: lactate's -99 code,
-    # albumin never measured, crp's detection limit, glucose in mg/dL, temperature's 0.5-degree rounding); the
-    # sodium offset is removed. Under centring alone, troponin's shape also differs at Aldermoor: troponin rises
-    # with age in the generator (sitecheck/demo.py) and Cindervale's patients are 8 years older, a skewed
-    # distribution that moving each site's location cannot align; ComBat, protecting age, attributes it to
-    # case mix.
-    # Issue 17: troponin written '<5' at Aldermoor is read as the limit 5 with a flag, so it survives as a
-    # limit under both methods; potassium's decimal commas at Cindervale are read as numbers and leave no gap.
+    # the demo's injected artefacts that no per-site map can undo (demo_truth.json: lactate's -99 code,
+    # albumin never measured, crp's detection limit, troponin written '<5' at Aldermoor and read as the limit 5
+    # with a flag). The sodium offset is removed; temperature's 0.5-degree rounding is repaired by the common
+    # grid; glucose in mg/dL is skewed enough to be fitted on the log scale, where the unit factor is a location
+    # change that every method removes (the command refuses that table: unit_ratio is a blocking finding);
+    # potassium's decimal commas at Cindervale are read as numbers and leave no gap.
     injected = {("lactate", "Brackenholt", "floor or ceiling"), ("albumin", "Duskwater", "missingness"),
-                ("crp", "Duskwater", "floor or ceiling"), ("glucose", "Cindervale", "unit mixture"),
-                ("temperature", "Aldermoor", "precision"), ("troponin", "Aldermoor", "floor or ceiling")}
+                ("crp", "Duskwater", "floor or ceiling"), ("troponin", "Aldermoor", "floor or ceiling")}
     assert {(e["feature"], e["site"]) for e in demo_truth["effects"]} - {(f, s) for f, s, _ in injected} == \
-        {("sodium", "Brackenholt"), ("potassium", "Cindervale")}
+        {("sodium", "Brackenholt"), ("glucose", "Cindervale"), ("temperature", "Aldermoor"),
+         ("potassium", "Cindervale")}
     for m, extra in (("centre", set()), ("combat", set())):
         unexplained = {(g["feature"], g["site"], g["reason"]) for g in doc[m]["surviving"]
                        if g["reason"] != "case mix (protected)"}
@@ -212,7 +230,7 @@ def _one_line_error(res, text):
 def test_command_fit_then_apply_gives_the_same_table(tmp_path, demo_small_path):
     out = tmp_path / "h.csv"
     r = _cli(["harmonise", demo_small_path, "--site", "hospital", "--method", "combat", "--protect", "age",
-              "--protect", "sex", "--out", str(out), "-q"])
+              "--protect", "sex", "--out", str(out), "-q", "--despite-findings"])
     assert r.exit_code == 0, r.output
     params = json.loads((tmp_path / "h.csv.params.json").read_text())
     assert params["method"] == "combat" and params["site_column"] == "hospital"
@@ -230,7 +248,8 @@ def test_command_fit_then_apply_gives_the_same_table(tmp_path, demo_small_path):
     part = tmp_path / "part.csv"
     raw.iloc[:300].to_csv(part, index=False)
     out2 = tmp_path / "h2.csv"
-    r = _cli(["harmonise", str(part), "--apply", str(tmp_path / "h.csv.params.json"), "--out", str(out2), "-q"])
+    r = _cli(["harmonise", str(part), "--apply", str(tmp_path / "h.csv.params.json"), "--out", str(out2), "-q",
+              "--despite-findings"])
     assert r.exit_code == 0, r.output
     h2 = pd.read_csv(out2)
     pd.testing.assert_frame_equal(h2, pd.read_csv(out).iloc[:300], check_exact=False, rtol=1e-12)
@@ -241,7 +260,7 @@ def test_command_parquet_stays_parquet(tmp_path, demo_small_path):
     pd.read_csv(demo_small_path).to_parquet(src)
     out = tmp_path / "h.parquet"
     r = _cli(["harmonise", str(src), "--site", "hospital", "--method", "quantile", "--out", str(out),
-              "--params", str(tmp_path / "p.json"), "-q"])
+              "--params", str(tmp_path / "p.json"), "-q", "--despite-findings"])
     assert r.exit_code == 0, r.output
     h = pd.read_parquet(out)
     assert h.shape == pd.read_parquet(src).shape and (tmp_path / "p.json").exists()
@@ -254,7 +273,7 @@ def test_command_errors_exit_2_with_one_line(tmp_path, demo_small_path):
                           "--out", demo_small_path]), "--out must not be the input file")
     out = tmp_path / "h.csv"
     assert _cli(["harmonise", demo_small_path, "--site", "hospital", "--method", "scale", "--out", str(out),
-                 "-q"]).exit_code == 0
+                 "-q", "--despite-findings"]).exit_code == 0
     params = str(tmp_path / "h.csv.params.json")
     raw = pd.read_csv(demo_small_path, dtype=str, keep_default_na=False)
     new = raw.iloc[:50].copy()
@@ -263,6 +282,9 @@ def test_command_errors_exit_2_with_one_line(tmp_path, demo_small_path):
     new.to_csv(p1, index=False)
     _one_line_error(_cli(["harmonise", str(p1), "--apply", params, "--out", str(tmp_path / "o1.csv")]),
                     "site 'Elmstead' is not one of the fitted sites")
+    # Ground truth (demo_truth.json): glucose in mg/dL at one site, a -99 code in lactate at another.
+    _one_line_error(_cli(["harmonise", demo_small_path, "--site", "hospital", "--method", "combat",
+                          "--out", str(tmp_path / "o5.csv")]), "--despite-findings")
     p2 = tmp_path / "nosodium.csv"
     raw.iloc[:50].drop(columns=["sodium"]).to_csv(p2, index=False)
     _one_line_error(_cli(["harmonise", str(p2), "--apply", params, "--out", str(tmp_path / "o2.csv")]),
@@ -271,7 +293,7 @@ def test_command_errors_exit_2_with_one_line(tmp_path, demo_small_path):
                     "no site column")
     _one_line_error(_cli(["harmonise", demo_small_path, "--site", "hospital", "--method", "combat",
                           "--protect", "ward", "--out", str(tmp_path / "o4.csv")]), "'ward'")
-    for name in ("o1.csv", "o2.csv", "o3.csv", "o4.csv"):
+    for name in ("o1.csv", "o2.csv", "o3.csv", "o4.csv", "o5.csv"):
         assert not (tmp_path / name).exists()
 
 
@@ -386,3 +408,275 @@ def test_scan_fills_report_harmonisation_and_renders():
         assert "crp" in {s["feature"] for s in d["surviving"]}
         assert set(d) >= {"probe_auc", "probe_auc_ci", "surviving", "outcome_auc_before", "outcome_auc_after"}
     assert "Harmonisation" in render_html(doc) and "## Harmonisation" in render_markdown(doc)
+
+
+# ---------------------------------------------------------------- the recording grid (issue 14)
+
+def test_recording_grid_is_the_coarsest_site_step():
+    # Site steps found by sitecheck.analyses.fingerprints.grid_step; the common grid is the coarsest,
+    # or the finest candidate step that every site's step divides (0.2 and 0.25 -> 1).
+    from sitecheck.harmonise.methods import recording_grid, snap_to_grid
+
+    rng = np.random.default_rng(20)
+    a = np.round(rng.normal(37, 0.5, 200), 1)
+    b = np.round(rng.normal(37, 0.5, 200) * 2) / 2
+    site = np.repeat([0, 1], 200)
+    assert recording_grid(np.r_[a, b], site, 2) == 0.5
+    assert recording_grid(np.r_[a, a], site, 2) == 0.1
+    assert recording_grid(rng.normal(size=400), site, 2) is None           # continuous: no grid
+    c = np.round(rng.normal(5, 1, 200) / 0.2) * 0.2
+    d = np.round(rng.normal(5, 1, 200) / 0.25) * 0.25
+    assert recording_grid(np.r_[c, d], site, 2) == 1.0
+    # Halves go up (never to the even neighbour) and decimals are clean.
+    np.testing.assert_array_equal(snap_to_grid(np.array([0.5, 1.5, 2.5, 0.1 + 0.2, -0.05]), 0.1),
+                                  [0.5, 1.5, 2.5, 0.3, 0.0])
+    np.testing.assert_array_equal(snap_to_grid(np.array([0.5, 1.5, 2.5, np.nan]), 1.0), [1.0, 2.0, 3.0, np.nan])
+
+
+def test_grid_ks_distance_ignores_offsets_within_a_step():
+    # Reference for the step-free case: scipy.stats.ks_2samp's statistic.
+    from scipy.stats import ks_2samp
+
+    from sitecheck.harmonise.methods import grid_ks_distance
+
+    rng = np.random.default_rng(21)
+    a = np.round(rng.normal(140, 1.5, 500))
+    b = np.round(rng.normal(140, 1.5, 500)) + 0.4          # a per-site offset grid, no real difference
+    assert grid_ks_distance(a, b, None) == pytest.approx(ks_2samp(a, b).statistic, abs=1e-12)
+    assert ks_2samp(a, b).statistic > 0.2                   # the plain KS is fooled by the offset
+    assert grid_ks_distance(a, b, 1.0) < 0.05               # not more than the grid explains
+    c = np.round(rng.normal(143, 1.5, 500))                 # a real gap of two steps
+    assert grid_ks_distance(a, c, 1.0) > 0.3
+
+
+def test_grid_offset_alone_does_not_survive():
+    # Ground truth: no site effect, integers; one site's harmonised values carry an offset of 0.4
+    # (what per-site centring wrote before values were returned to the grid).
+    rng = np.random.default_rng(22)
+    n = 1600
+    site = np.repeat(np.arange(4), n // 4)
+    X = np.round(rng.normal(140, 2, (n, 1)))
+    Xh = X + np.where(site == 2, 0.4, 0.0)[:, None]
+    gaps, _ = surviving_gaps(X, Xh, site, names=["sodium"], site_labels=LABELS)
+    assert gaps == ()
+    # ... while a true residual gap of two steps does.
+    Xg = X + np.where(site == 2, 2.0, 0.0)[:, None]
+    gaps, _ = surviving_gaps(X, Xg, site, names=["sodium"], site_labels=LABELS)
+    assert [g.site for g in gaps] == ["Corran Vale"] and gaps[0].statistic > 0.15
+
+
+@pytest.mark.parametrize("method", METHODS)
+def test_every_method_returns_values_to_the_grid(method):
+    rng = np.random.default_rng(23)
+    n = 1200
+    site = np.repeat(np.arange(3), n // 3)
+    X = np.column_stack([np.round(rng.normal(140, 3, n)) + site,            # integers, a site shift
+                         np.round(rng.normal(4.2, 0.45, n), 1) * (1 + 0.1 * site),
+                         np.round(rng.lognormal(1.8, 1.1, n))])             # skewed, zeros
+    Xh, fit = harmonise(X, site, method=method, site_labels=LABELS[:3], random_state=0, log_skewed=True,
+                        clip=True)
+    np.testing.assert_array_equal(fit.grid, [1.0, 0.1, 1.0])
+    assert np.isnan(fit.log_offset[:2]).all() and fit.log_offset[2] == 1.0   # crp-like: log(x + 1)
+    for j, g in enumerate(fit.grid):
+        r = Xh[:, j] / g
+        assert np.abs(r - np.round(r)).max() < 1e-9
+        assert Xh[:, j].min() >= X[:, j].min() and Xh[:, j].max() <= X[:, j].max()
+    # Same seed, same values; the equations alone (no grid, no seed) are continuous.
+    again, _ = harmonise(X, site, method=method, site_labels=LABELS[:3], random_state=0, log_skewed=True,
+                         clip=True)
+    np.testing.assert_array_equal(again, Xh)
+    raw = apply_harmoniser(fit_harmoniser(X, site, method=method, site_labels=LABELS[:3], on_grid=False),
+                           X, site)
+    assert np.abs(raw[:, 0] - np.round(raw[:, 0])).max() > 0.01
+
+
+def test_scan_reprobe_is_fitted_within_training_folds():
+    # The quantile map fitted on every row and scored on those rows is pulled below chance
+    # (each site is made to match the pooled distribution exactly); fitted within each training
+    # fold, the held-out rows never shaped it. Null continuous table (ground truth: no effect).
+    from sitecheck.harmonise.methods import site_reprobe_cv
+    from sitecheck.analyses.probe import make_folds, probe_matrix
+
+    rng = np.random.default_rng(24)
+    n = 900
+    site = np.repeat(np.arange(3), n // 3)
+    X = rng.normal(size=(n, 4))
+    folds = make_folds(site, 3, random_state=0)
+    cat = np.zeros(4, bool)
+    leaky = probe_matrix(harmonise(X, site, method="quantile", site_labels=LABELS[:3])[0], site, cat, folds,
+                         random_state=0, n_boot=200, n_permutations=0)
+    clean = site_reprobe_cv(X, site, cat, folds, method="quantile", seed=0, n_boot=200, n_permutations=0,
+                            site_labels=LABELS[:3])
+    assert leaky.auc_ci[1] < 0.5                       # the signature of fitting on the rows scored
+    assert clean.auc_ci[0] <= 0.5 <= clean.auc_ci[1]
+    assert clean.n == n
+
+
+# ---------------------------------------------------------------- the command: findings, grid, range
+
+def test_blocking_kinds_name_existing_and_future_kinds():
+    from sitecheck.analyses.fingerprints import KINDS
+    from sitecheck.harmonise.methods import BLOCKING_KINDS
+
+    assert {"unit_ratio", "missing_code"} <= set(BLOCKING_KINDS) & set(KINDS)
+    assert {"censored_below", "censored_above", "number_format"} <= set(BLOCKING_KINDS)
+
+
+def _lab_table(seed=25, n=900):
+    rng = np.random.default_rng(seed)
+    site = np.repeat(np.array(["Ashgrove", "Brindle Cross", "Corran Vale"], dtype=object), n // 3)
+    low = (site == "Corran Vale")
+    return pd.DataFrame({
+        "hospital": site,
+        "age": np.round(rng.normal(60, 15, n)),
+        "sodium": np.round(rng.normal(139, 3, n)),
+        "potassium": np.round(rng.normal(4.2, 0.45, n), 1),
+        "spo2": np.minimum(np.round(rng.normal(96, 2, n) - 3 * low), 100),   # ceiling 100, a lower site
+    })
+
+
+def test_command_writes_on_the_grid_inside_the_recorded_range(tmp_path):
+    import re
+
+    src = tmp_path / "labs.csv"
+    _lab_table().to_csv(src, index=False)
+    out = tmp_path / "h.csv"
+    r = _cli(["harmonise", str(src), "--site", "hospital", "--method", "centre", "--protect", "age",
+              "--out", str(out)])
+    assert r.exit_code == 0, r.output
+    text = pd.read_csv(out, dtype=str)
+    assert text["sodium"].str.fullmatch(r"\d+").all() and text["spo2"].str.fullmatch(r"\d+").all()
+    assert text["potassium"].str.fullmatch(r"\d+\.\d").all()
+    assert "written on each feature's common recording grid: sodium 1, potassium 0.1, spo2 1" in r.output
+    h = pd.read_csv(out)
+    raw = pd.read_csv(src)
+    assert h["spo2"].max() == 100 and h["spo2"].min() >= raw["spo2"].min()
+    # The counts reported are the values the centring carried beyond the recorded range (computed
+    # here from the unclipped values of the same fit and seed).
+    from sitecheck.cli.harmonise import run_harmonise
+
+    res = run_harmonise(str(src), site="hospital", method="centre", protect=["age"], out=str(tmp_path / "h2.csv"),
+                        params_path=None, apply_path=None)
+    fit = HarmonisationFit.from_dict(json.loads((tmp_path / "h2.csv.params.json").read_text()))
+    codes = pd.factorize(raw["hospital"], sort=True)[0]
+    D, _ = protected_design(raw, ["age"], spec=fit.protect)
+    unclipped = apply_harmoniser(fit, raw[list(fit.features)].to_numpy(float), codes, design=D,
+                                 random_state=[0, 2])
+    v = unclipped[:, list(fit.features).index("spo2")]
+    below, above = int((v < raw["spo2"].min()).sum()), int((v > raw["spo2"].max()).sum())
+    assert below + above > 0 and res["clipped"] == {"spo2": (below, above)}
+    assert "were set to its nearest end: spo2 " in r.output
+    # Same table and seed: the same bytes.
+    assert (tmp_path / "h2.csv").read_bytes() == out.read_bytes()
+
+
+def test_command_refuses_findings_unless_forced(tmp_path, demo_small_path, demo_truth):
+    truth = {e["kind"]: (e["feature"], e["site"]) for e in demo_truth["effects"]}
+    res = _cli(["harmonise", demo_small_path, "--site", "hospital", "--method", "combat",
+                "--out", str(tmp_path / "h.csv")])
+    _one_line_error(res, "--despite-findings")
+    for kind in ("unit_ratio", "missing_code"):
+        feature, site = truth[kind]
+        assert f"{feature} ({kind} at {site})" in res.output
+    assert not (tmp_path / "h.csv").exists()
+    res = _cli(["harmonise", demo_small_path, "--site", "hospital", "--method", "combat",
+                "--out", str(tmp_path / "h.csv"), "--despite-findings", "-q"])
+    assert res.exit_code == 0 and "harmonised despite 2 finding(s)" in res.output
+    assert (tmp_path / "h.csv").exists()
+
+
+# ---------------------------------------------------------------- null tables (issue 14)
+
+def _null_study():
+    import importlib.util
+    import os
+
+    path = os.path.join(os.path.dirname(__file__), "benchmarks", "null_study.py")
+    spec = importlib.util.spec_from_file_location("sitecheck_null_study", path)
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    return mod
+
+
+def test_harmonised_table_of_the_issue_example_hides_the_site(tmp_path):
+    # Issue 14's example: no site effect, four sites (40/30/20/10%), 3,000 rows; age, sodium and
+    # haemoglobin as integers, potassium and temperature to one decimal. Reference probe: plain
+    # scikit-learn HistGradientBoostingClassifier, 5-fold stratified out-of-fold macro one-vs-rest
+    # AUC (sklearn.metrics.roc_auc_score). Before values were returned to the grid, the table
+    # written by `sitecheck harmonise --method combat --protect age` gave 0.999.
+    ns = _null_study()
+    frame = ns.example_table(0)
+    src = tmp_path / "example.csv"
+    frame.to_csv(src, index=False)
+    assert abs(ns.plain_probe_auc(frame) - 0.5) < 0.03
+    out = tmp_path / "h.csv"
+    r = _cli(["harmonise", str(src), "--site", "hospital", "--method", "combat", "--protect", "age",
+              "--out", str(out), "-q"])
+    assert r.exit_code == 0, r.output
+    h = pd.read_csv(out)
+    assert ns.plain_probe_auc(h) <= 0.55
+    text = pd.read_csv(out, dtype=str)
+    assert text["sodium"].str.fullmatch(r"\d+").all() and text["potassium"].str.fullmatch(r"\d+\.\d").all()
+
+
+@pytest.fixture(scope="module")
+def null_runs(tmp_path_factory):
+    """20 small null tables (no site effect; integers, one and two decimals; symmetric and skewed;
+    2-4 sites of unequal size; case mix by site in half), each scanned (probe, fingerprints,
+    harmonisation check) and harmonised by the command with one method (in turn)."""
+    from sitecheck.cli.harmonise import run_harmonise
+    from sitecheck.analyses.fingerprints import find_fingerprints
+    from sitecheck.reading.intake import frame_to_raw
+    from sitecheck.table.prepare import prepare
+    from sitecheck.analyses.probe import site_probe
+    from sitecheck.table.roles import RoleSpec, assign_roles
+
+    ns = _null_study()
+    tmp = tmp_path_factory.mktemp("null")
+    runs = []
+    for seed in range(20):
+        frame, info = ns.null_table(1000 + seed, n_rows=400, n_sites=2 + seed % 3, n_labs=4, min_share=0.2)
+        covs = ["age"] if info["case_mix"] else []
+        prep = prepare(assign_roles(frame_to_raw(frame), RoleSpec(site="hospital", covariates=tuple(covs) or None)),
+                       random_state=0)
+        probe = site_probe(prep, n_boot=200, n_permutations=199, linear=False, case_mix=False, groups=False)
+        check = harmonisation_check(prep, n_boot=100, n_permutations=0)
+        method = METHODS[seed % 4]
+        src, dst = tmp / f"t{seed}.csv", tmp / f"h{seed}.csv"
+        frame.to_csv(src, index=False)
+        run_harmonise(str(src), site="hospital", method=method, protect=covs, out=str(dst), params_path=None,
+                      apply_path=None)
+        runs.append({"probe": probe, "findings": find_fingerprints(prep).findings, "check": check,
+                     "method": method, "written_auc": ns.plain_probe_auc(pd.read_csv(dst))})
+    return runs
+
+
+# Tolerance of the fast version (20 tables): a bound of at most 5-7% allows 2 tables of 20 (10%),
+# a bound of at least 93-95% asks for 18 of 20 (90%). With a true rate of 5%, two or more of 20 happen
+# by chance in 26% of runs and three or more in 8% (binomial), so one table beyond the issue's rates
+# is tolerated; the full study (tests/benchmarks/null_study.py, contributor guide) measures the rates.
+
+def test_null_tables_site_probe_is_calibrated(null_runs):
+    p_low = sum(r["probe"].p_value < 0.05 for r in null_runs)
+    covers = sum(r["probe"].auc_ci[0] <= 0.5 <= r["probe"].auc_ci[1] for r in null_runs)
+    assert p_low <= 2 and covers >= 18, (p_low, covers)
+
+
+def test_null_tables_have_no_fingerprints(null_runs):
+    assert sum(bool(r["findings"]) for r in null_runs) <= 2, [r["findings"] for r in null_runs if r["findings"]]
+
+
+@pytest.mark.parametrize("method", METHODS)
+def test_null_tables_reprobe_and_survivors_after_harmonisation(null_runs, method):
+    checks = [r["check"][method] for r in null_runs]
+    covers = sum(c.probe_auc_ci[0] <= 0.5 <= c.probe_auc_ci[1] for c in checks)
+    differing = sum(bool(c.surviving) for c in checks)
+    assert covers >= 18, [c.probe_auc_ci for c in checks]
+    assert differing <= 2, [c.surviving for c in checks if c.surviving]
+
+
+def test_null_tables_written_by_the_command_hide_the_site(null_runs):
+    # Reference probe: plain scikit-learn HistGradientBoostingClassifier (see plain_probe_auc).
+    aucs = [r["written_auc"] for r in null_runs]
+    assert sum(a <= 0.55 for a in aucs) >= 18, aucs
+    assert max(aucs) < 0.62, aucs

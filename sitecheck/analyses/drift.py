@@ -116,13 +116,7 @@ _AKP = 0.642
 _MAD = 0.6744897501960817
 
 
-def _r(x, digits: int = 6):
-    if x is None:
-        return None
-    x = float(x)
-    if not math.isfinite(x):
-        return None
-    return float(f"{x:.{digits}g}")
+from sitecheck.analyses.stats import round_sig as _r  # noqa: E402  (stable JSON rounding, shared)
 
 
 # ---------------------------------------------------------------------------------------- statistics

@@ -139,16 +139,7 @@ class FingerprintResult:
 
 
 
-def _r(x, digits: int = 6):
-    """Round for stable JSON (same data and seed -> same bytes across platforms)."""
-    if x is None:
-        return None
-    x = float(x)
-    if not math.isfinite(x):
-        return None
-    if x == 0:
-        return 0.0
-    return float(f"{x:.{digits}g}")
+from sitecheck.analyses.stats import round_sig as _r  # noqa: E402  (stable JSON rounding, shared)
 
 
 # ---------------------------------------------------------------------------

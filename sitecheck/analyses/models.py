@@ -23,7 +23,7 @@ def booster_max_bins(n_classes: int) -> int:
 
     HistGradientBoosting accepts a categorical feature with at most this many levels,
     so :func:`sitecheck.prepare.prepare` keeps at most this many per column (the most
-    frequent, the rest pooled into one level) and :func:`sitecheck.probe.cross_fit`
+    frequent, the rest pooled into one level) and :func:`sitecheck.analyses.probe.cross_fit`
     pools further for a model with fewer bins (a group probe with many levels).
     """
     return 63 if int(n_classes) > MANY_CLASSES else 255

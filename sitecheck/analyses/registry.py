@@ -8,7 +8,7 @@ an analysis, write its module, then add an :class:`Analysis` here.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any, Callable, Dict, List, Optional
+from typing import Any, Callable, Dict, List, Optional, Union
 
 
 @dataclass(frozen=True)
@@ -32,7 +32,9 @@ class Analysis:
     merge: Optional[Callable[[Any, Any], Any]] = None
     #: Order of the queue for the second process (higher first): the longest tasks go first,
     #: so that the short ones fill the gaps (longest-processing-time-first list scheduling).
-    priority: int = 0
+    #: A number, or a function of the prepared table estimating the analysis's seconds on one core
+    #: (:func:`estimated_seconds`), since which stage is longest depends on the table's shape.
+    priority: Union[float, Callable[[Any], float]] = 0
     #: The ``report.json`` sections this analysis fills (named in a failure record).
     fills: tuple = ()
     #: Analyses in ``needs`` whose failure does not stop this one: it runs without their
@@ -43,6 +45,10 @@ class Analysis:
     #: "repaired" (after the repair plan's safe entries, unless ScanOptions.repair is False:
     #: maps, harmonisation check, outcome) or "residual" (always the repaired values).
     on: str = "given"
+
+    def cost(self, prep) -> float:
+        """The queue key of this analysis for ``prep`` (:attr:`priority`)."""
+        return float(self.priority(prep) if callable(self.priority) else self.priority)
 
 
 @dataclass(frozen=True)
@@ -227,6 +233,37 @@ def _harmonise_applies(prep) -> bool:
     return any(k == "numeric" for k in prep.features.kinds) and prep.n_used >= 50
 
 
+#: Rows the maps use by default (``ScanOptions.map_rows``), for the estimates below.
+_MAP_ROWS = 10_000
+
+
+def estimated_seconds(name: str, prep) -> float:
+    """Seconds one core spends on an analysis of the second process's queue, estimated from the
+    table's shape; used only to order that queue (longest first), never reported.
+
+    Fitted by hand to stage costs measured with ``tests/benchmarks/bench_maps.py`` and ``run.py``
+    (2026-12-02, 2 cores): the maps (PCA, UMAP with cached kernels, mixing scores of three spaces)
+    6.9-8.3 CPU s and the t-SNE map 5.4-6.1 CPU s at 6,000-9,000 mapped rows, both growing with the
+    mapped rows only (capped); harmonisation 2.2 s (10,000 x 20, 4 sites), 14.8 s (10,000 x 200),
+    4.6 s (9,000 x 20, 30 sites), 18.4 s (100,000 x 50) and 10.3 s on the 6,000-row demo, whose
+    outcome adds five cross-fits to the four re-probes; it grows with the re-probed rows (capped at
+    50,000), the numeric features and the sites. The order these give: harmonisation first on the
+    demo and on wide or long tables, the two maps first on the 30-site table.
+    """
+    n = float(prep.n_used)
+    m = min(n, _MAP_ROWS)
+    if name == "maps":
+        return 1.5 + 0.75e-3 * m
+    if name == "maps_tsne":
+        return 3.0 + 0.33e-3 * m
+    if name == "harmonise":
+        p = sum(k == "numeric" for k in prep.features.kinds)
+        sites = len(prep.site_labels)
+        outcome = 6.0 if prep.outcome is not None else 1.0
+        return 0.3 + 4.3e-4 * min(n, 50_000) ** 0.65 * p ** 0.8 * (1 + 0.04 * sites) * outcome
+    return 0.0
+
+
 def _maps_applies(prep) -> bool:
     return prep.features.n_features > 0 and prep.n_used >= 50
 
@@ -245,13 +282,14 @@ REGISTRY: List[Analysis] = [
     Analysis("drift", _run_drift, applies=_drift_applies, sections=lambda result: {"drift": result},
              needs=("fingerprints",), fills=("drift",)),
     Analysis("maps", _run_maps, applies=_maps_applies, sections=lambda result: {"embedding": result}, on="repaired",
-             fills=("embedding",)),
-    # t-SNE is the longest single map (about 3/4 of the maps' time at 10,000 rows, measured):
-    # computed apart, it runs beside the probe while PCA and UMAP fill the other lane.
-    Analysis("maps_tsne", _run_tsne, applies=_maps_applies, part_of="maps", merge=_merge_maps, priority=2,
-             on="repaired", fills=("embedding",)),
+             priority=lambda prep: estimated_seconds("maps", prep), fills=("embedding",)),
+    # The t-SNE map, computed apart so that it and PCA/UMAP can run in different processes; the queue
+    # takes the longer of the maps and harmonisation first for the table's shape (estimated_seconds).
+    Analysis("maps_tsne", _run_tsne, applies=_maps_applies, part_of="maps", merge=_merge_maps, on="repaired",
+             priority=lambda prep: estimated_seconds("maps_tsne", prep), fills=("embedding",)),
     Analysis("harmonise", _run_harmonise, applies=_harmonise_applies,
-             sections=lambda result: {"harmonisation": result}, priority=1, on="repaired", fills=("harmonisation",)),
+             sections=lambda result: {"harmonisation": result}, on="repaired",
+             priority=lambda prep: estimated_seconds("harmonise", prep), fills=("harmonisation",)),
     Analysis("outcome", _run_outcome, applies=lambda prep: prep.outcome is not None,
              sections=lambda result: {"outcome": result}, needs=("leakage",), on="repaired", fills=("outcome",),
              falls_back_without=("leakage",)),

@@ -10,7 +10,7 @@ seed or a :class:`numpy.random.Generator`).
 """
 from __future__ import annotations
 
-from typing import List, Sequence, Tuple
+from typing import List, Optional, Sequence, Tuple
 
 import numpy as np
 from scipy import stats as _st
@@ -257,6 +257,26 @@ def wilson_ci(k, n, alpha: float = 0.05) -> Tuple[float, float]:
     centre = (p + z * z / (2 * n)) / den
     half = z * np.sqrt(p * (1 - p) / n + z * z / (4 * n * n)) / den
     return (float(max(0.0, centre - half)), float(min(1.0, centre + half)))
+
+
+def round_sig(x, digits: int = 6) -> Optional[float]:
+    """``x`` to ``digits`` significant figures for stable JSON (same data and seed -> same bytes across
+    platforms); None for missing or infinite values, 0.0 for -0.0.
+
+    Examples
+    --------
+    >>> from sitecheck.analyses.stats import round_sig
+    >>> round_sig(3.14159265, 3), round_sig(-0.0), round_sig(float("inf"))
+    (3.14, 0.0, None)
+    """
+    if x is None:
+        return None
+    x = float(x)
+    if not np.isfinite(x):
+        return None
+    if x == 0:
+        return 0.0
+    return float(f"{x:.{digits}g}")
 
 
 def bh_adjust(pvalues) -> np.ndarray:

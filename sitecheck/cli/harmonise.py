@@ -75,6 +75,43 @@ def _choose_columns(raw, site: str, protect: Sequence[str], identifiers: Sequenc
     return adjust, left
 
 
+def blocking_findings(raw, site: str, features: Sequence[str], *, identifiers: Sequence[str] = (),
+                      excluded: Sequence[str] = (), outcome: Optional[str] = None) -> list:
+    """Fingerprints of a blocking kind (:data:`sitecheck.harmonise.methods.BLOCKING_KINDS`) on the
+    columns about to be harmonised: a unit, a missing-value code, a censored limit or a
+    number format that differs by site. Empty when the table has fewer than two sites."""
+    from sitecheck.analyses.fingerprints import find_fingerprints
+    from sitecheck.harmonise.methods import BLOCKING_KINDS
+    from sitecheck.table.roles import RoleSpec, assign_roles
+
+    if raw.frame[site].dropna().nunique() < 2:
+        return []  # a batch from one site: nothing to compare it with
+    spec = RoleSpec(site=site, identifiers=tuple(identifiers) or None, excluded=tuple(excluded) or None,
+                    outcome=outcome)
+    table = assign_roles(raw, spec, min_site_rows=1)
+    wanted = set(features)
+    res = find_fingerprints(table, covariates=[])
+    return [f for f in res.findings if f.kind in BLOCKING_KINDS and f.feature in wanted]
+
+
+def _blocking_line(found: list) -> str:
+    parts = [f"{f.feature} ({f.kind} at {f.site})" for f in found[:4]]
+    more = f" and {len(found) - 4} more" if len(found) > 4 else ""
+    return ", ".join(parts) + more
+
+
+def _check_findings(raw, site, features, identifiers, excluded, outcome, despite: bool,
+                    warnings: List[str]) -> None:
+    found = blocking_findings(raw, site, features, identifiers=identifiers, excluded=excluded, outcome=outcome)
+    if not found:
+        return
+    if not despite:
+        raise InputError(f"not harmonised: {_blocking_line(found)} would be spread over every value of the site; "
+                         "repair them first (see `sitecheck scan`) or pass --despite-findings")
+    warnings.append(f"harmonised despite {len(found)} finding(s) that harmonisation cannot repair: "
+                    f"{_blocking_line(found)}")
+
+
 def _original_frame(path: str, fmt: str, sep: Optional[str], encoding: str) -> pd.DataFrame:
     """The input as stored (text cells verbatim for CSV/TSV), so unchanged columns are
     written back exactly as read (leading zeros, integers, missing-value codes)."""
@@ -119,10 +156,21 @@ def _same_file(a: str, b: str) -> bool:
 def run_harmonise(data: str, *, site: Optional[str], method: Optional[str], protect: Sequence[str], out: str,
                   params_path: Optional[str], apply_path: Optional[str], identifiers: Sequence[str] = (),
                   excluded: Sequence[str] = (), outcome: Optional[str] = None, sep: Optional[str] = None,
-                  encoding: str = "utf-8") -> Dict[str, object]:
-    """Library entry of the command; returns a summary dict (paths, counts, warnings)."""
-    from sitecheck.harmonise.methods import (HarmonisationFit, _prevalence_warning, apply_harmoniser, fit_harmoniser,
-                            protected_design)
+                  encoding: str = "utf-8", despite_findings: bool = False, seed: int = 0) -> Dict[str, object]:
+    """Library entry of the command; returns a summary dict (paths, counts, warnings).
+
+    Refuses (InputError) when a column to harmonise carries a blocking fingerprint
+    (:func:`blocking_findings`) unless ``despite_findings``; then it warns. Harmonised
+    values are written on each feature's common recording grid, with as many decimals
+    as the grid step needs, and kept inside the range recorded in the fitting rows
+    (:func:`sitecheck.harmonise.methods.clip_to_range`); the values moved to that range are
+    counted per feature (``clipped``) and reported in a warning. Right-skewed non-negative
+    features are fitted on the log scale, and each recorded value is read as a uniform draw
+    from its site's recording cell (seeded by ``seed``: the same table and seed give the same
+    output; see :func:`sitecheck.harmonise.methods.dither`).
+    """
+    from sitecheck.harmonise.methods import (HarmonisationFit, _prevalence_warning, apply_harmoniser,
+                                             clip_to_range, fit_harmoniser, grid_decimals, protected_design)
     from sitecheck.reading.intake import detect_format, read_table
 
     if _same_file(data, out):
@@ -161,8 +209,12 @@ def run_harmonise(data: str, *, site: Optional[str], method: Optional[str], prot
                 raise InputError(f"column {name!r} (in the parameters) is not in the table")
         has, codes = _site_codes(frame, site_col, fit.site_labels, fitted=True)
         X = _numeric_matrix(frame.loc[has], fit.features, raw)
+        adjusted_cols = [f for f, a in zip(fit.features, fit.adjusted) if a]
+        _check_findings(raw, site_col, adjusted_cols, identifiers, excluded, outcome, despite_findings,
+                        warnings)
         D, _ = protected_design(frame.loc[has], [s["name"] for s in fit.protect], spec=fit.protect)
-        Xh = apply_harmoniser(fit, X, codes, design=D)
+        Xh = apply_harmoniser(fit, X, codes, design=D, random_state=[int(seed), 2])
+        Xh, clipped = clip_to_range(fit, Xh)
         left = dict(doc.get("left_unchanged", {}))
         written_params = None
     else:
@@ -181,10 +233,12 @@ def run_harmonise(data: str, *, site: Optional[str], method: Optional[str], prot
             raise InputError(f"site column {site!r} has fewer than two sites")
         has, codes = _site_codes(frame, site, labels, fitted=False)
         X = _numeric_matrix(frame.loc[has], adjust, raw)
+        _check_findings(raw, site, adjust, identifiers, excluded, outcome, despite_findings, warnings)
         D, spec = protected_design(frame.loc[has], list(protect))
         fit = fit_harmoniser(X, codes, method=method, site_labels=labels, feature_names=adjust, design=D,
-                             protect_spec=spec)
-        Xh = apply_harmoniser(fit, X, codes, design=D)
+                             protect_spec=spec, log_skewed=True, random_state=[int(seed), 1])
+        Xh = apply_harmoniser(fit, X, codes, design=D, random_state=[int(seed), 2])
+        Xh, clipped = clip_to_range(fit, Xh)
         if outcome and outcome not in protect:
             y = pd.to_numeric(frame.loc[has, outcome], errors="coerce").to_numpy(dtype=float, na_value=np.nan)
             levels = np.unique(y[~np.isnan(y)])
@@ -206,6 +260,9 @@ def run_harmonise(data: str, *, site: Optional[str], method: Optional[str], prot
         out_frame = frame.copy()  # pragma: no cover - the two readers disagree; fall back to coerced values
     rows = np.flatnonzero(has)
     for j, name in enumerate(fit.features):
+        if not fit.adjusted[j]:
+            continue  # left unchanged: written back exactly as read
+        g = fit.grid[j]
         if raw.format == "parquet":
             col = frame[name].to_numpy(dtype=float, na_value=np.nan).copy()
             col[rows] = Xh[:, j]
@@ -213,8 +270,26 @@ def run_harmonise(data: str, *, site: Optional[str], method: Optional[str], prot
         else:
             col = out_frame[name].to_numpy(dtype=object).copy()
             vals = Xh[:, j]
-            col[rows] = np.array(["" if np.isnan(v) else repr(float(v)) for v in vals], dtype=object)
+            if np.isfinite(g):  # at the reported precision: as many decimals as the grid step needs
+                d = grid_decimals(float(g))
+                text = ["" if np.isnan(v) else f"{v + 0.0:.{d}f}" for v in vals]
+                text = [t[1:] if t.startswith("-") and float(t) == 0 else t for t in text]  # no "-0.0"
+            else:
+                text = ["" if np.isnan(v) else repr(float(v)) for v in vals]
+            col[rows] = np.array(text, dtype=object)
             out_frame[name] = col
+    moved = {name: (int(c[0]), int(c[1])) for name, c in zip(fit.features, clipped) if c.sum()}
+    if moved:
+        n_obs = (~np.isnan(Xh)).sum(axis=0)
+        parts = []
+        for j, name in enumerate(fit.features):
+            if name in moved:
+                lo_n, hi_n = moved[name]
+                what = " and ".join(w for w in (f"{lo_n} below {fit.lower[j]:g}" if lo_n else "",
+                                                f"{hi_n} above {fit.upper[j]:g}" if hi_n else "") if w)
+                parts.append(f"{name} {what} ({(lo_n + hi_n) / max(int(n_obs[j]), 1):.1%})")
+        warnings.append("harmonised values outside the range recorded in the fitting rows were set to its "
+                        "nearest end: " + "; ".join(parts))
     n_no_site = int((~has).sum())
     if n_no_site:
         warnings.append(f"{n_no_site} rows have no site value and were written unchanged")
@@ -222,7 +297,9 @@ def run_harmonise(data: str, *, site: Optional[str], method: Optional[str], prot
     written = _write_table(out_frame, out, raw.format, sep)
     return {"table": written, "params": written_params, "method": fit.method, "rows": int(has.sum()),
             "sites": len(fit.site_labels), "adjusted": [f for f, a in zip(fit.features, fit.adjusted) if a],
-            "unchanged": {**left, **unchanged}, "protected": [s["name"] for s in fit.protect], "warnings": warnings}
+            "unchanged": {**left, **unchanged}, "protected": [s["name"] for s in fit.protect], "warnings": warnings,
+            "grid": {f: float(g) for f, g, a in zip(fit.features, fit.grid, fit.adjusted) if a and np.isfinite(g)},
+            "clipped": moved}
 
 
 @click.command("harmonise", epilog=(
@@ -248,20 +325,29 @@ def run_harmonise(data: str, *, site: Optional[str], method: Optional[str], prot
 @click.option("--exclude", "excluded", multiple=True, metavar="COL", help="Column to leave unchanged (repeatable).")
 @click.option("--sep", metavar="CHAR", help="Field separator (default from the extension).")
 @click.option("--encoding", default="utf-8", show_default=True, help="Text encoding of CSV/TSV input.")
+@click.option("--despite-findings", is_flag=True,
+              help="Harmonise even when a column still carries a unit, missing-code, censoring or number-format "
+                   "finding (refused otherwise: such values are not the same quantity as the other sites').")
+@click.option("--seed", default=0, show_default=True, type=int,
+              help="Seed of the within-cell draws (each recorded value is read as a uniform draw from its "
+                   "recording cell before it is mapped and rounded back to the grid).")
 @click.option("--quiet", "-q", is_flag=True, help="No summary on stdout.")
 def harmonise_cmd(data, site, method, protect, out, params_path, apply_path, outcome, identifiers, excluded, sep,
-                  encoding, quiet):
+                  encoding, despite_findings, seed, quiet):
     """Harmonise the numeric feature columns of DATA across sites and write the table to --out.
 
     Numeric feature columns are adjusted; categorical and binary columns, identifiers, the site, the
     protected columns and the outcome are copied unchanged. Missing cells stay missing (written as
-    empty cells in CSV). Fitted parameters are written as JSON beside --out (or to --params) and can
+    empty cells in CSV). Harmonised values are rounded to each feature's common recording grid (the
+    coarsest step any site records in) and written at that precision; values beyond the range recorded
+    in the table are set to its nearest end, and how many is reported. A table whose columns still
+    carry a unit, missing-code, censoring or number-format finding is refused unless --despite-findings. Fitted parameters are written as JSON beside --out (or to --params) and can
     be applied to new rows of the same sites with --apply (fit on training rows, apply to test rows).
     Decision support for data work, not a clinical device; check the result with `sitecheck scan`.
     """
     res = run_harmonise(data, site=site, method=method, protect=protect, out=out, params_path=params_path,
                         apply_path=apply_path, identifiers=identifiers, excluded=excluded, outcome=outcome,
-                        sep=sep, encoding=encoding)
+                        sep=sep, encoding=encoding, despite_findings=despite_findings, seed=seed)
     for w in res["warnings"]:
         click.echo(f"sitecheck: warning: {w}", err=True)
     if not quiet:
@@ -269,4 +355,7 @@ def harmonise_cmd(data, site, method, protect, out, params_path, apply_path, out
         click.echo(f"{res['method']}: {len(res['adjusted'])} columns harmonised over {res['rows']} rows from "
                    f"{res['sites']} sites; protected: {', '.join(res['protected']) or 'none'}; "
                    f"left unchanged: {unchanged}")
+        grid = ", ".join(f"{k} {v:g}" for k, v in res["grid"].items())
+        if grid:
+            click.echo(f"written on each feature's common recording grid: {grid}")
         click.echo(f"table: {res['table']}" + (f"; parameters: {res['params']}" if res["params"] else ""))

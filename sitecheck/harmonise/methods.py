@@ -11,7 +11,9 @@ protected covariates ``D`` (rows x q, see :func:`protected_design`):
     shrinkage).
 ``quantile``
     Per-site quantile mapping of the covariate-adjusted residual onto the
-    pooled residual distribution.
+    pooled residual distribution: piecewise linear between the site's
+    quantiles, one knot per 20 fitting values of the site, from 1/(n+1) to
+    n/(n+1); beyond them values keep their distance to that end.
 ``combat``
     Parametric empirical-Bayes location/scale adjustment (ComBat), written
     here from the published equations of Johnson, Li & Rabinovic (2007).
@@ -24,6 +26,13 @@ pooled variance ``sigma_g^2 = mean(e^2)`` and the standardised data
 ``Z = (Y - alpha_g - D beta_g) / sigma_g``. Because the covariate part
 ``D beta_g`` is added back unchanged, the protected covariates' coefficients
 survive harmonisation.
+
+Harmonised values are put back on the feature's common recording grid
+(:func:`recording_grid`: the coarsest step any site records in, found with
+:func:`sitecheck.analyses.fingerprints.grid_step`) and kept inside the range of values
+recorded in the fitting rows (:func:`apply_harmoniser`). A site shifted by a
+fraction of the grid step would otherwise sit on its own offset grid, and that
+offset alone identifies the site to any classifier.
 
 Missing cells are left missing; every estimate uses the observed cells of its
 feature only. Columns flagged categorical (or binary) are left unchanged and
@@ -56,6 +65,15 @@ import pandas as pd
 from sitecheck.errors import InputError, ParameterError
 
 METHODS = ("centre", "scale", "quantile", "combat")
+
+#: Fingerprint kinds that make harmonisation unsafe until the values are repaired: the values
+#: of one site are not the same quantity as the others' (another unit, a code standing for
+#: "missing", a censored limit standing for an unknown value below or above it, a number
+#: written in another format), so a per-site location/scale or quantile map would spread the
+#: error over every value of that site. ``censored_below``, ``censored_above`` and
+#: ``number_format`` are the names the censoring and number-format detectors use (issue 17);
+#: a kind no detector produces yet simply never matches.
+BLOCKING_KINDS = ("unit_ratio", "missing_code", "censored_below", "censored_above", "number_format")
 
 #: Version tag written into saved parameter files.
 PARAMS_FORMAT = "sitecheck.harmonise/1"
@@ -429,17 +447,240 @@ def _quantile_grid(v: np.ndarray, probs: np.ndarray) -> Optional[np.ndarray]:
     return np.quantile(v, probs)
 
 
-def _map_quantiles(v: np.ndarray, site_q: np.ndarray, pooled_q: np.ndarray, probs: np.ndarray) -> np.ndarray:
-    """F_site(v) by interpolation in the site's grid (ties share their mid probability),
-    then the pooled quantile function at that probability."""
-    u, inv = np.unique(site_q, return_inverse=True)
-    pm = np.bincount(inv, weights=probs) / np.bincount(inv)
-    if len(u) == 1:
-        prob = np.full(v.shape, 0.5)
+#: Fewest fitting values of a site per interval of its quantile map (our own choice, measured on
+#: null tables: with a knot every 1/200 of the distribution, the map of a site with 100 values
+#: copies that sample's noise onto every new row of the site, and a leak-free re-probe found
+#: AUC 0.54-0.57 on single rounded labs; with 20 values per interval, 0.50-0.52).
+QUANTILE_ROWS_PER_KNOT = 20
+
+
+def _map_quantiles(v: np.ndarray, site_q: np.ndarray, pooled_q: np.ndarray, probs: np.ndarray,
+                   n_site: Optional[int] = None) -> np.ndarray:
+    """Map a site's values onto the pooled distribution through their quantiles.
+
+    Without ``n_site``: F_site(v) by interpolation in the site's grid (ties share
+    their mid probability), then the pooled quantile function at that probability.
+
+    With ``n_site`` (the site's fitting values): a monotone piecewise-linear map
+    from the site's quantiles to the pooled quantiles at ``K + 1`` probabilities
+    evenly spaced from ``10/n`` to ``1 - 10/n``, ``K = n // 20``
+    (:data:`QUANTILE_ROWS_PER_KNOT`, at most the grid's own resolution; a site
+    with 20 values or fewer is shifted by its median); beyond the end knots a
+    value keeps its distance to the end (slope 1). A map with a
+    knot per 1/200 of the distribution copies a small site's sampling noise onto
+    its new rows, and stretches its extreme values to the pooled extremes (its
+    minimum became the pooled minimum): a site signal of the map's own making.
+    """
+    if n_site is None or n_site < 2:
+        u, inv = np.unique(site_q, return_inverse=True)
+        pm = np.bincount(inv, weights=probs) / np.bincount(inv)
+        prob = np.full(v.shape, 0.5) if len(u) == 1 else np.interp(v, u, pm)
+        out = np.interp(prob, probs, pooled_q)
+        return np.where(np.isnan(v), np.nan, out)
+    K = int(min(max(n_site // QUANTILE_ROWS_PER_KNOT, 1), len(probs) - 1))
+    # The end knots keep half an interval's values beyond them: extreme order statistics of a small site are
+    # too noisy to set the slope of the map's end pieces.
+    p_lo = min(0.5, 0.5 * QUANTILE_ROWS_PER_KNOT / n_site)
+    pk = np.linspace(p_lo, 1.0 - p_lo, K + 1) if p_lo < 0.5 else np.array([0.5])
+    sk = np.interp(pk, probs, site_q)
+    qk = np.interp(pk, probs, pooled_q)
+    # ties in the site's knots (a point mass): keep the first of each value, so the map stays a function
+    sk, first = np.unique(sk, return_index=True)
+    qk = qk[first]
+    if len(sk) == 1:
+        out = v - sk[0] + qk[0]
     else:
-        prob = np.interp(v, u, pm)
-    out = np.interp(prob, probs, pooled_q)
+        out = np.interp(v, sk, qk)
+        out = np.where(v < sk[0], qk[0] + (v - sk[0]), out)
+        out = np.where(v > sk[-1], qk[-1] + (v - sk[-1]), out)
     return np.where(np.isnan(v), np.nan, out)
+
+
+# ---------------------------------------------------------------------------
+# the recording grid
+# ---------------------------------------------------------------------------
+
+def recording_grid(x: np.ndarray, site: np.ndarray, n_sites: int, *, min_count: int = 10) -> Optional[float]:
+    """The feature's common recording grid: the coarsest step any site records in.
+
+    Each site's step is :func:`sitecheck.analyses.fingerprints.grid_step` of its
+    observed values (the coarsest of
+    :data:`sitecheck.analyses.fingerprints.GRID_STEPS` holding 98% of them), for sites
+    with at least ``min_count`` observed values. The common grid is the
+    coarsest of these steps, or, when the steps do not divide it (0.2 and
+    0.25), the finest candidate step that every site's step divides.
+
+    Returns None when no site records on a grid (continuous values, or finer
+    than 0.001): nothing to return to.
+
+    Why the coarsest: a harmonised value can hide its site only on a grid that
+    every site's values can reach. On a finer grid, the values of a coarser
+    site, moved by its own fractional shift, would still share one last digit.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> x = np.r_[np.arange(20) / 10, np.arange(20) / 2]   # steps of 0.1 and of 0.5
+    >>> recording_grid(x, np.repeat([0, 1], 20), 2)
+    0.5
+    """
+    x = np.asarray(x, dtype=float)
+    return common_step(site_steps(x[:, None], np.asarray(site), n_sites, min_count=min_count)[:, 0])
+
+
+def common_step(steps: Sequence[float]) -> Optional[float]:
+    """The common grid of per-site steps (NaN: none): the coarsest, or the finest
+    candidate step of :data:`sitecheck.analyses.fingerprints.GRID_STEPS` that every step divides."""
+    from sitecheck.analyses.fingerprints import GRID_STEPS
+
+    steps = [float(g) for g in steps if g is not None and np.isfinite(g)]
+    if not steps:
+        return None
+    G = max(steps)
+
+    def divides(g, G):
+        r = G / g
+        return abs(r - round(r)) < 1e-6
+
+    if all(divides(g, G) for g in steps):
+        return float(G)
+    for cand in GRID_STEPS:
+        if cand >= G and all(divides(g, cand) for g in steps):
+            return float(cand)
+    return None  # pragma: no cover - GRID_STEPS ends with 100, a multiple of every step
+
+
+def recording_grids(X: np.ndarray, site: np.ndarray, n_sites: int, *,
+                    skip: Optional[np.ndarray] = None) -> np.ndarray:
+    """:func:`recording_grid` of every column of ``X`` (NaN: none, or a column in ``skip``)."""
+    out = np.full(X.shape[1], np.nan)
+    for j in range(X.shape[1]):
+        if skip is not None and skip[j]:
+            continue
+        g = recording_grid(X[:, j], site, n_sites)
+        if g is not None:
+            out[j] = g
+    return out
+
+
+def site_steps(X: np.ndarray, site: np.ndarray, n_sites: int, *, min_count: int = 10) -> np.ndarray:
+    """Each site's own recording step per column (:func:`sitecheck.analyses.fingerprints.grid_step`),
+    shape (n_sites, p); NaN where a site has fewer than ``min_count`` values or none."""
+    from sitecheck.analyses.fingerprints import grid_step
+
+    out = np.full((n_sites, X.shape[1]), np.nan)
+    for j in range(X.shape[1]):
+        col = X[:, j]
+        for i in range(n_sites):
+            v = col[(site == i) & ~np.isnan(col)]
+            if len(v) >= min_count:
+                g = grid_step(v)
+                if g is not None:
+                    out[i, j] = g
+    return out
+
+
+def _mix64(z: np.ndarray) -> np.ndarray:
+    """SplitMix64's finaliser (Steele, Lea & Flood 2014), element-wise on uint64 (wrapping)."""
+    z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
+    z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
+    return z ^ (z >> np.uint64(31))
+
+
+def within_cell_uniforms(X: np.ndarray, site: np.ndarray, random_state) -> np.ndarray:
+    """One uniform number in [0, 1) per cell, a function of the seed, the row's values
+    (every column, and its site), the column, and which copy of an identical row it is.
+
+    A row gets the same numbers in any order or subset of the table (as long as it has
+    no identical copy before it): applying saved parameters to some rows again gives the
+    values they got when the whole table was harmonised. Identical rows are spread: the
+    k-th copy gets the k-th number. Rows are hashed with SplitMix64's finaliser over the
+    bits of their values; different rows give practically independent numbers.
+    """
+    key = np.random.SeedSequence(random_state).generate_state(1, np.uint64)[0]
+    X = np.asarray(X, dtype=float)
+    n, p = X.shape
+    bits = np.where(np.isnan(X), np.nan, X + 0.0).view(np.uint64)   # one NaN pattern, -0.0 as 0.0
+    with np.errstate(over="ignore"):
+        h = _mix64(np.full(n, key, dtype=np.uint64) ^ np.asarray(site, dtype=np.uint64))
+        for j in range(p):
+            h = _mix64(h ^ bits[:, j])
+        # Identical rows (same site, same values) are told apart by their occurrence: the k-th copy of a row
+        # gets the k-th number, so ties are spread while a row kept alone still gets its first number.
+        order = np.argsort(h, kind="stable")
+        hs = h[order]
+        start = np.r_[0, np.flatnonzero(hs[1:] != hs[:-1]) + 1]
+        occ_sorted = np.arange(n) - np.repeat(start, np.diff(np.r_[start, n]))
+        occ = np.empty(n, dtype=np.uint64)
+        occ[order] = occ_sorted.astype(np.uint64)
+        h = _mix64(h ^ _mix64(occ * np.uint64(0xD1B54A32D192ED03) + np.uint64(1)))
+        cols = (np.arange(1, p + 1, dtype=np.uint64) * np.uint64(0x9E3779B97F4A7C15))[None, :]
+        u = _mix64(h[:, None] ^ cols)
+    return (u >> np.uint64(11)).astype(np.float64) * (1.0 / 9007199254740992.0)
+
+
+def dither(X: np.ndarray, site: np.ndarray, steps: np.ndarray, random_state) -> np.ndarray:
+    """Read every recorded value as a uniform draw from its recording cell.
+
+    Adds ``(u - 1/2) x step`` to each cell, with ``step`` the recording step of
+    the row's site and column (``steps``, shape (n_sites, p); NaN: no noise)
+    and ``u`` from :func:`within_cell_uniforms` (a function of the seed and the
+    row's values: the same rows give the same values in any order or subset).
+
+    References
+    ----------
+    Machado, J. A. F. and Santos Silva, J. M. C. (2005). Quantiles for counts. JASA
+    100(472), 1226-1237 (adding uniform noise to discrete values, "jittering", so that
+    quantile methods for continuous data apply).
+    """
+    U = within_cell_uniforms(X, site, random_state) - 0.5
+    step = np.nan_to_num(np.asarray(steps, dtype=float)[site], nan=0.0)
+    return X + U * step
+
+
+def _log_offset(v: np.ndarray, step: Optional[float]) -> float:
+    """Offset ``c`` of the log scale for a right-skewed non-negative feature, else NaN.
+
+    The rule (our own cut-offs): every value >= 0, sample skewness above 1, and
+    ``log(x + c)`` less skewed than ``x`` in absolute value; ``c`` = 0 when
+    every value is positive, else the recording step (else the smallest
+    positive value).
+    """
+    from scipy.stats import skew
+
+    v = v[~np.isnan(v)]
+    if len(v) < 20 or v.min() < 0:
+        return float("nan")
+    sk = float(skew(v))
+    if not sk > 1.0:
+        return float("nan")
+    if v.min() > 0:
+        c = 0.0
+    elif step is not None and np.isfinite(step) and step > 0:
+        c = float(step)
+    else:
+        pos = v[v > 0]
+        if not len(pos):
+            return float("nan")
+        c = float(pos.min())
+    return c if abs(float(skew(np.log(v + c)))) < sk else float("nan")
+
+
+def grid_decimals(step: float) -> int:
+    """Decimals needed to write multiples of ``step`` exactly (0.25 -> 2, 0.5 -> 1, 5 -> 0)."""
+    for d in range(0, 10):
+        if abs(step * 10 ** d - round(step * 10 ** d)) < 1e-9 * max(1.0, step * 10 ** d):
+            return d
+    return 10  # pragma: no cover
+
+
+def snap_to_grid(x: np.ndarray, step: float) -> np.ndarray:
+    """Round to the nearest multiple of ``step`` (halves upwards), written with
+    :func:`grid_decimals` decimals so that 0.1 + 0.2 reads 0.3. NaN stays NaN."""
+    x = np.asarray(x, dtype=float)
+    # Halves go up rather than to the even multiple: half-to-even would send a site shifted
+    # by exactly half a step to the even multiples only, a grid of its own.
+    return np.round(np.floor(x / step + 0.5) * step, grid_decimals(step))
 
 
 # ---------------------------------------------------------------------------
@@ -487,6 +728,35 @@ class HarmonisationFit:
         Observed cells per site and feature in the fitting rows.
     combat : dict
         Priors and convergence of ComBat (empty for other methods).
+    grid : ndarray (p,)
+        Common recording grid of each feature (:func:`recording_grid`) that
+        harmonised values are rounded to; NaN: none (continuous values, an
+        unadjusted column, or a fit made with ``on_grid=False``).
+    lower, upper : ndarray (p,)
+        Smallest and largest value of each feature in the fitting rows (all
+        sites pooled): the range harmonised values are kept in.
+    site_grid : ndarray (n_sites, p)
+        Each site's own recording step (the cell :func:`dither` spreads a
+        value over); NaN: none.
+    log_offset : ndarray (p,)
+        ``c`` of the log scale ``log(x + c)`` the feature was fitted on; NaN:
+        fitted on its own scale.
+
+    Examples
+    --------
+    Parameters save as JSON and load again, so new rows from the same sites can be harmonised
+    alike (``sitecheck harmonise --apply``):
+
+    >>> import json
+    >>> import numpy as np
+    >>> from sitecheck import HarmonisationFit, apply_harmoniser, fit_harmoniser
+    >>> site = np.array([0, 0, 0, 1, 1, 1])
+    >>> X = np.array([[4.0], [5.0], [6.0], [8.0], [9.0], [10.0]])
+    >>> fit = fit_harmoniser(X, site, method="scale", site_labels=["Ashby", "Brill"])
+    >>> saved = json.dumps(fit.to_dict())
+    >>> again = HarmonisationFit.from_dict(json.loads(saved))
+    >>> again.method, bool(np.array_equal(apply_harmoniser(again, X, site), apply_harmoniser(fit, X, site)))
+    ('scale', True)
     """
 
     method: str
@@ -504,6 +774,19 @@ class HarmonisationFit:
     pooled_quantiles: Optional[np.ndarray]
     n: np.ndarray
     combat: Dict[str, Any] = field(default_factory=dict)
+    grid: Optional[np.ndarray] = None
+    lower: Optional[np.ndarray] = None
+    upper: Optional[np.ndarray] = None
+    site_grid: Optional[np.ndarray] = None
+    log_offset: Optional[np.ndarray] = None
+
+    def __post_init__(self):
+        p = len(self.features)
+        for name in ("grid", "lower", "upper", "log_offset"):
+            if getattr(self, name) is None:
+                object.__setattr__(self, name, np.full(p, np.nan))
+        if self.site_grid is None:
+            object.__setattr__(self, "site_grid", np.full((len(self.site_labels), p), np.nan))
 
     @property
     def n_sites(self) -> int:
@@ -526,6 +809,11 @@ class HarmonisationFit:
             "delta": _arr(self.delta),
             "n": [[int(x) for x in row] for row in self.n],
             "combat": self.combat,
+            "grid": _arr(self.grid),
+            "lower": _arr(self.lower),
+            "upper": _arr(self.upper),
+            "site_grid": _arr(self.site_grid),
+            "log_offset": _arr(self.log_offset),
         }
         if self.quantiles is not None:
             d["quantiles"] = [_arr(self.quantiles[i]) for i in range(self.n_sites)]
@@ -552,7 +840,13 @@ class HarmonisationFit:
                        protect=tuple(d["protect"]), alpha=_unarr(d["alpha"]), sigma=_unarr(d["sigma"]),
                        beta=beta, gamma=_unarr(d["gamma"]).reshape(-1, p), delta=_unarr(d["delta"]).reshape(-1, p),
                        quantiles=quant, pooled_quantiles=pooled,
-                       n=np.asarray(d["n"], dtype=np.int64).reshape(-1, p), combat=dict(d.get("combat", {})))
+                       n=np.asarray(d["n"], dtype=np.int64).reshape(-1, p), combat=dict(d.get("combat", {})),
+                       # files written before the grid and range were stored: neither is applied
+                       grid=_unarr(d["grid"]) if "grid" in d else None,
+                       lower=_unarr(d["lower"]) if "lower" in d else None,
+                       upper=_unarr(d["upper"]) if "upper" in d else None,
+                       site_grid=_unarr(d["site_grid"]).reshape(-1, p) if "site_grid" in d else None,
+                       log_offset=_unarr(d["log_offset"]) if "log_offset" in d else None)
         except InputError:
             raise
         except (KeyError, TypeError, ValueError, AttributeError) as exc:
@@ -583,7 +877,8 @@ def fit_harmoniser(X: np.ndarray, site: np.ndarray, *, method: str, site_labels:
                    feature_names: Optional[Sequence[str]] = None, design: Optional[np.ndarray] = None,
                    protect_spec: Sequence[dict] = (), categorical: Optional[np.ndarray] = None,
                    unchanged_reason: Optional[Dict[str, str]] = None, n_quantiles: int = 201,
-                   tol: float = 1e-4, max_iter: int = 1000) -> HarmonisationFit:
+                   tol: float = 1e-4, max_iter: int = 1000, on_grid: bool = True, log_skewed: bool = False,
+                   random_state=None) -> HarmonisationFit:
     """Fit one harmonisation method.
 
     Parameters
@@ -610,6 +905,22 @@ def fit_harmoniser(X: np.ndarray, site: np.ndarray, *, method: str, site_labels:
         Grid size of the ``quantile`` method.
     tol, max_iter
         Convergence of the ComBat iteration.
+    on_grid : bool, default True
+        Store each adjusted feature's common recording grid
+        (:func:`recording_grid` of the fitting rows), which
+        :func:`apply_harmoniser` rounds to. False: no grid (the published
+        equations' continuous output).
+    log_skewed : bool, default False
+        Fit right-skewed non-negative features on the log scale
+        (``log(x + c)``, rule in :func:`_log_offset`); :func:`apply_harmoniser`
+        transforms back. ``sitecheck harmonise`` and the scan's check set it:
+        a heavy right tail makes a site's standard deviation so noisy that
+        removing it on the raw scale moves the site's lowest values (a site
+        with no site effect loses its zeros).
+    random_state : None, int or Generator
+        With a seed, the fit reads each recorded value as a uniform draw from
+        its site's recording cell (:func:`dither`); None fits the values as
+        they are.
 
     Returns
     -------
@@ -620,6 +931,24 @@ def fit_harmoniser(X: np.ndarray, site: np.ndarray, *, method: str, site_labels:
     Johnson, W. E., Li, C. and Rabinovic, A. (2007). Adjusting batch effects
     in microarray expression data using empirical Bayes methods.
     Biostatistics 8(1), 118-127.
+
+    Examples
+    --------
+    Two sites whose sodium, reported in whole mmol/L, differs by about 4 mmol/L:
+
+    >>> import numpy as np
+    >>> from sitecheck import apply_harmoniser, fit_harmoniser
+    >>> rng = np.random.default_rng(0)
+    >>> site = np.repeat([0, 1], 200)
+    >>> X = np.round(rng.normal(140, 3, (400, 1)) + np.where(site == 1, 4, 0)[:, None])
+    >>> fit = fit_harmoniser(X, site, method="centre", site_labels=["Ashby", "Brill"],
+    ...                      feature_names=["sodium"])
+    >>> Y = apply_harmoniser(fit, X, site)
+    >>> gap = lambda M: M[site == 1, 0].mean() - M[site == 0, 0].mean()
+    >>> round(float(gap(X)), 1), abs(float(gap(Y))) < 0.5   # the gap is gone ...
+    (3.7, True)
+    >>> float(fit.grid[0]), bool(np.all(Y == np.round(Y)))  # ... and values stay whole mmol/L
+    (1.0, True)
     """
     if method not in METHODS:
         raise ParameterError(f"method must be one of {', '.join(METHODS)}, got {method!r}")
@@ -639,6 +968,30 @@ def fit_harmoniser(X: np.ndarray, site: np.ndarray, *, method: str, site_labels:
     if D.shape[1]:
         check_confounding(site, D, k, owners=_design_owner(protect_spec) if protect_spec else None)
     num = np.flatnonzero(~cat)
+    # The recording grid, each site's step, the recorded range and the log scale, from the raw values.
+    grid = np.full(p, np.nan)
+    lower = np.full(p, np.nan)
+    upper = np.full(p, np.nan)
+    log_offset = np.full(p, np.nan)
+    steps = np.full((k, p), np.nan)
+    if len(num):
+        steps[:, num] = site_steps(X[:, num], site, k)
+    for j in num:
+        v = X[:, j]
+        ok = ~np.isnan(v)
+        if not ok.any():
+            continue
+        lower[j], upper[j] = float(v[ok].min()), float(v[ok].max())
+        g = common_step(steps[:, j])
+        if on_grid and g is not None:
+            grid[j] = g
+        if log_skewed:
+            log_offset[j] = _log_offset(v, g)
+    if not on_grid:
+        steps[:] = np.nan
+    if random_state is not None:
+        X = dither(X, site, steps, random_state)
+    X = _to_working(X, log_offset, lower)
     st = standardise_fit(X[:, num], site, D, k) if len(num) else None
     alpha = np.full(p, np.nan)
     sigma = np.full(p, np.nan)
@@ -691,14 +1044,80 @@ def fit_harmoniser(X: np.ndarray, site: np.ndarray, *, method: str, site_labels:
                     g = _quantile_grid(R[site == i, jj], probs)
                     if g is not None:
                         quant[i, :, j] = g
+    off = ~np.asarray(adjusted, dtype=bool)
+    grid[off], lower[off], upper[off], log_offset[off] = np.nan, np.nan, np.nan, np.nan
+    steps[:, off] = np.nan
     return HarmonisationFit(method=method, features=names, adjusted=tuple(bool(a) for a in adjusted),
                             unchanged=unchanged, site_labels=tuple(str(s) for s in site_labels),
                             protect=tuple(protect_spec), alpha=alpha, sigma=sigma, beta=beta, gamma=gamma,
-                            delta=delta, quantiles=quant, pooled_quantiles=pooled, n=counts, combat=combat_info)
+                            delta=delta, quantiles=quant, pooled_quantiles=pooled, n=counts, combat=combat_info,
+                            grid=grid, lower=lower, upper=upper, site_grid=steps, log_offset=log_offset)
+
+
+def _to_working(X: np.ndarray, log_offset: np.ndarray, lower: np.ndarray) -> np.ndarray:
+    """``log(x + c)`` in the columns with a log offset (values kept above half the lowest recorded
+    ``x + c``, so a dithered zero stays in the domain); other columns as they are."""
+    cols = np.flatnonzero(np.isfinite(log_offset))
+    if not len(cols):
+        return X
+    X = np.array(X, dtype=float, copy=True)
+    for j in cols:
+        c = float(log_offset[j])
+        floor = 0.5 * (float(lower[j]) + c) if np.isfinite(lower[j]) and lower[j] + c > 0 else 1e-12
+        X[:, j] = np.log(np.maximum(X[:, j] + c, floor))
+    return X
+
+
+def _from_working(X: np.ndarray, log_offset: np.ndarray) -> np.ndarray:
+    cols = np.flatnonzero(np.isfinite(log_offset))
+    if not len(cols):
+        return X
+    X = np.array(X, dtype=float, copy=True)
+    for j in cols:
+        X[:, j] = np.exp(X[:, j]) - float(log_offset[j])
+    return X
+
+
+def clip_to_range(fit: HarmonisationFit, X: np.ndarray) -> Tuple[np.ndarray, np.ndarray]:
+    """Keep harmonised values inside the range recorded in the fitting rows.
+
+    A value below the smallest (above the largest) value recorded for the
+    feature at any site in the fitting rows is set to that value (moved
+    inwards to the feature's grid, when it has one). Such values are
+    extrapolations: a per-site shift or stretch can carry a site's extreme
+    values past anything recorded, e.g. below zero for a concentration.
+
+    Returns
+    -------
+    X : ndarray
+        A new matrix.
+    counts : ndarray (p, 2) of int
+        Values raised to the lower end and lowered to the upper end, per
+        feature.
+    """
+    X = np.array(X, dtype=float, copy=True)
+    p = X.shape[1]
+    counts = np.zeros((p, 2), dtype=np.int64)
+    for j in range(p):
+        lo, hi, g = fit.lower[j], fit.upper[j], fit.grid[j]
+        if not (np.isfinite(lo) and np.isfinite(hi)):
+            continue
+        if np.isfinite(g):
+            d = grid_decimals(g)
+            lo2, hi2 = round(math.ceil(lo / g - 1e-9) * g, d), round(math.floor(hi / g + 1e-9) * g, d)
+            if lo2 <= hi2:
+                lo, hi = lo2, hi2
+        v = X[:, j]
+        below, above = v < lo, v > hi
+        counts[j] = (int(below.sum()), int(above.sum()))
+        v[below] = lo
+        v[above] = hi
+    return X, counts
 
 
 def apply_harmoniser(fit: HarmonisationFit, X: np.ndarray, site: np.ndarray, *,
-                     design: Optional[np.ndarray] = None) -> np.ndarray:
+                     design: Optional[np.ndarray] = None, on_grid: bool = True,
+                     clip: bool = False, random_state=None) -> np.ndarray:
     """Apply a fitted harmonisation to rows of known sites.
 
     ``centre``/``scale``/``combat``: ``Y* = sigma / delta_i (Z - gamma_i) +
@@ -708,16 +1127,80 @@ def apply_harmoniser(fit: HarmonisationFit, X: np.ndarray, site: np.ndarray, *,
     Missing cells stay missing; unadjusted columns are copied. A site with no
     observed value of a feature when fitting keeps its values unchanged.
 
+    Then, for every adjusted feature, the values are rounded to the fit's
+    common recording grid (``fit.grid``, see :func:`recording_grid`; with
+    ``on_grid``, default True) and, with ``clip`` (default False), kept inside
+    the range recorded in the fitting rows (:func:`clip_to_range`, which
+    counts the values it moves: ``sitecheck harmonise`` and the scan's check
+    clip and say how many). Without either, the published equations alone.
+
+    With ``random_state``, each recorded value is first read as a uniform draw
+    from its site's recording cell (:func:`dither`): rounding a per-site map
+    of tied values back to the grid would otherwise leave each site its own
+    pattern of merged and skipped grid values. Features fitted on the log
+    scale (``log_skewed``) are transformed there and back.
+
+    Parameters
+    ----------
+    fit : HarmonisationFit
+        From :func:`fit_harmoniser` (or :meth:`HarmonisationFit.from_dict` of saved parameters).
+    X : ndarray (n_rows, p)
+        The same columns as the fit, in the same order (NaN = missing).
+    site : ndarray of int
+        Site codes indexing ``fit.site_labels``.
+    design : ndarray (n_rows, q), optional
+        The protected covariates, encoded as when fitting (required when the fit has any).
+    on_grid : bool, default True
+        Round adjusted features to the fit's common recording grid.
+    clip : bool, default False
+        Keep values inside the range recorded in the fitting rows.
+    random_state : None, int or Generator
+        Within-cell draws before mapping (see above); None maps the values as they are.
+
     Returns
     -------
     ndarray (n_rows, p)
         A new matrix; the input is not modified.
+
+    References
+    ----------
+    Johnson, W. E., Li, C. and Rabinovic, A. (2007). Adjusting batch effects
+    in microarray expression data using empirical Bayes methods.
+    Biostatistics 8(1), 118-127.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from sitecheck import apply_harmoniser, fit_harmoniser
+    >>> site = np.array([0, 0, 0, 1, 1, 1])
+    >>> X = np.array([[4.0], [5.0], [6.0], [8.0], [9.0], [10.0]])
+    >>> fit = fit_harmoniser(X, site, method="centre", site_labels=["Ashby", "Brill"])
+    >>> apply_harmoniser(fit, X, site).ravel().tolist()
+    [6.0, 7.0, 8.0, 6.0, 7.0, 8.0]
     """
     X, site, D = _check_inputs(X, site, design, fit.n_sites)
     if X.shape[1] != len(fit.features):
         raise ParameterError(f"X has {X.shape[1]} columns; the fit has {len(fit.features)}")
     if D.shape[1] != fit.beta.shape[0]:
         raise ParameterError(f"the protected design has {D.shape[1]} columns; the fit has {fit.beta.shape[0]}")
+    W = X
+    if random_state is not None:
+        W = dither(W, site, fit.site_grid, random_state)
+    W = _to_working(W, fit.log_offset, fit.lower)
+    out = _from_working(_apply_equations(fit, W, site, D), fit.log_offset)
+    adj = np.flatnonzero(np.asarray(fit.adjusted, dtype=bool))
+    keep = np.setdiff1d(np.arange(X.shape[1]), adj)
+    out[:, keep] = X[:, keep]
+    if on_grid:
+        for j in adj:
+            if np.isfinite(fit.grid[j]):
+                out[:, j] = snap_to_grid(out[:, j], float(fit.grid[j]))
+    if clip:
+        out = clip_to_range(fit, out)[0]
+    return out
+
+
+def _apply_equations(fit: HarmonisationFit, X: np.ndarray, site: np.ndarray, D: np.ndarray) -> np.ndarray:
     out = X.copy()
     adj = np.flatnonzero(np.asarray(fit.adjusted, dtype=bool))
     if not len(adj):
@@ -733,7 +1216,8 @@ def apply_harmoniser(fit: HarmonisationFit, X: np.ndarray, site: np.ndarray, *,
                 if not r.any() or fit.n[i, j] == 0 or np.isnan(fit.quantiles[i, 0, j]):
                     continue
                 res[r, jj] = _map_quantiles(R[r, jj], fit.quantiles[i, :, j], fit.pooled_quantiles[:, j],
-                                            np.linspace(0.0, 1.0, fit.quantiles.shape[1])) + cov[r, jj]
+                                            np.linspace(0.0, 1.0, fit.quantiles.shape[1]),
+                                            n_site=int(fit.n[i, j])) + cov[r, jj]
         out[:, adj] = res
         return out
     res = X[:, adj]
@@ -749,12 +1233,26 @@ def apply_harmoniser(fit: HarmonisationFit, X: np.ndarray, site: np.ndarray, *,
     return out
 
 
-def harmonise(X: np.ndarray, site: np.ndarray, *, method: str, site_labels: Sequence[str],
-              **kwargs) -> Tuple[np.ndarray, HarmonisationFit]:
-    """Fit and apply in one call: ``(harmonised X, fit)`` (see :func:`fit_harmoniser`)."""
+def harmonise(X: np.ndarray, site: np.ndarray, *, method: str, site_labels: Sequence[str], clip: bool = False,
+              random_state=None, **kwargs) -> Tuple[np.ndarray, HarmonisationFit]:
+    """Fit and apply in one call: ``(harmonised X, fit)`` (see :func:`fit_harmoniser`;
+    ``clip`` as in :func:`apply_harmoniser`; with ``random_state`` the fit and the
+    application each dither from their own stream of that seed)."""
     design = kwargs.get("design")
-    fit = fit_harmoniser(X, site, method=method, site_labels=site_labels, **kwargs)
-    return apply_harmoniser(fit, X, site, design=design), fit
+    rs_fit = rs_apply = None
+    if random_state is not None:
+        rs_fit, rs_apply = _streams(random_state)
+    fit = fit_harmoniser(X, site, method=method, site_labels=site_labels, random_state=rs_fit, **kwargs)
+    return apply_harmoniser(fit, X, site, design=design, clip=clip, random_state=rs_apply), fit
+
+
+def _streams(random_state) -> Tuple[Any, Any]:
+    """Two independent seeds (fit, apply) from an int, a sequence of ints or a Generator."""
+    if isinstance(random_state, np.random.Generator):
+        a, b = random_state.integers(0, 2**62, size=2)
+        return int(a), int(b)
+    base = list(np.atleast_1d(random_state).astype(np.int64))
+    return base + [1], base + [2]
 
 
 # ---------------------------------------------------------------------------
@@ -781,7 +1279,8 @@ class SurvivingGap:
         statistic among those whose raw values show a specific cause, else
         the site that differs most.
     statistic : float
-        Kolmogorov-Smirnov D of that site against the rest (numeric), the
+        Kolmogorov-Smirnov D of that site against the rest beyond what the
+        recording grid explains (:func:`grid_ks_distance`; numeric), the
         difference in missing share (missingness) or Cramer's V (categorical).
     p_value, p_adj : float
         Feature p-value and its Benjamini-Hochberg adjustment over the
@@ -804,12 +1303,46 @@ class SurvivingGap:
                 "site": self.site, "statistic": self.statistic, "detail": self.detail, "n": self.n}
 
 
-def _ks_one_vs_rest(v: np.ndarray, site: np.ndarray, k: int, min_rows: int) -> Tuple[np.ndarray, float]:
-    """One-vs-rest two-sample KS D of every site (NaN when untested) and the
-    smallest p-value, Bonferroni-adjusted over the sites tested."""
+def grid_ks_distance(a: np.ndarray, b: np.ndarray, step: Optional[float]) -> float:
+    """Kolmogorov-Smirnov distance left once the recording grid has explained what it can.
+
+    ``max(sup_x F_a(x) - F_b(x + step), sup_x F_b(x) - F_a(x + step), 0)``:
+    each recorded value stands for any value within half a step of it, so
+    two samples whose distribution functions are less than one step apart
+    everywhere can come from one distribution. With ``step`` None or 0 this
+    is the two-sample KS statistic (:func:`scipy.stats.ks_2samp`).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> a = np.array([1.0, 2.0, 3.0]); b = a + 0.5          # half a step apart on a grid of 1
+    >>> grid_ks_distance(a, b, 1.0), round(grid_ks_distance(a, b, None), 3)
+    (0.0, 0.333)
+    """
+    a = np.sort(np.asarray(a, dtype=float))
+    b = np.sort(np.asarray(b, dtype=float))
+    if len(a) == 0 or len(b) == 0:
+        return float("nan")
+    g = float(step) if step is not None and np.isfinite(step) and step > 0 else 0.0
+    eps = 1e-9 * max(1.0, float(np.abs(a).max()), float(np.abs(b).max())) + 1e-6 * g
+    d = 0.0
+    for x, y in ((a, b), (b, a)):
+        u = np.unique(x)
+        fx = np.searchsorted(x, u, side="right") / len(x)
+        fy = np.searchsorted(y, u + g + (eps if g else 0.0), side="right") / len(y)
+        d = max(d, float((fx - fy).max()))
+    return max(d, 0.0)
+
+
+def _ks_one_vs_rest(v: np.ndarray, site: np.ndarray, k: int, min_rows: int,
+                    step: Optional[float] = None) -> Tuple[np.ndarray, float, np.ndarray]:
+    """One-vs-rest two-sample KS D of every site (NaN when untested), the
+    smallest p-value, Bonferroni-adjusted over the sites tested, and the
+    distance the grid cannot explain (:func:`grid_ks_distance`) per site."""
     from scipy.stats import ks_2samp
 
     D = np.full(k, np.nan)
+    Dg = np.full(k, np.nan)
     best_p, tested = 1.0, 0
     ok = ~np.isnan(v)
     for i in range(k):
@@ -820,32 +1353,49 @@ def _ks_one_vs_rest(v: np.ndarray, site: np.ndarray, k: int, min_rows: int) -> T
         tested += 1
         res = ks_2samp(a, b, method="asymp")
         D[i] = float(res.statistic)
+        Dg[i] = grid_ks_distance(a, b, step) if step else D[i]
         best_p = min(best_p, float(res.pvalue))
     if tested == 0:
-        return D, float("nan")
-    return D, min(1.0, best_p * tested)
+        return D, float("nan"), Dg
+    return D, min(1.0, best_p * tested), Dg
+
+
+def _fisher_p(a: int, b: int, c: int, d: int) -> float:
+    """Two-sided Fisher exact p-value of the 2 x 2 table [[a, b], [c, d]] (scipy.stats.fisher_exact)."""
+    from scipy.stats import fisher_exact
+
+    return float(fisher_exact([[a, b], [c, d]], alternative="two-sided").pvalue)
 
 
 def _missing_test(v: np.ndarray, site: np.ndarray, k: int) -> Tuple[float, float, int]:
-    """Chi-square test of missing x site; largest |missing share - rest| and its site."""
-    from scipy.stats import chi2_contingency
+    """Missing share of each site against the rest: the smallest two-sided Fisher
+    exact p-value, Bonferroni-adjusted over the sites, and the site with the
+    largest |missing share - rest| with that difference.
 
+    Fisher's exact test rather than the chi-square test of the site x missing
+    table: small sites with a handful of missing cells have expected counts far
+    below 5, where the chi-square p-value is much too small (measured on null
+    tables with 25-row sites).
+    """
     miss = np.isnan(v)
     if not miss.any():
         return 1.0, 0.0, -1
-    n = np.bincount(site, minlength=k).astype(float)
-    m = np.bincount(site, weights=miss, minlength=k)
-    keep = n > 0
-    tab = np.column_stack([m[keep], n[keep] - m[keep]])
-    tab = tab[:, tab.sum(axis=0) > 0]
-    if tab.shape[1] < 2 or tab.shape[0] < 2:
+    n = np.bincount(site, minlength=k).astype(np.int64)
+    m = np.bincount(site, weights=miss, minlength=k).round().astype(np.int64)
+    N, M = int(n.sum()), int(m.sum())
+    best, tested = 1.0, 0
+    for i in range(k):
+        if n[i] == 0 or n[i] == N:
+            continue
+        tested += 1
+        best = min(best, _fisher_p(int(m[i]), int(n[i] - m[i]), M - int(m[i]), N - M - int(n[i] - m[i])))
+    if tested == 0:
         return 1.0, 0.0, -1
-    p = float(chi2_contingency(tab, correction=False).pvalue)
     share = np.where(n > 0, m / np.maximum(n, 1), np.nan)
-    rest = np.array([(m.sum() - m[i]) / max(n.sum() - n[i], 1) for i in range(k)])
+    rest = np.array([(M - m[i]) / max(N - n[i], 1) for i in range(k)])
     diff = np.abs(share - rest)
     i = int(np.nanargmax(diff))
-    return p, float(diff[i]), i
+    return min(1.0, best * tested), float(diff[i]), i
 
 
 def _point_mass_test(v: np.ndarray, site: np.ndarray, k: int, min_rows: int) -> Tuple[float, float, int, str]:
@@ -853,37 +1403,38 @@ def _point_mass_test(v: np.ndarray, site: np.ndarray, k: int, min_rows: int) -> 
 
     For each site and each extreme value ``e`` of its raw values: the share of
     the site's values equal to ``e`` against the rest's share at ``e``
-    (chi-square test of the 2 x 2 table), considered when the site's share is
-    at least 5% and three times the rest's (our own cut-offs). Returns the
-    smallest p-value (Bonferroni over the candidates), the share difference,
-    the site and a detail text; p = NaN without a candidate. A detection limit
-    loses the information below it, which no harmonisation restores, even
-    when a method spreads the tied values so that the distributions match.
+    (two-sided Fisher exact test of the 2 x 2 table), considered when at least
+    ``min_rows`` of the site's values sit at ``e``, the site's share is at
+    least 5% and three times the rest's (our own cut-offs). Returns the
+    smallest p-value, Bonferroni-adjusted over every site and extreme examined
+    (not only those that pass the cut-offs, which are chosen after looking),
+    the share difference, the site and a detail text; p = NaN without a
+    candidate. A detection limit loses the information below it, which no
+    harmonisation restores, even when a method spreads the tied values so that
+    the distributions match. On rounded values a small site's largest value is
+    often tied a few times by chance: hence the count at ``e``.
     """
-    from scipy.stats import chi2_contingency
-
     ok = ~np.isnan(v)
     best = (float("nan"), 0.0, -1, "")
-    cands = 0
+    examined = 0
     for i in range(k):
         a = v[ok & (site == i)]
         b = v[ok & (site != i)]
         if len(a) < min_rows or len(b) < min_rows:
             continue
         for side, e in (("floor", a.min()), ("ceiling", a.max())):
+            examined += 1
             ca, cb = int((a == e).sum()), int((b == e).sum())
             sa, sb = ca / len(a), cb / len(b)
-            if sa < 0.05 or sa < 3 * sb:
+            if ca < min_rows or sa < 0.05 or sa < 3 * sb:
                 continue
-            cands += 1
-            tab = np.array([[ca, len(a) - ca], [cb, len(b) - cb]], dtype=float)
-            pval = float(chi2_contingency(tab, correction=False).pvalue) if (tab.sum(axis=0) > 0).all() else 1.0
+            pval = _fisher_p(ca, len(a) - ca, cb, len(b) - cb)
             if not np.isfinite(best[0]) or pval < best[0]:
                 best = (pval, sa - sb, i, f"{sa:.0%} of the site's values sit at its {side} {e:g} "
                         f"(other sites: {sb:.0%} at that value)")
-    if cands == 0:
+    if not np.isfinite(best[0]):
         return best
-    return (min(1.0, best[0] * cands),) + best[1:]
+    return (min(1.0, best[0] * examined),) + best[1:]
 
 
 def _grain(x: np.ndarray) -> float:
@@ -952,13 +1503,15 @@ def diagnose(a: np.ndarray, b: np.ndarray) -> Tuple[str, str]:
 def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, names: Sequence[str],
                    site_labels: Sequence[str], categorical: Optional[np.ndarray] = None,
                    alpha: float = 0.05, min_effect: float = 0.05, min_rows: int = 10,
-                   case_mix: Optional[np.ndarray] = None) -> Tuple[Tuple[SurvivingGap, ...], int]:
+                   case_mix: Optional[np.ndarray] = None,
+                   grid: Optional[Sequence[float]] = None) -> Tuple[Tuple[SurvivingGap, ...], int]:
     """Features whose site gap survives harmonisation, with a reason.
 
     Numeric features: the two-sample Kolmogorov-Smirnov test of each site
     against the rest on the harmonised values (asymptotic p-values,
-    Bonferroni over sites), combined with a chi-square test of missingness by
-    site and a test for a point mass at one site's extreme in the raw values
+    Bonferroni over sites), combined with a test of missingness by site
+    (Fisher's exact test, each site against the rest, Bonferroni over sites)
+    and a test for a point mass at one site's extreme in the raw values
     (a detection limit, see :func:`_point_mass_test`), Bonferroni over the
     tests made; categorical features (left unchanged): a
     chi-square test of the site x level table. The feature p-values are
@@ -966,6 +1519,17 @@ def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, n
     when ``p_adj < alpha`` and its effect reaches ``min_effect`` (KS D,
     difference in missing share, or Cramer's V), so that trivial differences
     in very large tables are not listed.
+
+    The recording grid: a gap between harmonised values survives only when it
+    is larger than what the feature's recording grid explains. Its effect is
+    then not the KS D but :func:`grid_ks_distance` with the feature's common
+    grid step ``G`` (``grid``, default :func:`recording_grid` of the raw
+    values): the part of the gap between the distribution functions that
+    remains after one of them is moved by up to one step ``G`` in the
+    direction that closes it. Every recorded value stands for anything within
+    half a step of it, so sites whose values differ by a fraction of the step
+    (a per-site offset grid, a shift smaller than the rounding) do not survive.
+    For continuous values (no grid) this is the KS D.
 
     ``case_mix`` (rows x features), the protected covariates' part of each
     harmonised value (``D beta``), lets a gap be attributed to case mix: when
@@ -990,6 +1554,10 @@ def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, n
     k = len(site_labels)
     p = X_raw.shape[1]
     cat = np.zeros(p, dtype=bool) if categorical is None else np.asarray(categorical, dtype=bool)
+    if grid is None:
+        steps = [None if cat[j] else recording_grid(X_raw[:, j], site, k) for j in range(p)]
+    else:
+        steps = [None if g is None or not np.isfinite(g) else float(g) for g in grid]
     rows: List[Tuple[int, float, float, str, str, int]] = []  # j, p, effect, reason, detail, site
     for j in range(p):
         v = X_harm[:, j]
@@ -1007,7 +1575,7 @@ def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, n
             rows.append((j, float(res.pvalue), V, "categorical, left unchanged",
                          f"Cramer's V {V:.2f} across sites", worst))
             continue
-        D_sites, p_ks = _ks_one_vs_rest(v, site, k, min_rows)
+        _, p_ks, D_sites = _ks_one_vs_rest(v, site, k, min_rows, steps[j])
         p_m, diff_m, i_m = _missing_test(X_raw[:, j], site, k)
         if not np.isfinite(p_ks) and i_m < 0:
             continue
@@ -1038,7 +1606,7 @@ def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, n
                 pick = (reason, detail, int(i))
                 break
         if pick is None and case_mix is not None and case_mix[:, j].any():
-            D_res, p_res = _ks_one_vs_rest(v - case_mix[:, j], site, k, min_rows)
+            _, p_res, D_res = _ks_one_vs_rest(v - case_mix[:, j], site, k, min_rows)
             if np.isfinite(p_res) and (p_res >= alpha or np.nanmax(D_res) < min_effect):
                 pick = ("case mix (protected)", "the gap disappears once the protected columns' effect is "
                         "removed: a difference in case mix, kept on purpose", int(order[0]))
@@ -1094,6 +1662,9 @@ class MethodCheck:
     unchanged : dict
         Feature -> why it was left unchanged.
     warnings : tuple of str
+    grid : dict
+        Feature -> the common recording grid step its harmonised values were
+        rounded to (features without a grid are not listed).
     """
 
     method: str
@@ -1116,6 +1687,7 @@ class MethodCheck:
     outcome_protected: bool = False
     #: the smallest p-value the probe's permutation test could give
     probe_p_value_floor: Optional[float] = None
+    grid: Dict[str, float] = field(default_factory=dict)
 
     def to_dict(self) -> dict:
         return {
@@ -1137,6 +1709,8 @@ class MethodCheck:
             "protected": list(self.protected),
             "unchanged": dict(self.unchanged),
             "warnings": list(self.warnings),
+            "reprobe": "fitted within each training fold, applied to the held-out rows",
+            "grid": dict(self.grid),
         }
 
 
@@ -1221,14 +1795,15 @@ def outcome_auc_cv(X: np.ndarray, y: np.ndarray, site: np.ndarray, cat: np.ndarr
         for f, (tr, te) in enumerate(folds):
             Xtr, Xte = X[tr], X[te]
             if method is not None:
+                stream = [int(seed), RNG_STREAM, METHODS.index(method), f, 7]
                 fit = fit_harmoniser(Xtr, site[tr], method=method, site_labels=site_labels, feature_names=names,
                                      design=D[tr], protect_spec=protect_spec, categorical=leave,
-                                     unchanged_reason=reasons)
+                                     unchanged_reason=reasons, log_skewed=True, random_state=stream + [1])
                 Dte = D[te].copy()
                 for c in outcome_cols:
                     Dte[:, c] = D[tr, c].mean()
-                Xtr = apply_harmoniser(fit, Xtr, site[tr], design=D[tr])
-                Xte = apply_harmoniser(fit, Xte, site[te], design=Dte)
+                Xtr = apply_harmoniser(fit, Xtr, site[tr], design=D[tr], clip=True, random_state=stream + [2])
+                Xte = apply_harmoniser(fit, Xte, site[te], design=Dte, clip=True, random_state=stream + [3])
             est = _estimator(model, cat, 2, len(tr), random_state=seed + 1000 * f)
             fit_classifier(est, Xtr, y[tr])
             proba = est.predict_proba(Xte)
@@ -1238,15 +1813,70 @@ def outcome_auc_cv(X: np.ndarray, y: np.ndarray, site: np.ndarray, cat: np.ndarr
     return float(auc), (float(ci[0]), float(ci[1])), int(len(y))
 
 
+def site_reprobe_cv(X: np.ndarray, site: np.ndarray, cat: np.ndarray, folds, *, method: str, seed: int,
+                    n_boot: int, n_permutations: int, model: str = "boosting", site_labels: Sequence[str] = (),
+                    design: Optional[np.ndarray] = None, protect_spec: Sequence[dict] = (),
+                    leave: Optional[np.ndarray] = None, reasons: Optional[Dict[str, str]] = None,
+                    names: Optional[Sequence[str]] = None):
+    """The site probe on harmonised features, leak-free.
+
+    In each fold the harmonisation (``method``, grid and range included) is
+    fitted on the training rows only and applied to the training and the
+    held-out rows; the probe's model (the factory of :mod:`sitecheck.analyses.models`
+    through :mod:`sitecheck.analyses.probe`, same seeds as the scan's probe) is fitted
+    on the harmonised training rows and scores the held-out rows. No scored
+    row shaped the harmonisation that was applied to it. The out-of-fold
+    probabilities are scored as the scan's probe is
+    (:func:`sitecheck.analyses.probe.score_crossfit`: macro one-vs-rest AUC, bootstrap
+    interval, fold-permutation p-value).
+
+    Returns
+    -------
+    ProbeScore
+    """
+    from threadpoolctl import threadpool_limits
+
+    from sitecheck.analyses.probe import CrossFit, _estimator, _threads, score_crossfit
+
+    site = np.asarray(site).astype(np.int64)
+    k = len(site_labels)
+    proba = np.full((len(site), k), np.nan)
+    D = np.zeros((len(site), 0)) if design is None else design
+    fitted = []
+    n_iter = []
+    with threadpool_limits(limits=_threads(len(site))):
+        for f, (tr, te) in enumerate(folds):
+            stream = [int(seed), RNG_STREAM, METHODS.index(method), f]
+            fit = fit_harmoniser(X[tr], site[tr], method=method, site_labels=site_labels, feature_names=names,
+                                 design=D[tr], protect_spec=protect_spec, categorical=leave,
+                                 unchanged_reason=reasons, log_skewed=True, random_state=stream + [1])
+            Xtr = apply_harmoniser(fit, X[tr], site[tr], design=D[tr], clip=True, random_state=stream + [2])
+            Xte = apply_harmoniser(fit, X[te], site[te], design=D[te], clip=True, random_state=stream + [3])
+            est = _estimator(model, cat, k, len(tr), random_state=seed + 1000 * f)
+            est.fit(Xtr, site[tr])
+            block = np.zeros((len(te), k))
+            block[:, np.asarray(est.classes_, dtype=np.int64)] = est.predict_proba(Xte)
+            proba[te] = block
+            fitted.append(est)
+            if model == "boosting":
+                n_iter.append(int(est.n_iter_))
+    cf = CrossFit(proba=proba, models=tuple(fitted), folds=tuple(folds), classes=np.arange(k), model=model,
+                  n_iter=tuple(n_iter))
+    return score_crossfit(site, cf, n_boot=n_boot, n_permutations=n_permutations,
+                          random_state=np.random.default_rng([int(seed), 77]))
+
+
 def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Optional[Sequence[str]] = None,
                         random_state: Optional[int] = None, n_boot: int = 200, n_permutations: int = 199,
                         model: str = "boosting", n_splits: int = 3, probe_rows: int = 50_000,
                         alpha: float = 0.05, min_effect: float = 0.05) -> HarmonisationCheck:
     """Harmonise the scan's features with each method and check what is left.
 
-    For each method, on the scan's modelling rows: the site probe again
-    (:func:`sitecheck.analyses.probe.probe_matrix` on the harmonised features, the
-    scan's folds), the features whose gap survives (:func:`surviving_gaps`),
+    For each method, on the scan's modelling rows: the site probe again,
+    leak-free (:func:`site_reprobe_cv`: the harmonisation is fitted within
+    each training fold and applied to the held-out fold), the features whose
+    gap survives (:func:`surviving_gaps` on every row harmonised as the user
+    would, with the grid rule),
     and the outcome's cross-validated AUC from the features before and after
     harmonisation on the same folds (over-correction shows as a drop).
 
@@ -1277,11 +1907,13 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
 
     Notes
     -----
-    The outcome AUC after harmonisation is leak-free: the harmonisation is
-    fitted within each training fold and the held-out rows are harmonised
-    without their outcome (see :func:`outcome_auc_cv`), so protecting the
-    outcome cannot inflate it. The site re-probe uses the harmonisation
-    fitted on every row, as the user would apply it. Binary and categorical features are left
+    Both re-probes are leak-free: the harmonisation is fitted within each
+    training fold and applied to the held-out rows, which never shape it. For
+    the outcome AUC the held-out rows are also harmonised without their
+    outcome (see :func:`outcome_auc_cv`), so protecting the outcome cannot
+    inflate it. Harmonised values are rounded to each feature's common
+    recording grid and kept in the recorded range (:func:`apply_harmoniser`),
+    as ``sitecheck harmonise`` writes them. Binary and categorical features are left
     unchanged. A protected column that is confounded with site is dropped
     from the protection, with a warning.
 
@@ -1290,7 +1922,7 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
     Johnson, W. E., Li, C. and Rabinovic, A. (2007). Biostatistics 8(1), 118-127.
     """
     from sitecheck.table.prepare import stratified_subsample
-    from sitecheck.analyses.probe import make_folds, probe_matrix
+    from sitecheck.analyses.probe import make_folds
 
     if not isinstance(n_splits, (int, np.integer)) or n_splits < 2:
         raise ParameterError(f"n_splits must be an integer of at least 2, got {n_splits!r}")
@@ -1351,15 +1983,19 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
     results = []
     for method in methods:
         Xh, fit = harmonise(X, prep.site, method=method, site_labels=prep.site_labels, feature_names=names,
-                            design=D, protect_spec=spec, categorical=leave, unchanged_reason=reasons)
-        Xs = Xh[sub]
-        score = probe_matrix(Xs, site_sub, cat, folds, random_state=seed, n_boot=n_boot,
-                             n_permutations=n_permutations, model=model)
+                            design=D, protect_spec=spec, categorical=leave, unchanged_reason=reasons, clip=True,
+                            log_skewed=True, random_state=[seed, RNG_STREAM, METHODS.index(method), 99])
+        score = site_reprobe_cv(X[sub], site_sub, cat, folds, method=method, seed=seed, n_boot=n_boot,
+                                n_permutations=n_permutations, model=model, site_labels=prep.site_labels,
+                                design=D_sub, protect_spec=spec, leave=leave, reasons=reasons, names=names)
         case_mix = (D @ fit.beta) if D.shape[1] else None
         if case_mix is not None:
             case_mix[:, ~np.asarray(fit.adjusted, dtype=bool)] = 0.0
         gaps, n_tested = surviving_gaps(X, Xh, prep.site, names=names, site_labels=prep.site_labels,
-                                        categorical=leave, alpha=alpha, min_effect=min_effect, case_mix=case_mix)
+                                        categorical=leave, alpha=alpha, min_effect=min_effect, case_mix=case_mix,
+                                        grid=np.where(np.asarray(fit.adjusted, dtype=bool), fit.grid,
+                                                      recording_grids(X, prep.site, k,
+                                                                      skip=leave | np.asarray(fit.adjusted))))
         after = None
         if before is not None:
             o = out_ok
@@ -1378,5 +2014,6 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
             outcome_auc_after_ci=None if after is None else after[1],
             outcome_n=0 if out_ok is None or before is None else int(out_ok.sum()), protected=tuple(protect),
             unchanged=dict(fit.unchanged), warnings=tuple(warnings), model=model, n_splits=len(folds),
-            outcome_protected=bool(table.outcome and table.outcome in protect)))
+            outcome_protected=bool(table.outcome and table.outcome in protect),
+            grid={n: float(g) for n, g in zip(names, fit.grid) if np.isfinite(g)}))
     return HarmonisationCheck(methods=tuple(results))
