@@ -495,7 +495,7 @@ def test_scan_reprobe_is_fitted_within_training_folds():
     from sitecheck.analyses.probe import make_folds, probe_matrix
 
     rng = np.random.default_rng(24)
-    n = 900
+    n = 2400   # 800 rows a site: a quantile map of 40 intervals, fine enough to fit each site's sample
     site = np.repeat(np.arange(3), n // 3)
     X = rng.normal(size=(n, 4))
     folds = make_folds(site, 3, random_state=0)
