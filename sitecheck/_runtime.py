@@ -37,6 +37,8 @@ STREAMS = {
     "harmonise.outcome_ci": 78,         # harmonisation check: outcome AUC interval
     "leakage.permutations": 4242,       # leak ranking: permutation repeats
     "leakage.cluster_rows": 4243,       # leak ranking: rows for the Spearman clusters
+    "residual.bootstrap": 1717,         # repair loop: paired bootstrap of the probe before and after repair
+    "drift.probe": 19,                  # drift: period probe subsample and halves, one sub-stream per site
 }
 
 #: Integer seeds for estimators: name -> (offset, stride); seed + offset + stride * index.

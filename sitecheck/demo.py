@@ -51,7 +51,23 @@ def _effects() -> List[dict]:
          "detail": "missing values coded as -99"},
         {"feature": "albumin", "site": "Duskwater", "kind": "site_missing",
          "detail": "never measured at this site"},
+        {"feature": "troponin", "site": "Aldermoor", "kind": "censored_below",
+         "detail": "values below 5 ng/L written as '<5' in the export"},
+        {"feature": "potassium", "site": "Cindervale", "kind": "number_format",
+         "detail": "written with a decimal comma ('4,2')"},
     ]
+
+
+#: The arrival dates cover two years, drawn uniformly.
+DEMO_START, DEMO_DAYS = "2025-01-01", 730
+
+
+def _recalibration() -> dict:
+    """The one change over time: an analyser recalibration at one site in the second year (month 16
+    of 24). About 0.33 SD from its month on, so about 0.12 SD over the whole period: under the
+    fingerprints' 0.2, so that only the drift analysis sees it."""
+    return {"feature": "potassium", "site": "Aldermoor", "kind": "recalibration", "from": "2026-04-01",
+            "offset": 0.15, "detail": "analyser recalibrated: potassium reads 0.15 mmol/L higher from 2026-04-01"}
 
 
 def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> DemoData:
@@ -70,9 +86,23 @@ def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> D
     -------
     DemoData
         ``frame`` has columns ``attendance_id`` (site-prefixed code),
-        ``hospital``, ``arrival_date``, ``age``, ``sex``, ``arrival_mode``,
-        vital signs, a blood panel and ``admitted_hdu``; ``truth`` lists the
-        injected effects (empty for the null variant).
+        ``hospital``, ``arrival_date`` (two years from 2025-01-01), ``age``,
+        ``sex``, ``arrival_mode``, vital signs, a blood panel and
+        ``admitted_hdu``; ``truth`` lists the injected effects and, under
+        ``drift``, the one change over time (both empty for the null variant).
+        Two columns are written as laboratory exports write them: ``troponin`` at
+        Aldermoor as ``<5`` below the detection limit, ``potassium`` at Cindervale
+        with a decimal comma; they are text (object) columns, read as numbers by
+        :mod:`sitecheck.reading.intake`.
+
+    Examples
+    --------
+    >>> from sitecheck import generate_demo
+    >>> demo = generate_demo(1200, seed=7)
+    >>> demo.frame.shape[0], sorted(demo.frame["hospital"].unique())
+    (1200, ['Aldermoor', 'Brackenholt', 'Cindervale', 'Duskwater'])
+    >>> sorted({e["kind"] for e in demo.truth["effects"]})[:3]
+    ['censored_below', 'floor', 'missing_code']
     """
     if n_rows < 80:
         raise ValueError("n_rows must be at least 80")
@@ -108,7 +138,8 @@ def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> D
     wbc = np.round(np.exp(rng.normal(np.log(8.2), 0.32, n) + 0.18 * sev), 1)
     plt_ = np.round(np.clip(rng.normal(255, 65, n), 20, 900))
     sodium = np.round(rng.normal(138.5, 3.0, n) - 0.8 * np.maximum(sev, 0))
-    potassium = np.round(rng.normal(4.2, 0.45, n), 1)
+    potassium_exact = rng.normal(4.2, 0.45, n)
+    potassium = np.round(potassium_exact, 1)
     creat = np.round(np.exp(rng.normal(np.log(78), 0.28, n) + 0.006 * (age - 55) + 0.12 * male + 0.1 * np.maximum(sev, 0)))
     urea = np.round(np.exp(rng.normal(np.log(5.8), 0.35, n) + 0.008 * (age - 55) + 0.1 * np.maximum(sev, 0)), 1)
     glucose = np.round(np.exp(rng.normal(np.log(6.0), 0.22, n) + 0.06 * sev), 1)
@@ -151,8 +182,22 @@ def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> D
         albumin[d] = np.nan
 
     order = rng.permutation(n)
-    start = pd.Timestamp("2025-01-01")
-    days = rng.integers(0, 365, n)
+    start = pd.Timestamp(DEMO_START)
+    days = rng.integers(0, DEMO_DAYS, n)
+    if not null:  # drawn last, so every other column is the same with or without it
+        r = _recalibration()
+        after = is_[r["site"]] & (start + pd.to_timedelta(days, unit="D") >= pd.Timestamp(r["from"]))
+        potassium[after] = np.round(potassium_exact[after] + r["offset"], 1)  # the analyser reads higher, then rounds
+    # export idioms: written into the cells as text after the recalibration (no random draw,
+    # so every value above is unchanged)
+    trop_out = trop.astype(object)
+    potassium_out = potassium.astype(object)
+    if not null:
+        a, c = is_["Aldermoor"], is_["Cindervale"]
+        low = a & (trop < 5)
+        trop_out[low] = "<5"
+        potassium_out[c] = [f"{v:.1f}".replace(".", ",") for v in potassium[c]]
+
     ids = np.array([f"{PREFIX[s]}-{100000 + i:06d}" for i, s in enumerate(site)], dtype=object)
     frame = pd.DataFrame({
         "attendance_id": ids,
@@ -171,7 +216,7 @@ def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> D
         "wbc": wbc,
         "platelets": plt_.astype(int),
         "sodium": sodium.astype(int),
-        "potassium": potassium,
+        "potassium": potassium_out,
         "creatinine": creat.astype(int),
         "urea": urea,
         "glucose": glucose,
@@ -179,7 +224,7 @@ def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> D
         "albumin": albumin,
         "bilirubin": bili,
         "lactate": lactate,
-        "troponin": trop,
+        "troponin": trop_out,
         "admitted_hdu": outcome,
     }).iloc[order].reset_index(drop=True)
 
@@ -198,6 +243,9 @@ def generate_demo(n_rows: int = 6000, *, seed: int = 7, null: bool = False) -> D
                                       "detail": "patients about 8 years older on average"}],
         "outcome_prevalence": {"varies_by_site": not null,
                                "baseline_logit": base, "observed": prevalence},
+        "time_column": "arrival_date",
+        "period": {"first": DEMO_START, "last": f"{start + pd.Timedelta(days=DEMO_DAYS - 1):%Y-%m-%d}"},
+        "drift": [] if null else [_recalibration()],
     }
     return DemoData(frame=frame, truth=truth)
 
@@ -221,4 +269,4 @@ def write_demo(out_dir: str, *, n_rows: int = 6000, seed: int = 7) -> Dict[str, 
 
 #: Settings for the scan the ``demo`` command runs.
 DEMO_ROLES = {"site": "hospital", "outcome": "admitted_hdu", "covariates": ("age", "sex"),
-              "identifiers": ("attendance_id",)}
+              "identifiers": ("attendance_id",), "time": "arrival_date"}

@@ -14,6 +14,15 @@ class InputError(ValueError):
         The setting the user can change to fix it (a :class:`~sitecheck.scan.ScanOptions`
         field or reading option such as ``"encoding"``, ``"sep"``, ``"min_site_rows"``);
         the command line names the matching flag.
+
+    Examples
+    --------
+    >>> from sitecheck import InputError
+    >>> try:
+    ...     raise InputError("column 'crp' not found in the table", option="site")
+    ... except InputError as exc:
+    ...     print(exc, "|", exc.option)
+    column 'crp' not found in the table | site
     """
 
     def __init__(self, message: str, *, option: "str | None" = None):

@@ -17,7 +17,7 @@ import pandas as pd
 from sitecheck import __version__
 from sitecheck._runtime import SINGLE_THREAD_BELOW, thread_limit
 from sitecheck.reading.config import RunConfig, resolve_config
-from .errors import InputError
+from sitecheck.errors import InputError
 from sitecheck.reading.intake import RawTable, frame_to_raw, read_table
 from sitecheck.table.prepare import Prepared, prepare
 from sitecheck.report.result import ScanResult
@@ -51,6 +51,30 @@ class ScanOptions:
     n_jobs : int, default 2
         2 runs the independent analyses in a second process (tables up to 200,000
         rows); 1 runs everything in turn in this process.
+    repair : bool, default True
+        The maps, the harmonisation check and the outcome analysis read the values
+        after the repair plan's safe entries (:mod:`sitecheck.table.repair`); False keeps
+        the values as given. The probe, the leak ranking and the fingerprints always
+        read the values as given; the residual probe always the repaired ones.
+    censor_policy : str, optional
+        Policy of the plan's censoring entries (:data:`sitecheck.table.repair.CENSOR_POLICIES`);
+        default after Hornung & Reed (1990).
+    n_boot : int or None
+        Bootstrap resamples of every interval (None: each analysis's own default,
+        500 for the probe and the outcome analysis, 200 for the harmonisation
+        re-probe). Fewer make a quicker, coarser scan (at least 50).
+    n_permutations : int or None
+        Label permutations of every permutation p-value (None: each analysis's own
+        default, 999 for the probe, 199 for the harmonisation re-probe; at least 19).
+    harmonise_methods : tuple of str or None
+        Harmonisation methods checked (None: all of ``sitecheck.harmonise.methods.METHODS``).
+
+    Examples
+    --------
+    >>> from sitecheck import ScanOptions
+    >>> options = ScanOptions(seed=3, folds=3, analyses=("probe", "leakage"))
+    >>> options.folds, options.wants("maps")
+    (3, False)
     """
 
     seed: int = 0
@@ -64,6 +88,32 @@ class ScanOptions:
     threshold: Optional[float] = None
     analyses: Optional[tuple] = None
     n_jobs: int = 2
+    repair: bool = True
+    censor_policy: Optional[str] = None
+    n_boot: Optional[int] = None
+    n_permutations: Optional[int] = None
+    harmonise_methods: Optional[tuple] = None
+
+    def __post_init__(self):
+        for name, low in (("n_boot", 50), ("n_permutations", 19)):
+            v = getattr(self, name)
+            if v is not None and (isinstance(v, bool) or not isinstance(v, (int, np.integer)) or v < low):
+                raise InputError(f"{name} must be an integer of at least {low} (or None), got {v!r}")
+        if self.harmonise_methods is not None:
+            from sitecheck.harmonise.methods import METHODS
+
+            bad = [m for m in self.harmonise_methods if m not in METHODS]
+            if bad or not self.harmonise_methods:
+                raise InputError(f"harmonise_methods must name some of {', '.join(METHODS)}, got "
+                                 f"{self.harmonise_methods!r}")
+
+    def resampling(self, **defaults) -> Dict[str, int]:
+        """``n_boot``/``n_permutations`` for one analysis: the option when set, else its default."""
+        out = {}
+        for key, value in defaults.items():
+            mine = getattr(self, key)
+            out[key] = int(value if mine is None else mine)
+        return out
 
     def wants(self, name: str) -> bool:
         return self.analyses is None or name in self.analyses
@@ -73,7 +123,7 @@ def _versions() -> Dict[str, str]:
     import importlib.metadata as md
 
     out = {"sitecheck": __version__, "python": platform.python_version()}
-    for pkg in ("numpy", "pandas", "scikit-learn", "scipy", "umap-learn", "matplotlib", "pyarrow"):
+    for pkg in ("numpy", "pandas", "scikit-learn", "scipy", "umap-learn", "openTSNE", "matplotlib", "pyarrow"):
         try:
             out[pkg] = md.version(pkg)
         except md.PackageNotFoundError:  # pragma: no cover
@@ -81,28 +131,67 @@ def _versions() -> Dict[str, str]:
     return out
 
 
-def _run_specs(prep: Prepared, options: ScanOptions, names, objects: Dict[str, Any],
-               say: Progress, timings: Dict[str, float], threads: Optional[int] = 1) -> Dict[str, Any]:
+def _prep_for(preps, spec) -> Prepared:
+    """The prepared table an analysis reads (``Analysis.on``)."""
+    if isinstance(preps, dict):
+        return preps.get(spec.on, preps["given"])
+    return preps
+
+
+def debug_enabled() -> bool:
+    """True when ``SITECHECK_DEBUG`` is set (not empty or "0"): analysis errors are raised, not isolated."""
+    import os
+
+    return os.environ.get("SITECHECK_DEBUG", "") not in ("", "0")
+
+
+def _run_specs(preps, options: ScanOptions, names, objects: Dict[str, Any],
+               say: Progress, timings: Dict[str, float], threads: Optional[int] = 1,
+               failures: Optional[Dict[str, Any]] = None, process: str = "main") -> Dict[str, Any]:
     """Run the named analyses in turn with native thread pools limited to ``threads``
-    (None: no limit); fill ``objects``."""
+    (None: no limit); fill ``objects``. ``preps`` is one Prepared or {"given", "repaired",
+    "residual"}: each analysis reads the one its ``on`` names.
+
+    An analysis that raises anything but an :class:`~sitecheck.errors.InputError` (bad input the
+    user can fix, which stops the scan) is recorded in ``failures`` as an
+    :class:`~sitecheck.analyses.registry.AnalysisFailure` and the next one runs; an analysis that
+    needs a failed one is recorded as not run. With ``SITECHECK_DEBUG`` set the exception is raised.
+    """
     from sitecheck.analyses import registry as analyses
 
+    failures = failures if failures is not None else {}
     for spec in analyses.REGISTRY:
         if spec.name not in names:
             continue
+        blocked = [d for d in spec.needs if d in failures and d not in spec.falls_back_without]
+        if blocked:
+            failures[spec.name] = analyses.AnalysisFailure.blocked(spec, blocked[0], process=process)
+            say(f"{spec.name}: not run ({blocked[0]} failed)")
+            continue
         say(f"{spec.name}...")
         t0 = time.perf_counter()
-        with thread_limit(threads):
-            objects[spec.name] = spec.run(prep, options, objects)
+        try:
+            with thread_limit(threads):
+                objects[spec.name] = spec.run(_prep_for(preps, spec), options, objects)
+        except InputError:
+            raise
+        except Exception as exc:  # one analysis's fault never loses the others' results
+            if debug_enabled():
+                raise
+            failures[spec.name] = analyses.AnalysisFailure.from_exception(spec, exc, process=process)
+            objects.pop(spec.name, None)
+            say(f"{spec.name}: failed ({type(exc).__name__})")
         timings[spec.name] = round(time.perf_counter() - t0, 3)
     return objects
 
 
 def _side_lane(prep: Prepared, options: ScanOptions, names) -> tuple:
-    """Entry point of the second process: run ``names``; return (results, timings)."""
+    """Entry point of the second process: run ``names``; return (results, timings, failures)."""
     timings: Dict[str, float] = {}
-    objects = _run_specs(prep, options, set(names), {}, lambda msg: None, timings)
-    return objects, timings
+    failures: Dict[str, Any] = {}
+    objects = _run_specs(prep, options, set(names), {}, lambda msg: None, timings, failures=failures,
+                         process="second")
+    return objects, timings, failures
 
 
 #: Above this many rows the scan runs in one process (a second one would copy the table).
@@ -110,7 +199,8 @@ PARALLEL_MAX_ROWS = SINGLE_THREAD_BELOW
 
 
 def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Progress] = None,
-                 timings: Optional[Dict[str, float]] = None) -> Dict[str, Any]:
+                 timings: Optional[Dict[str, float]] = None, repaired: Optional[Prepared] = None,
+                 done: Optional[Dict[str, Any]] = None, failed: Optional[Dict[str, Any]] = None) -> Dict[str, Any]:
     """Run the registered analyses on a prepared table; return {"sections", "objects"}.
 
     With ``options.n_jobs > 1`` (and at most :data:`PARALLEL_MAX_ROWS` rows) the
@@ -122,6 +212,13 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
     thread pools and its own seeded generators, so the results are the same whatever
     the schedule; parts are merged (``Analysis.part_of``) and sections assembled in
     registry order.
+
+    ``repaired`` is the table after the repair plan's safe entries: analyses with
+    ``on="repaired"`` read it when ``options.repair`` (else the values as given), those
+    with ``on="residual"`` always. ``done`` holds results computed before (the
+    fingerprints, from which the plan was built; the plan itself as ``"repair"``); ``failed``
+    the failures recorded before (:class:`~sitecheck.analyses.registry.AnalysisFailure` by name).
+    The result's ``"failures"`` lists every failed or not-run analysis in registry order.
     """
     import multiprocessing as mp
 
@@ -134,11 +231,18 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
                            "put the script's scan under `if __name__ == \"__main__\":`")
     say = progress or (lambda msg: None)
     timings = timings if timings is not None else {}
-    todo = [a for a in analyses.REGISTRY if options.wants(a.part_of or a.name) and a.applies(prep)]
-    names = {a.name for a in todo}
+    done = dict(done or {})
+    failures: Dict[str, Any] = dict(failed or {})
+    preps = {"given": prep, "repaired": repaired if (repaired is not None and options.repair) else prep,
+             "residual": repaired if repaired is not None else prep}
+    todo = [a for a in analyses.REGISTRY if options.wants(a.part_of or a.name) and a.applies(_prep_for(preps, a))
+            and (a.on != "residual" or repaired is not None)]
+    names = {a.name for a in todo} - set(done) - set(failures)
     needed = {d for a in todo for d in a.needs}
-    side = [a.name for a in sorted(todo, key=lambda a: -a.priority) if not a.needs and a.name not in needed]
-    objects: Dict[str, Any] = {}
+    side = [a.name for a in sorted(todo, key=lambda a: -a.cost(_prep_for(preps, a)))
+            if not a.needs and a.name not in needed and a.name in names]
+    spec_of = {a.name: a for a in todo}
+    objects: Dict[str, Any] = dict(done)
     if int(options.n_jobs) > 1 and side and len(side) < len(todo) and prep.n_total <= PARALLEL_MAX_ROWS:
         from concurrent.futures import ProcessPoolExecutor
 
@@ -147,6 +251,7 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
         from concurrent.futures.process import BrokenProcessPool
 
         queue, futures, lock, broken = list(side), {}, threading.RLock(), []
+        by_name = {a.name: a for a in todo}
         with ProcessPoolExecutor(max_workers=1, mp_context=mp.get_context("spawn")) as pool:
             def submit_next(_done=None):
                 # one task at a time, so that whatever has not started can still run here
@@ -154,7 +259,7 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
                     if queue and not broken:
                         name = queue[0]
                         try:
-                            future = pool.submit(_side_lane, prep, options, [name])
+                            future = pool.submit(_side_lane, _prep_for(preps, spec_of[name]), options, [name])
                         except (BrokenProcessPool, RuntimeError):
                             broken.append(name)
                             return
@@ -163,53 +268,95 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
                         future.add_done_callback(submit_next)
 
             submit_next()
-            _run_specs(prep, options, names - set(side), objects, say, timings)
+            _run_specs(preps, options, names - set(side), objects, say, timings, failures=failures)
             while True:  # list scheduling: both processes take the next queued task when free
                 with lock:
                     if not queue:
                         break
                     name = queue.pop(0)
-                _run_specs(prep, options, {name}, objects, say, timings)
+                _run_specs(preps, options, {name}, objects, say, timings, failures=failures)
             remote = [name for name in side if name in futures]
             if any(not futures[name].done() for name in remote):
                 say(f"waiting for {', '.join(remote)}")
             lost = []
             for name in remote:
                 try:
-                    side_objects, side_timings = futures[name].result()
+                    side_objects, side_timings, side_failures = futures[name].result()
                 except BrokenProcessPool:
                     lost.append(name)
                     continue
+                except InputError:
+                    raise
+                except Exception as exc:  # raised outside the analysis (e.g. its result would not pickle)
+                    if debug_enabled():
+                        raise
+                    failures[name] = analyses.AnalysisFailure.from_exception(by_name[name], exc, process="second")
+                    continue
                 objects.update(side_objects)
                 timings.update(side_timings)
+                failures.update(side_failures)
         if lost:
             # The second process could not start or died (for instance a script that calls the
             # scan at import time, without an ``if __name__ == "__main__":`` guard, is run again
             # by the spawned process): its analyses run here instead, with the same results.
             say(f"the second process stopped; running {', '.join(lost)} here")
-            _run_specs(prep, options, set(lost), objects, say, timings)
+            _run_specs(preps, options, set(lost), objects, say, timings, failures=failures)
             remote = [name for name in remote if name not in lost]
         if remote:
-            say(", ".join(f"{k} {timings[k]:.1f}s" for k in remote) + " (second process)")
+            say(", ".join(f"{k} {timings[k]:.1f}s" for k in remote if k in timings) + " (second process)")
     else:
         # Large tables stay in one process and may use every core; small ones keep one
         # thread per analysis so that n_jobs=1 and n_jobs=2 give the same numbers.
         threads = None if prep.n_total > PARALLEL_MAX_ROWS else 1
-        _run_specs(prep, options, names, objects, say, timings, threads=threads)
+        _run_specs(preps, options, names, objects, say, timings, threads=threads, failures=failures)
     for spec in todo:  # fold parts computed apart into their analysis
         if spec.part_of is not None and spec.name in objects:
             part, whole = objects.pop(spec.name), objects.get(spec.part_of)
             if whole is not None and part is not None:
-                objects[spec.part_of] = spec.merge(whole, part)
+                objects[spec.part_of] = _guarded(spec, failures, lambda: spec.merge(whole, part), whole)
     sections: Dict[str, Any] = {}
     for spec in todo:
         result = objects.get(spec.name)
         if result is None:
             objects.pop(spec.name, None)
             continue
-        for key, value in spec.sections(result).items():
-            sections[key] = value
-    return {"sections": sections, "objects": {a.name: objects[a.name] for a in todo if a.name in objects}}
+        # a section that cannot be written to report.json fails its analysis here, not the report
+        secs = _guarded(spec, failures, lambda: _checked_sections(spec, result), None)
+        if secs is None:
+            objects.pop(spec.name, None)
+            continue
+        sections.update(secs)
+    order = [a.name for a in analyses.REGISTRY]
+    failed_list = tuple(failures[n] for n in sorted(failures, key=lambda n: order.index(n) if n in order else -1))
+    return {"sections": sections, "objects": {a.name: objects[a.name] for a in todo if a.name in objects},
+            "failures": failed_list}
+
+
+def _checked_sections(spec, result) -> Dict[str, Any]:
+    """The analysis's sections, once written as report.json would write them."""
+    import json
+
+    from sitecheck.report.result import to_jsonable
+
+    secs = spec.sections(result)
+    for value in secs.values():
+        json.dumps(to_jsonable(value), allow_nan=False)
+    return secs
+
+
+def _guarded(spec, failures: Dict[str, Any], fn: Callable[[], Any], default: Any) -> Any:
+    """``fn()``, or ``default`` with ``spec`` recorded as failed when it raises (see :func:`_run_specs`)."""
+    from sitecheck.analyses import registry as analyses
+
+    try:
+        return fn()
+    except InputError:
+        raise
+    except Exception as exc:
+        if debug_enabled():
+            raise
+        failures[spec.name] = analyses.AnalysisFailure.from_exception(spec, exc)
+        return default
 
 
 def scan_table(table: Table, options: ScanOptions = ScanOptions(), *,
@@ -222,7 +369,21 @@ def scan_table(table: Table, options: ScanOptions = ScanOptions(), *,
     t0 = time.perf_counter()
     prep = prepare(table, n_splits=options.folds, max_rows=options.max_rows, random_state=options.seed)
     timings["prepare"] = round(time.perf_counter() - t0, 3)
-    out = run_analyses(prep, options, progress=progress, timings=timings)
+    failed: Dict[str, Any] = {}
+    done, repaired, plan_doc = _repair_stage(table, prep, options, say, timings, failed)
+    out = run_analyses(prep, options, progress=progress, timings=timings, repaired=repaired, done=done,
+                       failed=failed)
+    sections = dict(out["sections"])
+    objects = dict(out["objects"])
+    if plan_doc is not None:
+        values = "after repair" if (options.repair and repaired is not None) else "as given"
+        for key in ("embedding", "harmonisation", "outcome"):
+            if key in sections:
+                # harmonisation is keyed by method: the label goes into each method's entry
+                sections[key] = Labelled(sections[key], values, per_entry=key == "harmonisation")
+        sections["repair"] = plan_doc["summary"]
+        objects["repair_plan"] = plan_doc["plan"]
+        objects["repair_log"] = plan_doc["log"]
     raw = table.source
     input_doc = {
         "path": raw.path,
@@ -236,6 +397,8 @@ def scan_table(table: Table, options: ScanOptions = ScanOptions(), *,
         "dropped_sites": dict(table.dropped_sites),
         "outcome": table.outcome,
     }
+    if table.time:
+        input_doc["time_column"] = table.time
     timings["total"] = round(time.perf_counter() - t_start, 3)
     run = {
         "seed": int(options.seed),
@@ -248,11 +411,106 @@ def scan_table(table: Table, options: ScanOptions = ScanOptions(), *,
         input=input_doc,
         columns=tuple(c.to_dict() for c in table.columns),
         findings=tuple(f.to_dict() for f in table.findings),
-        warnings=tuple(table.warnings),
+        warnings=tuple(table.warnings) + _pooling_warnings(prep),
         run=run,
-        sections=out["sections"],
-        objects={"table": table, "prepared": prep, **out["objects"]},
+        sections=sections,
+        failures=tuple(f.to_dict() for f in out["failures"]),
+        objects={"table": table, "prepared": prep, **objects},
     )
+
+
+class Labelled:
+    """A section result with the values it was computed on (``"after repair"`` or
+    ``"as given"``) added to its ``report.json`` dict; attributes pass through."""
+
+    def __init__(self, inner: Any, values: str, per_entry: bool = False):
+        self.__dict__["inner"] = inner
+        self.__dict__["values"] = values
+        self.__dict__["per_entry"] = per_entry
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self.__dict__["inner"], name)
+
+    def to_dict(self) -> Dict[str, Any]:
+        from sitecheck.report.result import to_jsonable
+
+        d = to_jsonable(self.__dict__["inner"])
+        if isinstance(d, dict) and self.__dict__["per_entry"]:
+            return {k: ({"values": self.__dict__["values"], **v} if isinstance(v, dict) else v) for k, v in d.items()}
+        if isinstance(d, dict):
+            d = {"values": self.__dict__["values"], **d}
+        return d
+
+
+def _repair_stage(table: Table, prep: Prepared, options: ScanOptions, say: Progress, timings: Dict[str, float],
+                  failed: Optional[Dict[str, Any]] = None):
+    """Fingerprints first, then the repair plan and the table after its safe entries.
+
+    Returns (results computed here, the repaired Prepared or None, the plan's documents or None).
+    A failure of the fingerprints or of the plan is recorded in ``failed`` (as for any analysis);
+    the scan then goes on with the values as given.
+    """
+    if not options.wants("fingerprints"):
+        return {}, None, None
+    from sitecheck.analyses import registry as analyses
+    from sitecheck.analyses.fingerprints import find_fingerprints
+    from sitecheck.table.repair import apply_repairs, plan_repairs
+
+    failed = failed if failed is not None else {}
+    spec = {a.name: a for a in analyses.REGISTRY}["fingerprints"]
+    say("fingerprints...")
+    t0 = time.perf_counter()
+    fp = _guarded(spec, failed, lambda: find_fingerprints(prep), None)
+    timings["fingerprints"] = round(time.perf_counter() - t0, 3)
+    if fp is None:
+        return {}, None, None
+    t0 = time.perf_counter()
+    repair_spec = analyses.Analysis("repair", lambda *a: None, fills=("repair",))
+
+    def plan_and_apply():
+        plan = plan_repairs(table, fp, censor_policy=options.censor_policy)
+        repaired_table, log = apply_repairs(table, plan, safe_only=True)
+        applied = [e for e in plan.entries if e.id in log.applied]
+        repaired = None
+        if applied:
+            repaired = prepare(repaired_table, n_splits=options.folds, max_rows=options.max_rows,
+                               random_state=options.seed)
+        return plan, log, applied, repaired
+
+    got = _guarded(repair_spec, failed, plan_and_apply, None)
+    timings["repair"] = round(time.perf_counter() - t0, 3)
+    if got is None:  # the plan failed: the fingerprints stand, the values stay as given
+        return {"fingerprints": fp}, None, None
+    plan, log, applied, repaired = got
+    applied_doc = [{"id": e.id, "kind": e.kind, "column": e.column, "site": e.site, "operation": e.operation,
+                    "cells": int(sum(log.cells_by_site.get(str(e.site), {}).get(e.column, {}).values()))
+                    if e.operation != "drop_column" else e.cells} for e in applied]
+    say(f"repair plan: {len(plan.entries)} entries, {len(applied)} safe ones applied in memory")
+    summary = {
+        "plan_file": "repair_plan.json", "plan_version": plan.version, "n_entries": len(plan.entries),
+        "n_safe": len(plan.safe()),
+        "values_for_maps_harmonisation_outcome": "after repair" if (options.repair and repaired is not None)
+        else "as given",
+        "entries": [{"id": e.id, "kind": e.kind, "column": e.column, "site": e.site, "operation": e.operation,
+                     "cells": e.cells, "rows": e.rows, "safe": e.safe, "enabled": e.enabled, "reason": e.reason}
+                    for e in plan.entries],
+        "applied_in_scan": applied_doc, "log": log.to_dict(), "not_repaired": list(plan.not_repaired),
+    }
+    return ({"fingerprints": fp, "repair": {"plan": plan, "log": log, "applied": applied_doc}}, repaired,
+            {"summary": summary, "plan": plan, "log": log})
+
+
+def _pooling_warnings(prep: Prepared) -> tuple:
+    """One warning per categorical column whose rare levels were pooled (Prepared.features/covariates)."""
+    out = []
+    for enc in (prep.features, prep.covariates):
+        if enc is None:
+            continue
+        for name, n in enc.lumped.items():
+            out.append(f"column {name!r}: {n + enc.max_levels - 1} categorical levels; the {enc.max_levels - 1} most "
+                       f"frequent are kept and the {n} rarer ones pooled into one level '(other)' (the probe "
+                       f"accepts {enc.max_levels} levels with {len(prep.site_labels)} sites)")
+    return tuple(out)
 
 
 def build_table(raw: RawTable, roles: RoleSpec, *, config_path: Optional[str] = None,
@@ -277,7 +535,7 @@ def scan_configured(path: str, run: RunConfig, *, progress: Optional[Progress] =
         raise TypeError(f"run must be a RunConfig (see sitecheck.reading.config.resolve_config), got {type(run).__name__}")
     say = progress or (lambda msg: None)
     say(f"reading {path}")
-    raw = read_table(path, sep=run.sep, encoding=run.encoding)
+    raw = read_table(path, sep=run.sep, encoding=run.encoding, site=run.roles.site)
     table = _table_for(raw, run)
     say(f"{len(table.frame)} rows, {len(table.site_labels)} sites, {len(table.features)} features")
     return scan_table(table, run.options, progress=progress, config=run.record())
@@ -287,16 +545,56 @@ def scan_file(path: str, *, site: Optional[str] = None, outcome: Optional[str] =
               covariates: Optional[Sequence[str]] = None, groups: Optional[Sequence[str]] = None,
               identifiers: Optional[Sequence[str]] = None, excluded: Optional[Sequence[str]] = None,
               config: Optional[str] = None, sep: Optional[str] = None, encoding: Optional[str] = None,
-              options: Optional[ScanOptions] = None, progress: Optional[Progress] = None) -> ScanResult:
-    """Read a file and scan it.
+              options: Optional[ScanOptions] = None, progress: Optional[Progress] = None,
+              time: Optional[str] = None) -> ScanResult:
+    """Read a file and scan it (``time`` names the date column that adds the drift analysis).
 
-    Role arguments override the config file's roles; ``options`` fields set to
-    other than their default (or the keys of a mapping) override the file's
-    ``[options]``; ``sep`` and ``encoding`` override the file's. The command
-    line goes through the same loader (:func:`sitecheck.reading.config.resolve_config`),
-    so a config file gives the same report from either.
+    Parameters
+    ----------
+    path : str
+        CSV, TSV, gzip-compressed CSV/TSV or Parquet, chosen by extension.
+    site, outcome : str, optional
+        Column roles; override the config file's.
+    covariates, groups, identifiers, excluded : sequence of str, optional
+        Column roles; each overrides the config file's list.
+    config : str, optional
+        TOML file with roles, ``[panels]`` and ``[options]``.
+    sep, encoding : str, optional
+        Reading options; override the config file's (default: from the extension, utf-8).
+    options : ScanOptions or mapping, optional
+        Fields set to other than their default (or the keys of a mapping) override the
+        config file's ``[options]``.
+    progress : callable, optional
+        Called with one line per stage.
+
+    Returns
+    -------
+    ScanResult
+
+    Raises
+    ------
+    InputError
+        A problem with the file, the config file or the roles, named in one line.
+
+    Notes
+    -----
+    The command line goes through the same loader
+    (:func:`sitecheck.reading.config.resolve_config`), so a config file gives the same
+    ``report.json`` from either (``tests/test_report.py``).
+
+    Examples
+    --------
+    A small copy of the invented demo network, probed for its site signal only (the full
+    scan adds the leak ranking, fingerprints, maps, harmonisation and outcome sections):
+
+    >>> from sitecheck import ScanOptions, generate_demo, scan_file
+    >>> generate_demo(600, seed=7).frame.to_csv("pooled.csv", index=False)
+    >>> result = scan_file("pooled.csv", site="hospital", identifiers=["attendance_id"],
+    ...                    options=ScanOptions(analyses=("probe",), folds=3, n_jobs=1))
+    >>> result.to_dict()["probe"]["verdict"]
+    'strong'
     """
-    run = resolve_config(config, roles=_spec(site, outcome, covariates, groups, identifiers, excluded),
+    run = resolve_config(config, roles=_spec(site, outcome, covariates, groups, identifiers, excluded, time),
                          options=options, sep=sep, encoding=encoding)
     return scan_configured(path, run, progress=progress)
 
@@ -304,16 +602,54 @@ def scan_file(path: str, *, site: Optional[str] = None, outcome: Optional[str] =
 def scan_frame(frame: pd.DataFrame, *, site: str, outcome: Optional[str] = None,
                covariates: Optional[Sequence[str]] = None, groups: Optional[Sequence[str]] = None,
                identifiers: Optional[Sequence[str]] = None, excluded: Optional[Sequence[str]] = None,
-               options: Optional[ScanOptions] = None, progress: Optional[Progress] = None) -> ScanResult:
-    """Scan an in-memory DataFrame (intake's missing-code rules apply to text columns)."""
-    raw = frame_to_raw(frame)
+               options: Optional[ScanOptions] = None, progress: Optional[Progress] = None,
+               time: Optional[str] = None) -> ScanResult:
+    """Scan an in-memory DataFrame (intake's missing-code rules apply to text columns).
+
+    Parameters
+    ----------
+    frame : pandas.DataFrame
+        One row per patient (or attendance); it is not modified.
+    site : str
+        The site (or group) column whose signal is measured.
+    outcome : str, optional
+        A binary outcome: adds the shortcut analysis.
+    covariates, groups, identifiers, excluded : sequence of str, optional
+        Column roles, as for :func:`scan_file`; every other column is a feature.
+    options : ScanOptions, optional
+        Everything but the roles (seed, folds, analyses, ...).
+    progress : callable, optional
+        Called with one line per stage.
+    time : str, optional
+        A date column: adds the drift analysis within each site.
+
+    Returns
+    -------
+    ScanResult
+
+    Raises
+    ------
+    InputError
+        Unknown columns, fewer than two sites, a non-binary outcome, no usable feature.
+
+    Examples
+    --------
+    >>> from sitecheck import ScanOptions, generate_demo, scan_frame
+    >>> demo = generate_demo(600, seed=7)
+    >>> result = scan_frame(demo.frame, site="hospital", identifiers=["attendance_id"],
+    ...                     options=ScanOptions(analyses=("probe",), folds=3, n_jobs=1))
+    >>> probe = result.to_dict()["probe"]
+    >>> probe["verdict"], probe["auc"] > 0.9
+    ('strong', True)
+    """
+    raw = frame_to_raw(frame, site=site)
     opts = options or ScanOptions()
-    table = assign_roles(raw, _spec(site, outcome, covariates, groups, identifiers, excluded),
+    table = assign_roles(raw, _spec(site, outcome, covariates, groups, identifiers, excluded, time),
                          min_site_rows=opts.min_site_rows, include_datetime=opts.include_datetime)
     return scan_table(table, opts, progress=progress)
 
 
-def _spec(site, outcome, covariates, groups, identifiers, excluded) -> RoleSpec:
+def _spec(site, outcome, covariates, groups, identifiers, excluded, time=None) -> RoleSpec:
     t = lambda v: None if v is None else tuple(v)  # noqa: E731
     return RoleSpec(site=site, outcome=outcome, covariates=t(covariates), groups=t(groups),
-                    identifiers=t(identifiers), excluded=t(excluded))
+                    identifiers=t(identifiers), excluded=t(excluded), time=time)

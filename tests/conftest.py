@@ -28,7 +28,7 @@ def demo_table(demo_small_path):
     from sitecheck.reading.intake import read_table
     from sitecheck.table.roles import RoleSpec, assign_roles
 
-    raw = read_table(demo_small_path)
+    raw = read_table(demo_small_path, site=DEMO_ROLES["site"])
     spec = RoleSpec(site=DEMO_ROLES["site"], outcome=DEMO_ROLES["outcome"],
                     covariates=DEMO_ROLES["covariates"], identifiers=DEMO_ROLES["identifiers"])
     return assign_roles(raw, spec)

@@ -6,12 +6,15 @@ from sitecheck.reading.intake import read_table
 
 
 def test_fixture_is_the_generators_output(demo_small_path, demo_truth):
-    fixture = read_table(demo_small_path).frame
+    # fixtures/demo_small.csv is write_demo(dir, n_rows=1200, seed=7)'s demo.csv
+    from sitecheck.reading.intake import frame_to_raw
+
+    fixture = read_table(demo_small_path, site="hospital").frame
     fresh = generate_demo(1200, seed=7)
     assert demo_truth == fresh.truth
+    parsed = frame_to_raw(fresh.frame, site="hospital").frame   # the idiom cells ("<5", "4,3") read as numbers
     pd.testing.assert_frame_equal(fixture.drop(columns=["arrival_date"]).reset_index(drop=True),
-                                  fresh.frame.drop(columns=["arrival_date"]).astype(
-                                      {c: float for c in fresh.frame.columns if fresh.frame[c].dtype.kind in "iuf"}),
+                                  parsed.drop(columns=["arrival_date"]),
                                   check_dtype=False, check_exact=False, rtol=1e-12)
 
 
@@ -23,7 +26,16 @@ def test_truth_matches_what_was_injected():
     eff = {(e["feature"], e["site"]): e["kind"] for e in d.truth["effects"]}
     assert eff == {("sodium", "Brackenholt"): "shift", ("glucose", "Cindervale"): "unit_ratio",
                    ("crp", "Duskwater"): "floor", ("temperature", "Aldermoor"): "precision",
-                   ("lactate", "Brackenholt"): "missing_code", ("albumin", "Duskwater"): "site_missing"}
+                   ("lactate", "Brackenholt"): "missing_code", ("albumin", "Duskwater"): "site_missing",
+                   ("troponin", "Aldermoor"): "censored_below", ("potassium", "Cindervale"): "number_format"}
+    # export idioms: '<5' only at Aldermoor (troponin below 5 there), decimal commas only at Cindervale
+    trop = f.troponin.astype(str)
+    assert set(trop[trop.str.startswith("<")]) == {"<5"}
+    assert set(f.hospital[trop == "<5"]) == {"Aldermoor"} and (trop[f.hospital == "Aldermoor"] == "<5").mean() > 0.08
+    assert pd.to_numeric(f.troponin[f.hospital != "Aldermoor"], errors="coerce").min() < 5
+    k = f.potassium.astype(str)
+    assert k[f.hospital == "Cindervale"].str.fullmatch(r"\d+,\d").all() and not k[f.hospital != "Cindervale"].str.contains(",").any()
+    assert not g.troponin.astype(str).str.startswith("<").any() and not g.potassium.astype(str).str.contains(",").any()
     # shift: +4 mmol/L
     others = f[f.hospital != "Brackenholt"].sodium.mean()
     assert abs(by(f, "Brackenholt").sodium.mean() - others - 4.0) < 0.5

@@ -38,7 +38,7 @@ def demo_run(request):
 def test_demo_truth_recovered_with_kind_and_site(demo_run):
     d, _, result = demo_run
     truth = {(e["feature"], e["site"], e["kind"]) for e in d.truth["effects"]}
-    assert len(truth) == 6
+    assert len(truth) == 8
     # every injected effect is found with the right kind and site, and nothing else is reported
     assert _keys(result) == truth
     for f in result.findings:
@@ -147,13 +147,13 @@ def test_heaping_ceiling_scale_and_exclusive_level_on_a_synthetic():
 @pytest.mark.slow
 def test_no_kind_fires_on_the_null_demo_more_than_its_rate():
     # Stated rate: each kind fires on a null table with probability <= alpha = 0.01. Over 50 small null
-    # tables (400 rows) a kind may fire at most 4 times: P(> 4 | 50, 0.01) < 0.00015 per kind, so all ten
-    # kinds pass together with probability > 0.998. Power (scipy.stats.binom): a kind that fires on 10% of
+    # tables (400 rows) a kind may fire at most 4 times: P(> 4 | 50, 0.01) < 0.00015 per kind, so all
+    # fourteen kinds pass together with probability > 0.997. Power (scipy.stats.binom): a kind that fires on 10% of
     # null tables fails it with probability 0.57, on 20% with 0.98.
     from scipy.stats import binom
 
     n_tables, limit = 50, 4
-    assert binom.sf(limit, n_tables, 0.01) * len(KINDS) < 0.002 and binom.sf(limit, n_tables, 0.2) > 0.98
+    assert binom.sf(limit, n_tables, 0.01) * len(KINDS) < 0.003 and binom.sf(limit, n_tables, 0.2) > 0.98
     fired = {k: 0 for k in KINDS}
     for seed in range(100, 100 + n_tables):
         _, table = _demo(400, seed, null=True)
@@ -250,7 +250,7 @@ def test_scan_fills_the_fingerprints_section_and_renders(demo_table):
 
     assert validate(doc, report_schema()) == []
     md = section.markdown(doc, 10)
-    assert "glucose" in md and "unit\\_ratio" in md
+    assert "glucose" in md and "another unit" in md  # one name per artefact across the report (issue 18)
 
 
 def test_render_escapes_data_text_and_withholds_small_cells():
@@ -283,3 +283,184 @@ def test_welch_and_brown_forsythe_match_scipy():
     got_t = welch_test(a.mean(), a.var(ddof=1), len(a), b.mean(), b.var(ddof=1), len(b))
     assert got_t == pytest.approx(ref_t, rel=1e-9)
     assert brown_forsythe(a, b) == pytest.approx(stats.levene(a, b, center="median").pvalue, rel=1e-9)
+
+
+def test_feature_recorded_at_one_site_is_skipped_with_its_reason_not_a_crash():
+    # Invented three-clinic table: troponin measured at Fernhollow only (a test the others never ran),
+    # lactate measured nowhere. The value detectors have nothing to compare; site_missing says where.
+    rng = np.random.default_rng(16)
+    n = 90
+    site = np.repeat(["Fernhollow", "Gorsebrook", "Hazelmere"], n // 3)
+    trop = np.where(site == "Fernhollow", np.round(rng.lognormal(2.5, 0.6, n), 0), np.nan)
+    frame = pd.DataFrame({"site": site, "sodium": np.round(rng.normal(140, 3, n)), "troponin": trop,
+                          "lactate": np.full(n, np.nan)})
+    result = find_fingerprints(_table(frame))
+    assert result.skipped["troponin"] == ("recorded at one site only (Fernhollow); the value detectors compare a "
+                                          "site with the others")
+    assert "sodium" not in result.skipped
+    assert {(f.feature, f.site, f.kind) for f in result.findings if f.feature == "troponin"} == {
+        ("troponin", "Gorsebrook", "site_missing"), ("troponin", "Hazelmere", "site_missing")}
+    assert result.to_dict()["skipped"] == dict(result.skipped)
+
+
+def test_temperature_check_without_a_reference_site_in_the_other_scale():
+    # One clinic's median is in the Fahrenheit range and the median of the others' medians in the Celsius
+    # range, but no single other clinic is in it (medians 25 and 50): no temperature pair, and no crash
+    # (it used to concatenate an empty list of reference sites).
+    from sitecheck.analyses.fingerprints import detect_unit_ratio
+
+    rng = np.random.default_rng(3)
+    vals = [np.sort(rng.normal(m, 1.0, 40)) for m in (98.0, 25.0, 50.0)]
+    out = detect_unit_ratio(vals, "temp")
+    assert [c for c in out if c.kind == "unit_ratio" and isinstance(c.payload, tuple)] == []
+
+
+# -- issue 17: censoring, number formats, one finding per feature x site x kind --------------------
+
+def test_demo_censoring_and_number_format_evidence(demo_run):
+    d, table, result = demo_run
+    by = {(f.feature, f.kind): f.evidence for f in result.findings}
+    f = d.frame
+    t = by[("troponin", "censored_below")]
+    at = f.hospital == "Aldermoor"
+    n_cens = int((f.troponin[at] == "<5").sum())
+    n_rec = int(f.troponin[at].notna().sum())
+    assert t["limit"] == 5.0 and t["at_site"]["count"] == n_cens and t["at_site"]["n"] == n_rec
+    assert t["at_site"]["share"] == pytest.approx(n_cens / n_rec, rel=1e-5)
+    assert t["elsewhere"]["count"] == 0
+    # the other sites measure values below 5 (3 and 4 ng/L in the demo)
+    other = pd.to_numeric(f.troponin[~at], errors="coerce").dropna()
+    assert t["elsewhere"]["share_measured_below"] == pytest.approx((other < 5).mean(), rel=1e-5)
+    # the censored cells are not also reported as a floor at the same site
+    assert ("troponin", "floor") not in by
+    k = by[("potassium", "number_format")]
+    cin = f.hospital == "Cindervale"
+    assert k["formats"][0]["format"] == "decimal_comma"
+    assert k["formats"][0]["count"] == int(f.potassium[cin].astype(str).str.contains(",").sum())
+    assert k["formats"][0]["count_elsewhere"] == 0
+
+
+def test_exclusive_levels_aggregate_to_one_finding_per_feature_and_site():
+    # invented: one site writes 21 local ward codes that no other site uses
+    rng = np.random.default_rng(3)
+    site = np.repeat(["North", "South", "East"], 300).astype(object)
+    ward = rng.choice(["A", "B", "C"], 900).astype(object)
+    ward[:300] = np.array([f"N{i:02d}" for i in range(21)], dtype=object)[rng.integers(0, 21, 300)]
+    frame = pd.DataFrame({"site": site, "ward": ward, "x": np.round(rng.normal(5, 1, 900), 1)})
+    table = _table(frame)
+    result = find_fingerprints(table)
+    excl = result.of_kind("exclusive_level")
+    assert len(excl) == 1 and excl[0].site == "North"
+    ev = excl[0].evidence
+    assert len(ev["levels"]) == 21 and ev["count"] == 300
+    assert [r["count"] for r in ev["levels"]] == sorted((r["count"] for r in ev["levels"]), reverse=True)
+    # the hygiene finding before modelling is aggregated the same way
+    hyg = [h for h in table.findings if h.kind == "exclusive_level"]
+    assert len(hyg) == 1 and hyg[0].site == "North" and hyg[0].count == 300 and "21 levels" in hyg[0].detail
+
+
+def test_missing_codes_aggregate_with_every_code_listed():
+    rng = np.random.default_rng(9)
+    site = np.repeat(["North", "South", "East"], 400).astype(object)
+    x = np.round(rng.normal(1.4, 0.4, 1200), 1)
+    x[:30], x[30:55] = -99.0, 999.0
+    table = _table(pd.DataFrame({"site": site, "lactate": x}))
+    (mc,) = find_fingerprints(table).of_kind("missing_code")
+    assert mc.site == "North" and mc.evidence["value"] == -99.0
+    assert [c["value"] for c in mc.evidence["codes"]] == [-99.0, 999.0] and mc.evidence["at_site"]["count"] == 55
+
+
+def _censored_frame(rng, n_per_site, censor_sites, limit=5.0):
+    """Four invented sites with the same troponin distribution; some write values below
+    ``limit`` as '<limit' (text cells, as exported)."""
+    sites = ["North", "South", "East", "West"]
+    site = np.repeat(sites, n_per_site).astype(object)
+    trop = np.round(2 + np.exp(rng.normal(np.log(7.0), 0.9, len(site))))
+    cells = trop.astype(object)
+    for s in censor_sites:
+        m = (site == s) & (trop < limit)
+        cells[m] = f"<{limit:g}"
+    return pd.DataFrame({"site": site, "troponin": cells})
+
+
+def test_censoring_false_alarm_rate_when_every_site_censors_alike():
+    # every site writes '<5' below 5: censoring does not mark any site. Measured over 20 seeds.
+    fired = 0
+    for seed in range(20):
+        frame = _censored_frame(np.random.default_rng(seed), 300, ["North", "South", "East", "West"])
+        res = find_fingerprints(_table(frame))
+        fired += any(f.kind in ("censored_below", "censored_above", "floor") for f in res.findings)
+    assert fired <= 1        # family-wise level 0.01 per kind: at most 1 of 20 is allowed by chance
+    # and one censoring site among four is found every time, at that site only
+    for seed in range(5):
+        frame = _censored_frame(np.random.default_rng(100 + seed), 300, ["East"])
+        res = find_fingerprints(_table(frame))
+        assert {(f.site, f.kind) for f in res.findings if f.kind.startswith("censored")} == {("East", "censored_below")}
+
+
+def test_number_format_false_alarm_rate_when_every_site_writes_commas():
+    fired = 0
+    for seed in range(10):
+        rng = np.random.default_rng(seed)
+        site = np.repeat(["North", "South", "East"], 200).astype(object)
+        k = np.round(rng.normal(4.2, 0.45, 600), 1)
+        frame = pd.DataFrame({"site": site, "potassium": [f"{v:.1f}".replace(".", ",") for v in k]})
+        res = find_fingerprints(_table(frame))
+        fired += any(f.kind == "number_format" for f in res.findings)
+    assert fired == 0
+
+
+def test_kinds_are_one_list_for_gates_and_schema():
+    from sitecheck.table.repair import plan_schema
+    from sitecheck.report.gates import FINGERPRINT_KINDS, check_fail_on
+    from sitecheck.report.schema import report_schema
+
+    enum = report_schema()["properties"]["fingerprints"]["items"]["properties"]["kind"]["enum"]
+    assert enum == list(KINDS) == list(FINGERPRINT_KINDS)
+    assert plan_schema()["properties"]["entries"]["items"]["properties"]["finding"]["properties"]["kind"]["enum"] \
+        == list(KINDS)
+    assert KINDS[:10] == ("unit_ratio", "precision", "heaping", "floor", "ceiling", "missing_code", "site_missing",
+                          "exclusive_level", "shift", "scale")      # shipped names, a contract
+    assert check_fail_on(["censored_below", "censored_above", "number_format", "unit_label"])
+    with pytest.raises(ValueError, match="censored_below"):
+        check_fail_on(["censored"])
+
+
+def _creatinine_with_unit_column(seed=0, unit_name="creat_unit", value_name="creatinine"):
+    # invented: four sites; Westbrook reports creatinine in mg/dL and says so in a unit column
+    rng = np.random.default_rng(seed)
+    site = np.repeat(["North", "South", "East", "Westbrook"], 250).astype(object)
+    umol = np.round(np.exp(rng.normal(np.log(80), 0.3, 1000)))
+    west = site == "Westbrook"
+    values = umol.copy()
+    values[west] = np.round(umol[west] / 88.42, 2)            # mg/dL, two decimals as printed
+    unit = np.where(west, "mg/dL", rng.choice(["umol/L", "µmol/l"], 1000)).astype(object)
+    return pd.DataFrame({"site": site, value_name: values, unit_name: unit,
+                         "sodium": np.round(rng.normal(139, 3, 1000))})
+
+
+def test_unit_column_linked_by_name_and_values():
+    frame = _creatinine_with_unit_column()
+    table = _table(frame)
+    res = find_fingerprints(table)
+    link = res.unit_columns["creat_unit"]
+    assert link["column"] == "creatinine" and link["linked_by"] == "name and values"
+    # published factor: creatinine 1 mg/dL = 88.4 umol/L (AMA Manual of Style SI conversion table)
+    assert link["factor"] == pytest.approx(1 / 88.4, rel=1e-3)
+    assert link["ratio"] == pytest.approx(1 / 88.4, rel=0.05)
+    (lab,) = res.of_kind("unit_label")
+    assert lab.site == "Westbrook" and lab.evidence["unit"] == "mg/dL" and lab.evidence["reference_unit"] == "umol/L"
+    assert "unit of 'creatinine'" in lab.detail
+    (ur,) = res.of_kind("unit_ratio")
+    assert ur.site == "Westbrook" and ur.evidence["unit_column"] == "creat_unit" and "creat_unit" in ur.detail
+    assert not res.of_kind("exclusive_level")
+
+
+def test_unit_column_linked_by_values_alone():
+    frame = _creatinine_with_unit_column(seed=1, unit_name="lab_u", value_name="creatinine")
+    res = find_fingerprints(_table(frame))
+    assert res.unit_columns["lab_u"]["column"] == "creatinine"
+    assert res.unit_columns["lab_u"]["linked_by"] == "values"
+    # a text column that is not a unit column is left alone
+    frame["lab_u"] = np.where(frame.site == "Westbrook", "ward B", "ward A")
+    assert find_fingerprints(_table(frame)).unit_columns == {}

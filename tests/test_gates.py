@@ -50,7 +50,9 @@ def test_gate_values_are_checked():
     with pytest.raises(TypeError):
         check_gates(DOC, {"fail_above": 0.7})
     assert set(FINGERPRINT_KINDS) == {"unit_ratio", "precision", "heaping", "floor", "ceiling", "missing_code",
-                                      "site_missing", "exclusive_level", "shift", "scale"}
+                                      "site_missing", "exclusive_level", "shift", "scale",
+                                      # issue 17: lab-export idioms and unit columns
+                                      "censored_below", "censored_above", "number_format", "unit_label"}
 
 
 @pytest.mark.parametrize("options, expected", [

@@ -194,14 +194,16 @@ def test_scan_check_on_the_demo(demo_prepared, demo_truth):
         assert d["reprobe"].startswith("fitted within each training fold")
     # No other unexplained gap: apart from gaps attributed to the protected case mix, what survives is exactly
     # the demo's injected artefacts that no per-site map can undo (demo_truth.json: lactate's -99 code,
-    # albumin never measured, crp's detection limit). The sodium offset is removed; temperature's 0.5-degree
-    # rounding is repaired by the common grid; glucose in mg/dL is skewed enough to be fitted on the log
-    # scale, where the unit factor is a location change that every method removes (the command refuses that
-    # table: unit_ratio is a blocking finding).
+    # albumin never measured, crp's detection limit, troponin written '<5' at Aldermoor and read as the limit 5
+    # with a flag). The sodium offset is removed; temperature's 0.5-degree rounding is repaired by the common
+    # grid; glucose in mg/dL is skewed enough to be fitted on the log scale, where the unit factor is a location
+    # change that every method removes (the command refuses that table: unit_ratio is a blocking finding);
+    # potassium's decimal commas at Cindervale are read as numbers and leave no gap.
     injected = {("lactate", "Brackenholt", "floor or ceiling"), ("albumin", "Duskwater", "missingness"),
-                ("crp", "Duskwater", "floor or ceiling")}
+                ("crp", "Duskwater", "floor or ceiling"), ("troponin", "Aldermoor", "floor or ceiling")}
     assert {(e["feature"], e["site"]) for e in demo_truth["effects"]} - {(f, s) for f, s, _ in injected} == \
-        {("sodium", "Brackenholt"), ("glucose", "Cindervale"), ("temperature", "Aldermoor")}
+        {("sodium", "Brackenholt"), ("glucose", "Cindervale"), ("temperature", "Aldermoor"),
+         ("potassium", "Cindervale")}
     for m, extra in (("centre", set()), ("combat", set())):
         unexplained = {(g["feature"], g["site"], g["reason"]) for g in doc[m]["surviving"]
                        if g["reason"] != "case mix (protected)"}
@@ -322,9 +324,10 @@ def test_report_section_escapes_data_text_and_suppresses_small_counts():
                        "p_adj": 1e-9, "detail": "31% at its floor 5"}]}}}
     html = sec.html(doc, 10)
     assert bad not in html and "&lt;script&gt;" in html
-    assert "ComBat" in html and "&lt;10" in html and "floor or ceiling" in html
-    md = sec.markdown(doc, 10)
-    assert "<script>" not in md and "\\<script\\>" in md and "Dunmere\\|x" in md and "< 0.001" in md
+    # one name per artefact across the report (issue 18): "floor or ceiling" reads "lower or upper limit"
+    assert "ComBat" in html and "&lt;10" in html and "lower or upper limit at Dunmere|x" in html
+    md = sec.markdown(doc, 10)  # findings.md: one line per method
+    assert "<script>" not in md and "ComBat" in md and "1 gap left" in md
     assert sec.html({}, 10) == "" and sec.markdown({}, 10) == ""
 
 
@@ -410,7 +413,7 @@ def test_scan_fills_report_harmonisation_and_renders():
 # ---------------------------------------------------------------- the recording grid (issue 14)
 
 def test_recording_grid_is_the_coarsest_site_step():
-    # Site steps found by sitecheck.fingerprints.grid_step; the common grid is the coarsest,
+    # Site steps found by sitecheck.analyses.fingerprints.grid_step; the common grid is the coarsest,
     # or the finest candidate step that every site's step divides (0.2 and 0.25 -> 1).
     from sitecheck.harmonise.methods import recording_grid, snap_to_grid
 

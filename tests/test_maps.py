@@ -273,3 +273,128 @@ def test_maps_computed_apart_and_merged_equal_maps_computed_together(demo_prepar
         assert np.array_equal(merged.coords[m], together.coords[m])
     with pytest.raises(InputError):
         merge_maps(together, together)  # the same map twice
+
+
+# ----------------------------------------------------------------- t-SNE: FFT interpolation against today's map
+
+def _thirty_site_prepared(n_per_site=40, seed=11):
+    """An invented 30-site table shaped like a pooled laboratory extract: values rounded as analysers
+    report them, a coded categorical column, a few cells missing, one test never measured at one
+    site, and a site-specific offset on two features."""
+    import pandas as pd
+
+    from sitecheck.reading.intake import frame_to_raw
+    from sitecheck.table.prepare import prepare
+    from sitecheck.table.roles import RoleSpec, assign_roles
+
+    rng = np.random.default_rng(seed)
+    sites = np.repeat([f"Clinic-{k:02d}" for k in range(30)], n_per_site)
+    code = np.repeat(np.arange(30), n_per_site)
+    shift = rng.normal(size=(30, 2))
+    n = len(sites)
+    frame = pd.DataFrame({
+        "ward": sites,
+        "sodium": np.round(140 + 3 * rng.normal(size=n) + 1.5 * shift[code, 0]),          # mmol/L, whole numbers
+        "potassium": np.round(4.2 + 0.4 * rng.normal(size=n) + 0.2 * shift[code, 1], 1),  # one decimal
+        "creatinine": np.round(np.exp(4.4 + 0.3 * rng.normal(size=n))),                   # umol/L, skewed
+        "heart_rate": np.round(80 + 12 * rng.normal(size=n)),
+        "temp_c": np.round(36.9 + 0.5 * rng.normal(size=n), 1),
+        "triage": rng.choice(["T1", "T2", "T3", "T4"], size=n, p=[0.1, 0.3, 0.4, 0.2]),
+    })
+    frame.loc[rng.random(n) < 0.04, "heart_rate"] = np.nan
+    frame.loc[frame["ward"] == "Clinic-07", "creatinine"] = np.nan  # never measured at one site
+    table = assign_roles(frame_to_raw(frame), RoleSpec(site="ward"))
+    return prepare(table, random_state=0)
+
+
+def _today_tsne(Z, perplexity, seed):
+    # The map before this change: scikit-learn's Barnes-Hut t-SNE, 350 iterations (250 with early
+    # exaggeration 12), angle 0.7, PCA start, learning rate "auto".
+    from sklearn.manifold import TSNE
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(1):  # one thread, as in a scan (OpenMP threads spin on a busy machine)
+        return TSNE(n_components=2, perplexity=perplexity, init="pca", learning_rate="auto", max_iter=350,
+                    angle=0.7, random_state=seed).fit_transform(Z)
+
+
+@pytest.mark.parametrize("table", ["demo", "thirty_sites"])
+def test_fft_tsne_same_mixing_and_trustworthiness_as_todays_map(table, demo_prepared):
+    # Same conclusions: the normalised LISI of the new map within 0.03 of today's (scikit-learn's t-SNE,
+    # the reference library) and scikit-learn's trustworthiness (Venna & Kaski 2001) no lower by more
+    # than 0.01, on the 1,200-row demo fixture (4 sites) and an invented 30-site table.
+    from sklearn.manifold import trustworthiness
+
+    from sitecheck.analyses.maps import preprocess, tsne_map
+
+    prep = demo_prepared if table == "demo" else _thirty_site_prepared()
+    Z = preprocess(prep.X, prep.features.categorical)
+    site = prep.site
+    exp = expected_random(np.bincount(site))
+    new, settings = tsne_map(Z, perplexity=30.0, random_state=0)
+    assert settings["method"] == "fft_interpolation" and settings["max_iter"] == 350
+    old = _today_tsne(Z, 30.0, 0)
+    lisi_new, lisi_old = lisi(new, site).mean() / exp, lisi(old, site).mean() / exp
+    assert abs(lisi_new - lisi_old) <= 0.03, (lisi_new, lisi_old)
+    t_new, t_old = trustworthiness(Z, new, n_neighbors=5), trustworthiness(Z, old, n_neighbors=5)
+    assert t_new >= t_old - 0.01, (t_new, t_old)
+    # and a map, not noise: trustworthiness of random coordinates is about 0.5 (Venna & Kaski 2001)
+    assert t_new > 0.8
+
+
+_KERNEL_CHILD = r'''
+import hashlib, json
+import numpy as np
+from sitecheck.analyses import maps
+Z = np.random.default_rng(2).normal(size=(150, 4)).round(1)
+coords, _ = maps.embed(Z, methods=("tsne", "umap"), random_state=1, umap_n_epochs=30)
+from umap import layouts
+stats = layouts._nb_optimize_layout_euclidean_single_epoch.stats
+print(json.dumps({"sha": {m: hashlib.sha256(np.ascontiguousarray(c).tobytes()).hexdigest() for m, c in coords.items()},
+                  "hits": sum(stats.cache_hits.values()), "misses": sum(stats.cache_misses.values()),
+                  "path": stats.cache_path}))
+'''
+
+
+def test_umap_kernels_cached_between_processes_and_maps_bit_identical(tmp_path):
+    # UMAP's numba kernels are compiled once and loaded from the user's cache directory by the next
+    # process (numba's dispatcher statistics count cache hits and misses); a map drawn with loaded kernels
+    # is bit-for-bit the map drawn with freshly compiled ones, and so is the t-SNE map of a fresh process.
+    import subprocess
+    import sys
+
+    env = {k: v for k, v in os.environ.items() if k != "NUMBA_CACHE_DIR"}
+    env["XDG_CACHE_HOME"] = str(tmp_path)
+    runs = []
+    for _ in range(2):
+        out = subprocess.run([sys.executable, "-c", _KERNEL_CHILD], env=env, capture_output=True, text=True,
+                             timeout=600)
+        assert out.returncode == 0, out.stderr[-2000:]
+        runs.append(json.loads(out.stdout.strip().splitlines()[-1]))
+    first, second = runs
+    assert first["path"].startswith(os.path.join(str(tmp_path), "sitecheck", "numba"))
+    assert first["misses"] >= 1 and first["hits"] == 0  # compiled, then written to the cache
+    assert second["hits"] >= 1 and second["misses"] == 0  # loaded, not compiled
+    assert any(p.suffix == ".nbc" for p in tmp_path.rglob("*"))
+    assert first["sha"] == second["sha"]
+
+
+def test_second_process_queue_follows_measured_stage_costs():
+    # The queue order (longest first) comes from estimates fitted to measured stage seconds
+    # (bench_maps.py, run.py; contributor guide): on the 6,000-row demo with an outcome, harmonisation
+    # (10.3 s) before PCA/UMAP (6.9 s) and t-SNE (5.4 s); on 9,000 rows x 20 features x 30 sites,
+    # PCA/UMAP (8.3 s) and t-SNE (6.1 s) before harmonisation (4.6 s); at 100,000 x 50 x 4,
+    # harmonisation (18.4 s) first.
+    from sitecheck.analyses.registry import REGISTRY
+
+    def shape(n, p, sites, outcome):
+        return SimpleNamespace(n_used=n, features=SimpleNamespace(kinds=["numeric"] * p, n_features=p),
+                               site_labels=[f"s{k}" for k in range(sites)], outcome=np.zeros(n) if outcome else None)
+
+    def order(prep):
+        queued = [a for a in REGISTRY if a.name in {"maps", "maps_tsne", "harmonise"}]
+        return [a.name for a in sorted(queued, key=lambda a: -a.cost(prep))]
+
+    assert order(shape(6000, 19, 4, True)) == ["harmonise", "maps", "maps_tsne"]
+    assert order(shape(9000, 20, 30, False)) == ["maps", "maps_tsne", "harmonise"]
+    assert order(shape(100_000, 50, 4, False))[0] == "harmonise"

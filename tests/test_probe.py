@@ -291,3 +291,62 @@ def test_null_type_one_error_pure_noise():
     cover, reject = _null_runs(make, range(150))
     assert reject <= max_reject, (reject, max_reject)
     assert cover >= min_cover, (cover, min_cover)
+
+
+def _many_levels_frame(n_sites, n_levels, n=1800, seed=0):
+    # Invented network: a ward code with many levels (its frequency falls off like 1/rank), sodium with a site offset.
+    rng = np.random.default_rng(seed)
+    site = rng.integers(0, n_sites, n)
+    p = 1.0 / np.arange(1, n_levels + 1)
+    ward = rng.choice(n_levels, n, p=p / p.sum())
+    ward = np.array([f"W{w:03d}" for w in ward], dtype=object)
+    ward[rng.random(n) < 0.05] = None
+    return pd.DataFrame({"site": [f"Clinic{s:02d}" for s in site], "ward": ward,
+                         "sodium": np.round(140 + 0.8 * site + rng.normal(0, 3, n))})
+
+
+@pytest.mark.parametrize("n_sites", [4, 12])
+def test_categorical_with_more_levels_than_the_bins_is_pooled(n_sites):
+    frame = _many_levels_frame(n_sites, 300)
+    prep = _prep(frame, site="site")
+    limit = 63 if n_sites > 8 else 250
+    n_levels = frame["ward"].nunique()
+    assert prep.features.max_levels == limit and prep.features.lumped == {"ward": n_levels - (limit - 1)}
+    col = prep.X[:, list(prep.features.names).index("ward")]
+    assert len(np.unique(col[~np.isnan(col)])) == limit
+    assert np.isnan(col).sum() == frame["ward"].isna().sum()
+    # the kept levels are the most frequent ones (reference: pandas value_counts, ties by label)
+    vc = frame["ward"].value_counts()
+    top = sorted(sorted(vc.index, key=lambda v: (-vc[v], v))[: limit - 1])
+    assert prep.features.levels["ward"] == tuple(top) + ("(other)",)
+    other = limit - 1
+    rare = ~frame["ward"].isin(top) & frame["ward"].notna()
+    assert np.all(col[rare.to_numpy()] == other)
+    result = site_probe(prep, n_boot=50, n_permutations=19, groups=False, within_outcome=False)
+    d = result.to_dict()
+    assert d["lumped_categoricals"] == {"ward": n_levels - (limit - 1)} and d["categorical_level_limit"] == limit
+    assert 0.5 < d["auc"] <= 1.0
+
+
+def test_cross_fit_pools_for_a_model_with_fewer_bins():
+    # a 12-class sub-problem on a matrix encoded for 4 sites (250 levels kept): cross_fit pools to 63
+    from sitecheck.table.prepare import apply_level_maps, level_maps_for
+
+    frame = _many_levels_frame(4, 200, seed=2)
+    prep = _prep(frame, site="site")
+    j = list(prep.features.names).index("ward")
+    y = np.random.default_rng(1).integers(0, 12, prep.n_used)
+    fit = cross_fit(prep.X, y, prep.features.categorical, 3, random_state=0)
+    n_present = len(np.unique(prep.X[~np.isnan(prep.X[:, j]), j]))
+    assert fit.pooled == {j: n_present - 62}
+    Xt = fit.transform(prep.X)
+    assert len(np.unique(Xt[~np.isnan(Xt[:, j]), j])) == 63 and np.isnan(Xt[:, j]).sum() == np.isnan(prep.X[:, j]).sum()
+    maps, pooled = level_maps_for(prep.X, prep.features.categorical, 63)
+    assert pooled == fit.pooled and np.array_equal(apply_level_maps(prep.X, maps), Xt, equal_nan=True)
+    # a group column with 12 levels on the 4-site table: its probe pools and says how many
+    frame["unit"] = [f"U{v:02d}" for v in np.random.default_rng(4).integers(0, 12, len(frame))]
+    prep2 = _prep(frame, site="site", groups=("unit",))
+    g = site_probe(prep2, n_boot=50, n_permutations=19, linear=False, within_outcome=False).groups.to_dict()
+    n_ward = len(np.unique(prep2.X[~np.isnan(prep2.X[:, j]), j]))
+    assert g["unit"]["pooled_levels"] == {"ward": n_ward - 62} and g["unit"]["auc"] is not None
+

@@ -260,10 +260,10 @@ def test_script_without_main_guard_still_finishes(tmp_path):
         "doc, said = {}, []\n"
         "for jobs in (2, 1):\n"
         "    r = scan_frame(frame, site='hospital', options=ScanOptions(n_jobs=jobs, analyses=('probe', 'leakage',\n"
-        "                   'fingerprints')), progress=said.append)\n"
+        "                   'harmonise')), progress=said.append)\n"
         "    d = r.to_dict(); d['run'].pop('seconds'); d['run']['options'].pop('n_jobs')\n"
         "    doc[jobs] = json.dumps(d, sort_keys=True, default=str)\n"
-        "print('FALLBACK' if any(m.startswith('the second process stopped; running fingerprints here')\n"
+        "print('FALLBACK' if any(m.startswith('the second process stopped; running harmonise here')\n"
         "                        for m in said) else 'NO FALLBACK')\n"
         "print('SAME' if doc[1] == doc[2] else 'DIFFERENT')\n", encoding="utf-8")
     res = subprocess.run([sys.executable, str(script)], capture_output=True, text=True, timeout=300,

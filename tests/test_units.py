@@ -146,3 +146,29 @@ def test_candidate_factors_without_name_cover_the_table_and_prefixes():
     assert any(math.isclose(f, 88.4017, rel_tol=1e-4) for f in fs)
     assert any(math.isclose(f, 1000.0) for f in fs)
     assert len(fs) == len({round(f, 6) for f in fs})
+
+
+@pytest.mark.parametrize("analyte_col,frm,to,published", [
+    ("creatinine", "mg/dL", "umol/L", "88.4"), ("glucose", "mg/dL", "mmol/L", "0.0555"),
+    ("bilirubin", "mg/dL", "µmol/l", "17.1"), ("albumin", "g/dL", "g/L", "10"), ("crp", "mg/dL", "mg/L", "10"),
+])
+def test_unit_factor_between_written_labels_matches_published_table(analyte_col, frm, to, published):
+    # same AMA / Young 1987 factors as PUBLISHED above, reached from unit labels as sites write them
+    from sitecheck.table.units import unit_factor
+
+    f, source = unit_factor(frm, to, analyte_col)
+    assert abs(f - float(published)) <= _half_ulp(published)
+    back, _ = unit_factor(to, frm, analyte_col)
+    assert back == pytest.approx(1 / f, rel=1e-12)
+
+
+def test_canonical_units_and_metric_prefixes():
+    from sitecheck.table.units import canonical_unit, unit_factor
+
+    assert {canonical_unit(s) for s in ("umol/L", "µmol/l", "μmol/L", "micromol/L", "UMOL/L")} == {"umol/L"}
+    assert canonical_unit("ward 3") is None and canonical_unit("12A") is None
+    # SI brochure (BIPM, 9th ed.) prefixes: 1 ng/mL = 1000 ng/L; 1 mg/dL = 10 mg/L; 1 mmol/L = 1000 umol/L
+    assert unit_factor("ng/mL", "ng/L") == (pytest.approx(1000.0), "metric prefixes")
+    assert unit_factor("mg/dL", "mg/L")[0] == pytest.approx(10.0)
+    assert unit_factor("mmol/L", "umol/L")[0] == pytest.approx(1000.0)
+    assert unit_factor("mg/dL", "mmol/L") is None        # needs a molar mass: only with the analyte's name

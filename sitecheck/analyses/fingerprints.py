@@ -16,7 +16,13 @@ cleaned by earlier ones and skip what is already explained:
 4. ``unit_ratio`` -- the site's quantiles are a published conversion factor
    times the others' (:mod:`sitecheck.table.units`), or Fahrenheit against Celsius.
    Sites with a unit finding leave the reference of later detectors.
-5. ``floor`` / ``ceiling`` -- a point mass at the site's minimum/maximum that
+5. ``censored_below`` / ``censored_above`` -- the site writes cells as ``<5`` or
+   ``>20`` (read by intake as the limit with a flag) while the other sites censor
+   less often; its censored cells leave the values of later detectors.
+   ``number_format`` -- the site writes decimal commas, a unit after the number
+   or thousands separators where the others do not (per-site cell counts from
+   intake).
+   ``floor`` / ``ceiling`` -- a point mass at the site's minimum/maximum that
    the other sites do not show at that value, while they do have values
    beyond it (a detection or reporting limit).
 6. ``precision`` -- the recording grid (0.1, 0.5, 1, ...) differs by site.
@@ -115,6 +121,10 @@ class FingerprintResult:
     features: Tuple[str, ...]
     covariates: Tuple[str, ...]
     params: Dict[str, Any]
+    #: Feature -> why the value detectors skipped it (recorded at fewer than two sites).
+    skipped: Dict[str, str] = field(default_factory=dict)
+    #: unit column -> its link to the numeric column it qualifies (:func:`link_unit_columns`)
+    unit_columns: Dict[str, Dict[str, Any]] = field(default_factory=dict)
 
     def of_kind(self, kind: str) -> List[Fingerprint]:
         return [f for f in self.findings if f.kind == kind]
@@ -122,21 +132,14 @@ class FingerprintResult:
     def to_dict(self) -> dict:
         return {"findings": [f.to_dict() for f in self.findings], "tests": _jsonable(self.tests),
                 "n_rows": int(self.n_rows), "features": list(self.features),
-                "covariates": list(self.covariates), "params": _jsonable(self.params)}
+                "covariates": list(self.covariates), "params": _jsonable(self.params),
+                "skipped": dict(self.skipped),
+                "unit_columns": _jsonable(self.unit_columns)}
 
 
 
 
-def _r(x, digits: int = 6):
-    """Round for stable JSON (same data and seed -> same bytes across platforms)."""
-    if x is None:
-        return None
-    x = float(x)
-    if not math.isfinite(x):
-        return None
-    if x == 0:
-        return 0.0
-    return float(f"{x:.{digits}g}")
+from sitecheck.analyses.stats import round_sig as _r  # noqa: E402  (stable JSON rounding, shared)
 
 
 # ---------------------------------------------------------------------------
@@ -319,16 +322,31 @@ def detect_missing_codes(vals: Sequence[np.ndarray], *, min_count: int = 10) -> 
         if not tested:
             continue
         m = len(tested)
+        kept = []
         for code, cnt, c_rest, p in tested:
             share_s, share_r = cnt / len(v), c_rest / len(rest)
-            ev = {"value": code, "p_value": _r(min(1.0, p * m)),
-                  "at_site": {"n": int(len(v)), "count": int(cnt), "share": _r(share_s)},
-                  "elsewhere": {"n": int(len(rest)), "count": int(c_rest), "share": _r(share_r)},
-                  "reference_range": [_r(q005), _r(q995)]}
-            detail = (f"the value {code:g} appears {cnt} times ({share_s:.1%} of recorded values) at this site, "
-                      f"far outside the range of the other sites ({q005:.4g} to {q995:.4g})")
-            out.append(_Cand(-1, s, "missing_code", min(1.0, p * m), share_s > 2 * share_r + 0.005, detail, ev,
-                             "high", f"treat {code:g} as missing at this site before analysis", payload=code))
+            if share_s > 2 * share_r + 0.005:
+                kept.append({"value": code, "count": int(cnt), "share": _r(share_s), "count_elsewhere": int(c_rest),
+                             "share_elsewhere": _r(share_r), "p_value": _r(min(1.0, p * m)), "_p": min(1.0, p * m)})
+        if not kept:
+            continue
+        # one finding per feature x site: the codes listed, the most frequent first
+        kept.sort(key=lambda e: (-e["count"], e["value"]))
+        top = kept[0]
+        cnt = sum(e["count"] for e in kept)
+        c_rest = sum(e["count_elsewhere"] for e in kept)
+        p_min = min(e.pop("_p") for e in kept)
+        codes = [e["value"] for e in kept]
+        ev = {"value": top["value"], "codes": kept, "p_value": _r(p_min),
+              "at_site": {"n": int(len(v)), "count": int(cnt), "share": _r(cnt / len(v))},
+              "elsewhere": {"n": int(len(rest)), "count": int(c_rest), "share": _r(c_rest / len(rest))},
+              "reference_range": [_r(q005), _r(q995)]}
+        shown = ", ".join(f"{c:g}" for c in codes)
+        detail = (f"the value{'s' if len(codes) > 1 else ''} {shown} appear{'' if len(codes) > 1 else 's'} {cnt} times "
+                  f"({cnt / len(v):.1%} of recorded values) at this site, far outside the range of the other sites "
+                  f"({q005:.4g} to {q995:.4g})")
+        out.append(_Cand(-1, s, "missing_code", p_min, True, detail, ev,
+                         "high", f"treat {shown} as missing at this site before analysis", payload=tuple(codes)))
     return out
 
 
@@ -385,6 +403,9 @@ def detect_unit_ratio(vals: Sequence[np.ndarray], name: Optional[str] = None, *,
             temp_case = "C_at_site"
         if temp_case is not None:
             ref_ids = [t for t in refs if (30 <= meds[t] <= 45) == (temp_case == "F_at_site")]
+            if not ref_ids:  # no other site in the other scale: no temperature pair to compare
+                temp_case = None
+        if temp_case is not None:
             ref = np.concatenate([vals[t] for t in ref_ids])
             conv = TEMPERATURE.forward(v) if temp_case == "F_at_site" else TEMPERATURE.backward(v)
             med_conv = float(np.median(conv))
@@ -813,14 +834,291 @@ def detect_exclusive_levels(values: np.ndarray, site_code: np.ndarray, k: int, *
         if len(nz) == 1 and int(nz.iloc[0]) >= min_count:
             per_site.setdefault(int(nz.index[0]), []).append((str(level), int(nz.iloc[0])))
     for s, levels in sorted(per_site.items()):
+        # one finding per feature x site listing its levels, the most frequent first
         m = len(levels)
-        for level, c in sorted(levels):
+        rows, ps = [], []
+        for level, c in sorted(levels, key=lambda t: (-t[1], t[0])):
             p = float(_st.hypergeom.pmf(c, N, int(n_site[s]), c))
-            ev = {"level": level, "p_value": _r(min(1.0, p * m)), "count": int(c), "n": int(n_site[s]),
-                  "n_reference": int(N - n_site[s])}
-            detail = f"level {level!r} occurs only at this site ({c} rows) and never at the other sites"
-            out.append(_Cand(-1, s, "exclusive_level", min(1.0, p * m), True, detail, ev, "medium",
-                             "map the level to the common coding used elsewhere, or confirm it is a local category"))
+            ps.append(min(1.0, p * m))
+            rows.append({"level": level, "count": int(c), "p_value": _r(ps[-1])})
+        p_min = min(ps)
+        total = sum(r["count"] for r in rows)
+        ev = {"level": rows[0]["level"], "levels": rows, "p_value": _r(p_min), "count": int(total),
+              "n": int(n_site[s]), "n_reference": int(N - n_site[s])}
+        shown = ", ".join(repr(r["level"]) for r in rows[:5]) + (f" and {m - 5} more" if m > 5 else "")
+        detail = (f"level {shown} occurs only at this site ({total} rows) and never at the other sites" if m == 1 else
+                  f"{m} levels occur only at this site ({total} rows) and never at the other sites: {shown}")
+        out.append(_Cand(-1, s, "exclusive_level", p_min, True, detail, ev, "medium",
+                         "map the level to the common coding used elsewhere, or confirm it is a local category",
+                         payload=tuple(r["level"] for r in rows)))
+    return out
+
+
+def detect_censoring(vals: Sequence[np.ndarray], flags: Sequence[np.ndarray], *, min_count: int = 10,
+                     min_share_gap: float = 0.02) -> List[_Cand]:
+    """Censored cells (``<5``, ``>20``) written at one site more than at the others.
+
+    ``vals[s]`` are the site's recorded values and ``flags[s]`` their censoring
+    flags from intake (-1 below a limit, +1 above, 0 none); a censored cell holds
+    its limit. For each site and side: the share of the site's values censored on
+    that side against the other sites' share (Fisher's one-sided exact test). The
+    effect must be at least ``min_share_gap`` and three times the others' share,
+    with at least ``min_count`` censored cells. The evidence gives the limits (the
+    most frequent first) with the share of the site's values at each, and the
+    other sites' behaviour at the main limit: how many of their values lie beyond
+    it as measured numbers and how many they censor there. False-positive rate per
+    feature x site x side: at most the per-test level (exact conditional test).
+    """
+    out: List[_Cand] = []
+    k = len(vals)
+    for side, kind in ((-1, "censored_below"), (1, "censored_above")):
+        cnt = np.array([int(np.sum(flags[t] == side)) for t in range(k)])
+        tot = np.array([len(vals[t]) for t in range(k)])
+        for s in range(k):
+            if cnt[s] < min_count or tot[s] == 0:
+                continue
+            k_r, n_r = int(cnt.sum() - cnt[s]), int(tot.sum() - tot[s])
+            if n_r == 0:
+                continue
+            sh_s, sh_r = cnt[s] / tot[s], k_r / n_r
+            lim, lim_n = np.unique(vals[s][flags[s] == side], return_counts=True)
+            order = np.lexsort((lim, -lim_n))
+            limits = [{"limit": _r(lim[i]), "count": int(lim_n[i]), "share": _r(lim_n[i] / tot[s])} for i in order]
+            L = float(lim[order[0]])
+            rest_v = np.concatenate([vals[t] for t in range(k) if t != s])
+            rest_f = np.concatenate([flags[t] for t in range(k) if t != s])
+            measured = rest_f == 0
+            beyond = int(np.sum(measured & ((rest_v < L) if side < 0 else (rest_v > L))))
+            at_cens = int(np.sum((rest_f == side) & (np.abs(rest_v - L) <= 1e-9 * max(1.0, abs(L)))))
+            p = _fisher_greater(int(cnt[s]), int(tot[s] - cnt[s]), k_r, n_r - k_r)
+            effect = sh_s - sh_r >= min_share_gap and sh_s >= 3 * sh_r
+            word, sign = ("below", "<") if side < 0 else ("above", ">")
+            ev = {"limit": _r(L), "limits": limits, "p_value": _r(p),
+                  "at_site": {"n": int(tot[s]), "count": int(cnt[s]), "share": _r(sh_s)},
+                  "elsewhere": {"n": n_r, "count": k_r, "share": _r(sh_r),
+                                f"share_measured_{word}": _r(beyond / n_r), "censored_at_limit": at_cens}}
+            listed = ", ".join(sign + format(e["limit"], "g") for e in limits)
+            more = f" (limits {listed})" if len(limits) > 1 else ""
+            detail = (f"{sh_s:.1%} of values are written as {sign}{L:g}{more} at this site, against {sh_r:.1%} "
+                      f"censored elsewhere, where {beyond / n_r:.1%} of values are measured {word} {L:g}")
+            fix = (f"choose one policy for the censored cells (keep the limit, limit / sqrt(2), or missing) and "
+                   f"consider censoring every site at {sign}{L:g}")
+            out.append(_Cand(-1, s, kind, p, effect, detail, ev, "medium", fix, payload=L))
+    return out
+
+
+#: Number-format idioms (from intake) that make a site's export differ.
+FORMAT_IDIOMS = ("decimal_comma", "unit_suffix", "thousands_separator")
+
+
+def detect_number_format(idioms: Dict[str, Dict[str, int]], units: Dict[str, Dict[str, int]],
+                         labels: Sequence[str], n_present: Sequence[int], *, min_count: int = 10,
+                         min_share_gap: float = 0.02) -> List[_Cand]:
+    """A site writes its numbers differently: decimal commas, a unit after the
+    number, thousands separators.
+
+    Intake reads such cells as numbers (:func:`sitecheck.reading.intake.parse_idioms`)
+    and counts them per site; a pipeline that does not will see text or missing
+    values at that site only. For each site: the share of its recorded values in
+    each format against the other sites' (Fisher's one-sided exact test on the
+    most frequent format; effect at least ``min_share_gap`` and three times the
+    others' share, at least ``min_count`` cells). One finding per feature x site
+    lists the formats. A site that writes another unit than the others is named
+    in the evidence (``units``).
+    """
+    out: List[_Cand] = []
+    k = len(labels)
+    n_present = np.asarray(n_present, dtype=np.int64)
+    for s in range(k):
+        own = idioms.get(labels[s], {})
+        if n_present[s] == 0:
+            continue
+        formats, best = [], None
+        for key in FORMAT_IDIOMS:
+            c = int(own.get(key, 0))
+            if c < min_count:
+                continue
+            c_r = int(sum(idioms.get(labels[t], {}).get(key, 0) for t in range(k) if t != s))
+            n_r = int(n_present.sum() - n_present[s])
+            if n_r == 0:
+                continue
+            sh_s, sh_r = c / n_present[s], c_r / n_r
+            if not (sh_s - sh_r >= min_share_gap and sh_s >= 3 * sh_r):
+                continue
+            p = _fisher_greater(c, int(n_present[s] - c), c_r, n_r - c_r)
+            formats.append({"format": key, "count": c, "share": _r(sh_s), "count_elsewhere": c_r,
+                            "share_elsewhere": _r(sh_r), "p_value": _r(p)})
+            if best is None or p < best:
+                best = p
+        if not formats:
+            continue
+        own_units = dict(units.get(labels[s], {}))
+        other_units: Dict[str, int] = {}
+        for t in range(k):
+            if t != s:
+                for u, c in units.get(labels[t], {}).items():
+                    other_units[u] = other_units.get(u, 0) + int(c)
+        m = len(formats)
+        ev = {"formats": formats, "p_value": _r(min(1.0, best * m)),
+              "at_site": {"n": int(n_present[s]), "count": int(max(f["count"] for f in formats))},
+              "units": own_units, "units_elsewhere": other_units}
+        words = {"decimal_comma": "decimal commas", "unit_suffix": "a unit after the number",
+                 "thousands_separator": "thousands separators"}
+        said = "; ".join(f"{words[f['format']]} in {f['share']:.0%} of cells ({f['share_elsewhere']:.0%} elsewhere)"
+                         for f in formats)
+        if own_units:
+            said += "; units written: " + ", ".join(f"{u} ({c})" for u, c in sorted(own_units.items()))
+        detail = f"this site writes {said}"
+        out.append(_Cand(-1, s, "number_format", min(1.0, best * m), True, detail, ev, "low",
+                         "rewrite this site's cells as plain numbers with a decimal point (the repair plan's "
+                         "number_format entry); intake has already read them as numbers",
+                         payload=tuple(f["format"] for f in formats)))
+    return out
+
+
+# ---------------------------------------------------------------------------
+# unit columns: a text column whose levels are units, linked to the values
+# ---------------------------------------------------------------------------
+
+def _text_values(table, name: str) -> np.ndarray:
+    """A categorical or binary column's cells as text (binary columns are stored as 0/1)."""
+    x = table.frame[name]
+    if name in table.binary_levels:
+        lv0, lv1 = table.binary_levels[name]
+        v = x.to_numpy(dtype=float)
+        out = np.where(v == 1.0, lv1, lv0).astype(object)
+        out[np.isnan(v)] = None
+        return out
+    return x.to_numpy(dtype=object)
+
+
+def link_unit_columns(table, *, min_count: int = 10) -> Dict[str, Dict[str, Any]]:
+    """Find the text columns whose levels are units and the numeric column each qualifies.
+
+    A feature is a unit column when every level reads as a unit
+    (:func:`sitecheck.table.units.canonical_unit`: ``mg/dL``, ``umol/L``, ``µmol/l``,
+    ``g/L`` ...). It is linked to a numeric feature by name (``creat_unit`` ->
+    ``creatinine``; :func:`sitecheck.table.units.unit_column_base`) or, failing that, by
+    the values: the ratio of the numeric feature's medians between two unit levels
+    (at least ``min_count`` rows each) within 10% of the conversion factor between
+    those units (:func:`sitecheck.table.units.unit_factor`: the SI table for the named
+    analyte, else metric prefixes), with a factor of at least 1.8 either way so that
+    a ratio near 1 links nothing.
+
+    Returns
+    -------
+    dict
+        Unit column -> ``{"column", "linked_by", "levels", "ratio", "factor",
+        "factor_source", "from_unit", "to_unit"}`` (``column`` None when the levels
+        are units but no numeric feature matched).
+    """
+    from sitecheck.table.units import canonical_unit, names_refer_to_same, unit_column_base, unit_factor
+
+    out: Dict[str, Dict[str, Any]] = {}
+    numeric = [f for f in table.features if table.kind(f) == "numeric"]
+    for col in table.columns:
+        if col.role != "feature" or col.kind not in ("categorical", "binary"):
+            continue
+        if col.kind == "binary" and col.name not in table.binary_levels:
+            continue
+        if col.levels and len(col.levels) > 30:
+            continue
+        raw = pd.Series(_text_values(table, col.name), dtype=object)
+        present = raw.notna().to_numpy()
+        if not present.any():
+            continue
+        levels = pd.unique(raw[present])
+        if len(levels) > 30:
+            continue
+        canon = {lv: canonical_unit(lv) for lv in levels}
+        if any(c is None for c in canon.values()) or len(set(canon.values())) < 2:
+            continue
+        units = raw.map(canon).where(raw.notna(), None).to_numpy(dtype=object)
+        counts = pd.Series(units[present]).value_counts()
+        ref_unit = str(counts.index[0])
+        base = unit_column_base(col.name)
+        by_name = [f for f in numeric if base is not None and names_refer_to_same(base, f)]
+        best = None
+        for f in (by_name or numeric):
+            x = table.frame[f].to_numpy(dtype=float)
+            ref_rows = (units == ref_unit) & ~np.isnan(x)
+            if ref_rows.sum() < min_count:
+                continue
+            m_ref = float(np.median(x[ref_rows]))
+            if m_ref <= 0:
+                continue
+            for u in counts.index[1:]:
+                rows = (units == u) & ~np.isnan(x)
+                if rows.sum() < min_count:
+                    continue
+                fac = unit_factor(ref_unit, str(u), f)
+                if fac is None:
+                    continue
+                ratio = float(np.median(x[rows])) / m_ref
+                if ratio <= 0 or abs(math.log(fac[0])) < math.log(1.8):
+                    continue
+                err = abs(math.log(ratio / fac[0]))
+                if err <= math.log(1.10) and (best is None or (f not in by_name, err) < (best[0] not in by_name, best[1])):
+                    best = (f, err, ratio, fac, str(u))
+        if best is not None:
+            f, err, ratio, fac, u = best
+            linked_by = "name and values" if f in by_name else "values"
+            out[col.name] = {"column": f, "linked_by": linked_by, "levels": {str(k): int(v) for k, v in counts.items()},
+                             "ratio": _r(ratio), "factor": _r(fac[0]), "factor_source": fac[1],
+                             "from_unit": ref_unit, "to_unit": u}
+        else:
+            out[col.name] = {"column": by_name[0] if len(by_name) == 1 else None,
+                             "linked_by": "name" if len(by_name) == 1 else None,
+                             "levels": {str(k): int(v) for k, v in counts.items()}, "ratio": None, "factor": None,
+                             "factor_source": None, "from_unit": ref_unit, "to_unit": None}
+    return out
+
+
+def detect_unit_label(units: np.ndarray, site_code: np.ndarray, k: int, link: Dict[str, Any], *,
+                      min_count: int = 10, min_share_gap: float = 0.02) -> List[_Cand]:
+    """A site writes another unit in a unit column than the other sites.
+
+    ``units`` holds the canonical unit of each row (None when missing). At site
+    ``s`` with main unit ``u`` that is not the others' main unit: the share of the
+    site's rows in ``u`` against the others' share (Fisher's one-sided exact test;
+    effect at least ``min_share_gap`` and three times the others' share, at least
+    ``min_count`` rows). False-positive rate: at most the per-test level.
+    """
+    out: List[_Cand] = []
+    ok = pd.notna(units)
+    for s in range(k):
+        at = ok & (site_code == s)
+        rest = ok & (site_code != s)
+        if at.sum() < min_count or rest.sum() == 0:
+            continue
+        own = pd.Series(units[at]).value_counts()
+        oth = pd.Series(units[rest]).value_counts()
+        u, u_ref = str(own.index[0]), str(oth.index[0])
+        if u == u_ref:
+            continue
+        c_s, n_s = int(own.iloc[0]), int(at.sum())
+        c_r, n_r = int(oth.get(u, 0)), int(rest.sum())
+        sh_s, sh_r = c_s / n_s, c_r / n_r
+        p = _fisher_greater(c_s, n_s - c_s, c_r, n_r - c_r)
+        effect = c_s >= min_count and sh_s - sh_r >= min_share_gap and sh_s >= 3 * sh_r
+        col = link.get("column")
+        ev = {"unit": u, "reference_unit": u_ref, "linked_column": col, "linked_by": link.get("linked_by"),
+              "ratio": link.get("ratio"), "factor": link.get("factor"), "factor_source": link.get("factor_source"),
+              "levels_at_site": {str(a): int(b) for a, b in own.items()},
+              "levels_elsewhere": {str(a): int(b) for a, b in oth.items()}, "p_value": _r(p),
+              "at_site": {"n": n_s, "count": c_s, "share": _r(sh_s)},
+              "elsewhere": {"n": n_r, "count": c_r, "share": _r(sh_r)}}
+        if col is not None:
+            how = {"name": "by name", "values": "by its values", "name and values": "by name and values"}[link["linked_by"]]
+            ratio = (f"; the values' ratio {link['ratio']:.4g} between {link['to_unit']} and {link['from_unit']} "
+                     f"matches the factor {link['factor']:.4g}" if link.get("ratio") is not None else "")
+            what = f"this column gives the unit of {col!r} (linked {how}{ratio}): "
+        else:
+            what = "this column's levels are units, linked to no numeric column: "
+        detail = f"{what}this site writes {u} in {sh_s:.0%} of rows, the other sites {u_ref} ({sh_r:.0%} {u})"
+        fix = (f"convert {col!r} at this site from {u} to {u_ref} and write {u_ref} in this column"
+               if col is not None else f"check which column this unit qualifies; the site writes {u}")
+        out.append(_Cand(-1, s, "unit_label", p, effect, detail, ev, "high", fix, payload=(u, u_ref, col)))
     return out
 
 
@@ -839,7 +1137,36 @@ _EXPLAIN = {
     "exclusive_level": "A category is used only at this site, so the level alone identifies it.",
     "shift": "Values are offset at this site beyond what the covariates explain (analyser, method or case mix).",
     "scale": "Values are more or less spread at this site beyond what the covariates explain.",
+    "censored_below": "The site writes values below a detection limit as '<limit' more often than the others: "
+                      "the censored cells sit at the limit, which marks the site.",
+    "censored_above": "The site writes values above a reporting limit as '>limit' more often than the others.",
+    "number_format": "The site's export writes numbers differently (decimal comma, unit, separators); read as "
+                     "text, the column would mark the site.",
+    "unit_label": "A column that names the unit of a measurement says another unit at this site.",
 }
+
+
+def _cross_reference_units(findings, unit_links, table):
+    """Name the unit column on the numeric column's ``unit_ratio`` finding (and the
+    units written in the cells, from intake), so that each finding says so."""
+    from dataclasses import replace
+
+    by_value = {link["column"]: name for name, link in unit_links.items() if link.get("column")}
+    out = []
+    for t in findings:
+        f = t[3]
+        if f.kind == "unit_ratio":
+            ev = dict(f.evidence)
+            detail = f.detail
+            if f.feature in by_value:
+                ev["unit_column"] = by_value[f.feature]
+                detail += f"; the unit column {by_value[f.feature]!r} gives this column's unit"
+            units = table.column(f.feature).units if hasattr(table, "column") else {}
+            if units:
+                ev["units_written"] = {s: dict(u) for s, u in units.items()}
+            f = replace(f, evidence=ev, detail=detail)
+        out.append((t[0], t[1], t[2], f))
+    return out
 
 
 def _table_of(data):
@@ -919,12 +1246,16 @@ def find_fingerprints(data, *, covariates: Optional[Sequence[str]] = None, alpha
     gram = _full_gram(site_code, Z, k)
 
     cands: List[_Cand] = []
+    skipped: Dict[str, str] = {}
     n_tests = {kd: 0 for kd in KINDS}
     numeric = [f for f in features if kinds[f] == "numeric"]
     categorical = [f for f in features if kinds[f] == "categorical"]
     n_tests["site_missing"] = len(features) * k
-    n_tests["exclusive_level"] = len(categorical) * k
-    for kd in ("unit_ratio", "precision", "heaping", "missing_code", "shift", "scale", "floor", "ceiling"):
+    unit_links = link_unit_columns(table, min_count=min_count)
+    n_tests["exclusive_level"] = len([f for f in categorical if f not in unit_links]) * k
+    n_tests["unit_label"] = len(unit_links) * k
+    for kd in ("unit_ratio", "precision", "heaping", "missing_code", "shift", "scale", "floor", "ceiling",
+               "censored_below", "censored_above", "number_format"):
         n_tests[kd] = len(numeric) * k
 
     for j, f in enumerate(features):
@@ -933,6 +1264,16 @@ def find_fingerprints(data, *, covariates: Optional[Sequence[str]] = None, alpha
         for c in detect_site_missing(present, site_code, k):
             c.j = j
             cands.append(c)
+        if f in unit_links:
+            from sitecheck.table.units import canonical_unit
+
+            texts = pd.Series(_text_values(table, f), dtype=object)
+            canon = {lv: canonical_unit(lv) for lv in pd.unique(texts.dropna())}
+            units = texts.map(canon).where(texts.notna(), None).to_numpy(dtype=object)
+            for c in detect_unit_label(units, site_code, k, unit_links[f], min_count=min_count):
+                c.j = j
+                cands.append(c)
+            continue
         if kinds[f] == "categorical":
             for c in detect_exclusive_levels(col.to_numpy(dtype=object), site_code, k):
                 c.j = j
@@ -945,8 +1286,35 @@ def find_fingerprints(data, *, covariates: Optional[Sequence[str]] = None, alpha
         for s in range(k):
             v = x[site_rows[s]]
             vals.append(np.sort(v[~np.isnan(v)]))
+        seen = [labels[s] for s in range(k) if len(vals[s])]
+        if len(seen) < 2:  # nothing to compare a site with; site_missing (above) says where it is missing
+            skipped[f] = ("recorded at no site" if not seen else f"recorded at one site only ({seen[0]})") + \
+                "; the value detectors compare a site with the others"
+            continue
+        column = table.column(f)
+        if column.idioms:
+            for c in detect_number_format(column.idioms, column.units, labels, [len(v) for v in vals],
+                                          min_count=min_count):
+                c.j = j
+                cands.append(c)
+        cens = table.censored(f) if hasattr(table, "censored") else None
+        cens_found: Dict[int, set] = {}
+        if cens is not None:
+            xs = [x[site_rows[s]] for s in range(k)]
+            fl = [cens[site_rows[s]][~np.isnan(xs[s])] for s in range(k)]
+            xv = [xs[s][~np.isnan(xs[s])] for s in range(k)]
+            for c in detect_censoring(xv, fl, min_count=min_count):
+                c.j = j
+                cands.append(c)
+                if c.p < alpha / max(n_tests[c.kind], 1) and c.passes_effect:
+                    cens_found.setdefault(c.s, set()).add(-1 if c.kind == "censored_below" else 1)
+            for s, sides in cens_found.items():
+                # censored cells are limits, not recorded values: out of the later detectors
+                vals[s] = np.sort(xv[s][~np.isin(fl[s], list(sides))])
         per_test = alpha / max(n_tests["missing_code"], 1)
         found: Dict[int, set] = {s: set() for s in range(k)}
+        for s in cens_found:
+            found[s].add("censored")
 
         mc = detect_missing_codes(vals, min_count=min_count)
         for c in mc:
@@ -954,7 +1322,7 @@ def find_fingerprints(data, *, covariates: Optional[Sequence[str]] = None, alpha
             cands.append(c)
             if c.p < per_test and c.passes_effect:
                 found[c.s].add("missing_code")
-                vals[c.s] = vals[c.s][vals[c.s] != c.payload]
+                vals[c.s] = vals[c.s][~np.isin(vals[c.s], c.payload)]
         ur = detect_unit_ratio(vals, f, min_count=min_count)
         for c in ur:
             c.j = j
@@ -987,14 +1355,14 @@ def find_fingerprints(data, *, covariates: Optional[Sequence[str]] = None, alpha
             if found[s] & {"unit_ratio"}:
                 y[site_code == s] = np.nan
             elif "missing_code" in found[s]:
-                codes = [c.payload for c in mc if c.s == s and c.p < per_test and c.passes_effect]
+                codes = [v for c in mc if c.s == s and c.p < per_test and c.passes_effect for v in c.payload]
                 y[(site_code == s) & np.isin(x, codes)] = np.nan
         y_adj, _ = adjust_for_covariates(y, site_code, Z, k, _gram=gram)
         adj_vals = []
         for s in range(k):
             v = y_adj[site_rows[s]]
             adj_vals.append(v[~np.isnan(v)])
-        act2 = [s for s in active if len(adj_vals[s]) > 0 and not found[s] & {"floor", "ceiling"}]
+        act2 = [s for s in active if len(adj_vals[s]) > 0 and not found[s] & {"floor", "ceiling", "censored"}]
         for c in detect_shift_scale(adj_vals, act2, min_count=min_count, min_smd=min_smd,
                                     min_sd_ratio=min_sd_ratio):
             c.j = j
@@ -1020,8 +1388,9 @@ def find_fingerprints(data, *, covariates: Optional[Sequence[str]] = None, alpha
     # a precision finding at a site that is explained by a unit change is dropped above
     # (unit sites leave 'active'); keep a stable order
     findings.sort(key=lambda t: (t[0], t[1], t[2], str(t[3].evidence.get("value", ""))))
+    findings = _cross_reference_units(findings, unit_links, table)
     return FingerprintResult(
         findings=tuple(t[3] for t in findings), tests=tests, n_rows=int(len(frame)),
-        features=tuple(features), covariates=tuple(covs),
+        features=tuple(features), covariates=tuple(covs), unit_columns=unit_links,
         params={"alpha": float(alpha), "min_count": int(min_count), "min_smd": float(min_smd),
-                "min_sd_ratio": float(min_sd_ratio), "min_tvd": float(min_tvd)})
+                "min_sd_ratio": float(min_sd_ratio), "min_tvd": float(min_tvd)}, skipped=skipped)

@@ -389,6 +389,7 @@ def rank_leakage(prep: Prepared, crossfit, *, n_repeats: Optional[int] = None, m
     seed = prep.seed if random_state is None else int(random_state)
     enc = prep.features
     X, names = enc.X, list(enc.names)
+    Xm = crossfit.transform(X) if hasattr(crossfit, "transform") else X  # as the fold models saw it
     y = prep.site
     p = X.shape[1]
     from sitecheck.table.prepare import stratified_subsample
@@ -413,7 +414,7 @@ def rank_leakage(prep: Prepared, crossfit, *, n_repeats: Optional[int] = None, m
         if len(te) > max_rows_per_fold:
             te = te[stratified_subsample(y[te], max_rows_per_fold, rng)]
         n_rows = max(n_rows, len(te))
-        base, drops = grouped_permutation_importance(model, X[te], y[te], [g[1] for g in groups],
+        base, drops = grouped_permutation_importance(model, Xm[te], y[te], [g[1] for g in groups],
                                                      n_repeats=n_repeats, random_state=derived_seed(seed, "leakage.fold_repeats", f))
         base_scores.append(base)
         fold_drops[f] = drops.mean(axis=1)

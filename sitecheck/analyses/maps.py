@@ -3,7 +3,8 @@
 :func:`compute_maps` draws a site-stratified subsample, preprocesses the
 features (median imputation with missing-value indicators and robust scaling
 for numeric columns, one-hot encoding for categorical ones), embeds them with
-PCA, t-SNE and UMAP, and scores how well the sites mix in the feature space
+PCA, t-SNE (FFT-accelerated, :func:`tsne_map`) and UMAP (compiled kernels cached between
+runs, :func:`kernel_cache_dir`), and scores how well the sites mix in the feature space
 and in each embedding with the local inverse Simpson's index (LISI) and the
 silhouette by site.
 
@@ -271,9 +272,206 @@ def preprocess(X, categorical) -> np.ndarray:
     return np.ascontiguousarray(Z, dtype=np.float64)
 
 
+#: Modules of umap-learn whose numba kernels :func:`kernel_cache_dir` caches (most are declared
+#: without ``cache=True`` and would otherwise be compiled again in every process, about 6 CPU seconds).
+_UMAP_KERNEL_MODULES = ("umap.umap_", "umap.layouts", "umap.utils", "umap.spectral", "umap.distances",
+                        "umap.sparse")
+
+
+def kernel_cache_dir() -> Optional[str]:
+    """The directory in which UMAP's compiled kernels are kept between runs, or None when it cannot be
+    created (caching is then skipped).
+
+    ``$NUMBA_CACHE_DIR`` when the user set it; otherwise
+    ``$XDG_CACHE_HOME/sitecheck/numba/<versions>`` (``~/.cache`` without ``XDG_CACHE_HOME``), one
+    folder per combination of Python, numba, umap-learn and pynndescent versions, so that an upgrade
+    never loads kernels compiled against another version. The cache holds machine code only, no data.
+    """
+    import importlib.metadata as md
+    import os
+    import platform
+
+    user = os.environ.get("NUMBA_CACHE_DIR")
+    if user:
+        return user
+    base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
+    parts = [f"py{platform.python_version()}"]
+    for pkg in ("numba", "umap-learn", "pynndescent"):
+        try:
+            parts.append(f"{pkg}{md.version(pkg)}")
+        except md.PackageNotFoundError:  # pragma: no cover
+            parts.append(f"{pkg}-none")
+    path = os.path.join(base, "sitecheck", "numba", "-".join(parts))
+    try:
+        os.makedirs(path, exist_ok=True)
+    except OSError:
+        return None
+    return path if os.access(path, os.W_OK) else None
+
+
+def _umap_with_cached_kernels():
+    """Import umap-learn with its numba kernels cached on disk (:func:`kernel_cache_dir`).
+
+    umap-learn declares most kernels without ``cache=True``, so every process compiled them again
+    (about 6 of the 9 CPU seconds of a 6,000-row map, measured). Setting ``NUMBA_CACHE_DIR`` alone caches
+    only the kernels declared with ``cache=True`` (pynndescent's and one of umap's): measured, the second
+    process still spent the same time on UMAP. Here each umap dispatcher not yet cached gets numba's
+    on-disk cache (``Dispatcher.enable_caching``, what ``cache=True`` does at decoration), located
+    in :func:`kernel_cache_dir`; numba's global configuration is left as it was. Compiled code loaded
+    from the cache is the code compiled before: the coordinates are the same bit for bit
+    (``tests/test_maps.py``). Anything unexpected in numba's internals leaves the kernels uncached.
+    """
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        import importlib
+
+        import umap
+
+        try:
+            from numba.core import config
+            from numba.core.caching import NullCache
+            from numba.core.dispatcher import Dispatcher
+
+            path = kernel_cache_dir()
+            if path is None:
+                return umap
+            saved = config.CACHE_DIR
+            config.CACHE_DIR = path  # read once, when each cache is created below
+            try:
+                for name in _UMAP_KERNEL_MODULES:
+                    module = importlib.import_module(name)
+                    for obj in vars(module).values():
+                        if isinstance(obj, Dispatcher) and isinstance(getattr(obj, "_cache", None), NullCache):
+                            obj.enable_caching()
+            finally:
+                config.CACHE_DIR = saved
+        except Exception:  # pragma: no cover - numba internals moved: run uncached
+            pass
+    return umap
+
+
+#: The t-SNE optimisation schedule (iterations, exaggeration, momentum); see :func:`tsne_map`.
+TSNE_EARLY_EXAGGERATION = 12.0
+TSNE_EARLY_ITER = 250
+TSNE_MOMENTUM = 0.8
+#: Floor of the learning rate ``rows / exaggeration`` (the classic default 200; scikit-learn's ``"auto"``
+#: has the same floor, written 50 on its gradient scale, which is a quarter of the usual one).
+TSNE_MIN_LEARNING_RATE = 200.0
+
+
+def tsne_map(Z, *, perplexity: float = 30.0, max_iter: int = 350, random_state: int = 0,
+             threads: Optional[int] = 1, gradient: str = "fft", min_intervals: int = 10,
+             theta: float = 0.5) -> Tuple[np.ndarray, Dict[str, Any]]:
+    """2-D t-SNE map of the rows of ``Z`` with FFT-accelerated interpolation of the repulsive forces.
+
+    Affinities: exact Euclidean neighbours from scikit-learn (``k = min(n - 1, 3 * perplexity)``),
+    Gaussian kernels calibrated to the perplexity and symmetrised (openTSNE
+    ``PerplexityBasedNN``). Start: the first two principal components scaled to a standard deviation of
+    1e-4 (openTSNE's ``pca`` initialisation, seeded). Schedule: ``TSNE_EARLY_ITER`` (250) iterations
+    with early exaggeration 12, then ``max_iter - 250`` iterations without exaggeration, momentum 0.8
+    throughout, learning rate ``max(n / exaggeration, 200)`` in each phase (Belkina et al. 2019; without
+    the floor, a few hundred rows barely move during early exaggeration). The repulsive
+    forces are interpolated on a grid and convolved by FFT (Linderman et al. 2019): 3 interpolation
+    points per interval, one interval per unit of the map and at least ``min_intervals`` intervals.
+
+    Parameters
+    ----------
+    Z : ndarray of shape (n, d)
+    perplexity : float, default 30
+        Capped at ``(n - 1) / 3`` (at least 2).
+    max_iter : int, default 350
+        Iterations in all (at least 250). Measured on 2 busy cores, 350 iterations: 4.3 CPU seconds at
+        6,000 rows against 14.5 for Barnes-Hut (openTSNE, theta 0.5) and 17.8 for scikit-learn's
+        (angle 0.7, the map this one replaced), with a map at least as trustworthy
+        (``tests/benchmarks/bench_maps.py``).
+    random_state : int
+        Seeds the PCA start and its jitter; the optimisation itself draws no random numbers.
+    threads : int or None, default 1
+        Threads of openTSNE's own loops (None: 1). One thread keeps repeated runs bit-identical.
+    gradient : {"fft", "bh"}, default "fft"
+        Repulsive forces by FFT-accelerated interpolation, or by Barnes-Hut (``theta``).
+    min_intervals : int, default 10
+        Fewest interpolation intervals per axis. openTSNE's default, 50, sets a fixed cost of about
+        5 CPU seconds per 350 iterations however few the rows (measured: 5.2 s at 600 rows, when
+        Barnes-Hut takes 0.9 s); with 10 it is 1.4 s, and 4.3 s instead of 7.6 s at 6,000 rows, with
+        the same LISI and trustworthiness (``bench_maps.py``). The intervals are never wider than one
+        unit of the map, the library's default resolution, which is what a spread-out map uses anyway
+        (its span grows past 10 units within the first iterations after early exaggeration).
+    theta : float, default 0.5
+        Barnes-Hut opening angle (``gradient="bh"`` only).
+
+    Returns
+    -------
+    coords : ndarray of shape (n, 2)
+    settings : dict
+        The settings as reported in ``report.json`` (``embedding.method_settings.tsne``).
+
+    References
+    ----------
+    van der Maaten, L. & Hinton, G. (2008). Visualizing data using t-SNE. JMLR 9, 2579-2605.
+    Linderman, G. C., Rachh, M., Hoskins, J. G., Steinerberger, S. & Kluger, Y. (2019). Fast
+    interpolation-based t-SNE for improved visualization of single-cell RNA-seq data. Nature Methods
+    16, 243-245.
+    Policar, P. G., Strazar, M. & Zupan, B. (2024). openTSNE: a modular Python library for t-SNE
+    dimensionality reduction and embedding. Journal of Statistical Software 109(3).
+    Belkina, A. C. et al. (2019). Automated optimized parameters for t-distributed stochastic neighbor
+    embedding improve visualization and analysis of large datasets. Nature Communications 10, 5415.
+    """
+    import openTSNE
+    from openTSNE import initialization
+    from openTSNE.affinity import PerplexityBasedNN
+    from openTSNE.nearest_neighbors import PrecomputedNeighbors
+
+    Z = np.asarray(Z, dtype=np.float64)
+    n, d = Z.shape
+    if n < 5:
+        raise InputError(f"maps need at least 5 rows, got {n}")
+    max_iter = int(max_iter)
+    if gradient not in ("fft", "bh"):
+        raise ValueError(f"gradient must be 'fft' or 'bh', got {gradient!r}")
+    if max_iter < TSNE_EARLY_ITER:
+        raise ValueError(f"max_iter must be at least the {TSNE_EARLY_ITER} early-exaggeration iterations, "
+                         f"got {max_iter}")
+    seed = int(random_state)
+    jobs = 1 if threads is None else max(1, int(threads))
+    perp = float(min(perplexity, max(2.0, (n - 1) / 3.0)))
+    k = int(min(n - 1, int(3 * perp)))
+    dist, idx = NearestNeighbors(n_neighbors=k).fit(Z).kneighbors()  # without Z: no row is its own neighbour
+    affinities = PerplexityBasedNN(perplexity=perp, knn_index=PrecomputedNeighbors(idx, dist), n_jobs=jobs)
+    if d >= 2:
+        start = initialization.pca(Z, n_components=2, random_state=seed)
+    else:  # one design column: its values on the first axis, the second axis from the jitter only
+        first = np.column_stack([Z[:, 0] - Z[:, 0].mean(), np.zeros(n)])
+        start = initialization.jitter(initialization.rescale(first), random_state=seed)
+    tsne = openTSNE.TSNE(n_components=2, perplexity=perp, negative_gradient_method=gradient, theta=theta,
+                         n_interpolation_points=3, min_num_intervals=int(min_intervals), ints_in_interval=1,
+                         n_jobs=jobs, random_state=seed, verbose=False)
+    embedding = tsne.prepare_initial(affinities=affinities, initialization=start)
+    for n_iter, exaggeration in ((TSNE_EARLY_ITER, TSNE_EARLY_EXAGGERATION), (max_iter - TSNE_EARLY_ITER, 1.0)):
+        if n_iter > 0:
+            embedding = embedding.optimize(n_iter=n_iter, exaggeration=exaggeration, momentum=TSNE_MOMENTUM,
+                                           learning_rate=max(n / exaggeration, TSNE_MIN_LEARNING_RATE),
+                                           inplace=True)
+    Y = np.array(embedding, dtype=np.float64)
+    fft = gradient == "fft"
+    settings = {"perplexity": perp, "max_iter": max_iter, "angle": None if fft else float(theta), "init": "pca",
+                "method": "fft_interpolation" if fft else "barnes_hut",
+                "interpolation": (f"3 points per interval, one interval per unit of the map, at least "
+                                  f"{int(min_intervals)} per axis") if fft else None,
+                "schedule": f"{TSNE_EARLY_ITER} iterations with early exaggeration {TSNE_EARLY_EXAGGERATION:g}, "
+                            f"then {max_iter - TSNE_EARLY_ITER} without; momentum {TSNE_MOMENTUM:g}; learning rate "
+                            f"max(rows / exaggeration, {TSNE_MIN_LEARNING_RATE:g})",
+                "early_exaggeration": TSNE_EARLY_EXAGGERATION, "early_exaggeration_iter": TSNE_EARLY_ITER,
+                "neighbours": f"exact (scikit-learn), Euclidean, k = {k}",
+                "library": "openTSNE",
+                "axes": "t-SNE coordinates have no units; distances between clusters and cluster "
+                        "sizes are not metric"}
+    return Y, settings
+
+
 def embed(Z, *, methods: Sequence[str] = METHODS, random_state: int = 0, tsne_max_iter: int = 350,
-          tsne_angle: float = 0.7, umap_n_epochs: int = 200, umap_n_neighbors: int = 15,
-          perplexity: float = 30.0, tsne_threads: Optional[int] = None
+          umap_n_epochs: int = 200, umap_n_neighbors: int = 15,
+          perplexity: float = 30.0, tsne_threads: Optional[int] = 1
           ) -> Tuple[Dict[str, np.ndarray], Dict[str, Dict[str, Any]]]:
     """2-D coordinates of the rows of ``Z`` by each method.
 
@@ -284,23 +482,17 @@ def embed(Z, *, methods: Sequence[str] = METHODS, random_state: int = 0, tsne_ma
     methods : sequence of {"pca", "tsne", "umap"}
     random_state : int
     tsne_max_iter : int, default 350
-        t-SNE iterations, the first 250 with early exaggeration (scikit-learn's
-        default is 1000). Measured at 10,000 rows: 1000 iterations would take
-        about 2 CPU minutes; 350 with angle 0.7 keeps all three maps within a
-        minute on 2 cores. Enough for a 2-D overview whose mixing is scored,
-        not for fine cluster detail.
-    tsne_angle : float, default 0.7
-        Barnes-Hut trade-off (scikit-learn's default 0.5; 0.7 measured about
-        40% cheaper at 10,000 rows).
+        t-SNE iterations, the first 250 with early exaggeration (:func:`tsne_map`). Enough for a
+        2-D overview whose mixing is scored, not for fine cluster detail.
     umap_n_epochs : int, default 200
         UMAP's own default above 10,000 rows. UMAP runs seeded and therefore
-        single-threaded, so that the same seed gives the same map.
+        single-threaded, so that the same seed gives the same map. Its compiled kernels are
+        cached between runs (:func:`kernel_cache_dir`).
     umap_n_neighbors : int, default 15
     perplexity : float, default 30
         t-SNE perplexity (capped at (n - 1) / 3).
-    tsne_threads : int or None
-        OpenMP threads for t-SNE (None: the library default, all cores).
-        The result does not depend on it.
+    tsne_threads : int or None, default 1
+        Threads of the t-SNE optimisation (:func:`tsne_map`).
 
     Returns
     -------
@@ -311,6 +503,8 @@ def embed(Z, *, methods: Sequence[str] = METHODS, random_state: int = 0, tsne_ma
     ----------
     van der Maaten, L. & Hinton, G. (2008). Visualizing data using t-SNE.
     JMLR 9, 2579-2605.
+    Linderman, G. C. et al. (2019). Fast interpolation-based t-SNE for improved
+    visualization of single-cell RNA-seq data. Nature Methods 16, 243-245.
     McInnes, L., Healy, J. & Melville, J. (2018). UMAP: Uniform Manifold
     Approximation and Projection for dimension reduction. arXiv:1802.03426.
     """
@@ -336,22 +530,12 @@ def embed(Z, *, methods: Sequence[str] = METHODS, random_state: int = 0, tsne_ma
                            "axes": "first two principal components of the scaled design (linear; distances are "
                                    "Euclidean in the projection)"}
         elif m == "tsne":
-            from sklearn.manifold import TSNE
-            from threadpoolctl import threadpool_limits
-
-            perp = float(min(perplexity, max(2.0, (n - 1) / 3.0)))
-            with threadpool_limits(limits=tsne_threads, user_api="openmp"):
-                Y = TSNE(n_components=2, perplexity=perp, init="pca", learning_rate="auto",
-                         max_iter=tsne_max_iter, angle=tsne_angle, random_state=seed).fit_transform(Z)
-            coords[m] = Y
-            settings[m] = {"perplexity": perp, "max_iter": int(tsne_max_iter), "angle": float(tsne_angle),
-                           "init": "pca", "method": "barnes_hut",
-                           "axes": "t-SNE coordinates have no units; distances between clusters and cluster "
-                                   "sizes are not metric"}
+            coords[m], settings[m] = tsne_map(Z, perplexity=perplexity, max_iter=tsne_max_iter,
+                                              random_state=seed, threads=tsne_threads)
         elif m == "umap":
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")
-                import umap  # imported lazily: numba compilation on first use
+                umap = _umap_with_cached_kernels()
 
                 nn = int(min(umap_n_neighbors, n - 1))
                 # exact neighbours from scikit-learn (self first, as UMAP expects): skips the approximate
@@ -444,9 +628,9 @@ def compute_maps(prep: Prepared, *, max_rows: int = 10_000, methods: Sequence[st
     tsne_max_iter, umap_n_epochs : int
         See :func:`embed`.
     tsne_threads : int or None, default 1
-        OpenMP threads for t-SNE. One thread was measured far faster than two
-        on a busy 2-core machine (threads spin while waiting) and at most about
-        1.5x slower on an idle one; the result does not depend on it.
+        Threads of the t-SNE optimisation. One thread keeps repeated runs
+        bit-identical (checked in ``tests/test_maps.py``); a scan runs the t-SNE
+        map beside other analyses, one core each.
     score_design : bool, default True
         Also score the mixing in the preprocessed design itself (space ``"features"``).
         A part computed to be merged into another (:func:`merge_maps`) leaves it out.

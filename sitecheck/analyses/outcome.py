@@ -63,7 +63,7 @@ from sitecheck._runtime import SINGLE_THREAD_BELOW as _SINGLE_THREAD_BELOW, deri
 from sitecheck.errors import InputError
 from sitecheck.analyses.heterogeneity import MIN_COUNT, SCALE, RateHeterogeneity, rate_heterogeneity
 from sitecheck.analyses.leakage import LeakageResult, grouped_permutation_importance
-from sitecheck.analyses.models import make_booster
+from sitecheck.analyses.models import fit_classifier, make_booster
 from sitecheck.table.prepare import Prepared
 from sitecheck.analyses.probe import cross_fit
 
@@ -698,6 +698,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
     # baseline model (the probe's family and settings), pooled cross-fit
     yi = y.astype(np.int64)
     pooled = cross_fit(X, yi, cat, folds, model="boosting", random_state=seed)
+    X = pooled.transform(X)  # as its fold models saw it (identical unless a categorical had too many levels)
     oof = pooled.proba[:, 1]
     fold_models = pooled.models
     pooled_auc, pooled_ci = _auc_ci(y, oof, n_boot=n_boot, random_state=derived_seed(seed, "outcome.pooled"))
@@ -713,7 +714,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
         model = make_booster(cat, random_state=derived_seed(seed, "outcome.pooled"), max_iter=max_iter)
         for i, (tr, te) in enumerate(site_folds):
             if trainable[i]:
-                loso_pred[te] = clone(model).fit(X[tr], yi[tr]).predict_proba(X[te])[:, 1]
+                loso_pred[te] = fit_classifier(clone(model), X[tr], yi[tr]).predict_proba(X[te])[:, 1]
     for i, lab in enumerate(labels):
         tr, te = site_folds[i]
         if not trainable[i]:

@@ -19,7 +19,7 @@ International Conference on Learning Representations (ICLR).
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any, Dict, List, Optional, Sequence, Tuple, Union
 
 import numpy as np
@@ -29,7 +29,7 @@ from sklearn.model_selection import StratifiedKFold
 from sitecheck.analyses import stats
 from sitecheck._runtime import derived_seed, native_threads, stream, thread_limit
 from sitecheck.errors import InputError, ParameterError
-from sitecheck.analyses.models import make_booster, make_linear
+from sitecheck.analyses.models import MANY_CLASSES, booster_max_bins, fit_classifier, make_booster, make_linear
 
 MODELS = ("boosting", "linear")
 
@@ -69,6 +69,10 @@ class CrossFit:
         "boosting" or "linear".
     n_iter : tuple of int
         Boosting iterations used per fold (empty for linear).
+    pooled : dict
+        Column index -> categorical levels pooled into one level before fitting, for
+        columns with more levels than the booster's bins (empty when none); the fold
+        models expect :meth:`transform`-ed input.
     """
 
     proba: np.ndarray
@@ -77,6 +81,14 @@ class CrossFit:
     classes: np.ndarray
     model: str
     n_iter: Tuple[int, ...] = ()
+    pooled: Dict[int, int] = field(default_factory=dict)
+    level_maps: Dict[int, np.ndarray] = field(default_factory=dict, repr=False)
+
+    def transform(self, X: np.ndarray) -> np.ndarray:
+        """``X`` as the fold models saw it (rare categorical levels pooled); ``X`` itself when nothing was."""
+        from sitecheck.table.prepare import apply_level_maps
+
+        return apply_level_maps(X, self.level_maps)
 
 
 def _check_xy(X, y) -> Tuple[np.ndarray, np.ndarray]:
@@ -110,9 +122,9 @@ def _estimator(model: str, categorical, k: int, n_train: int, *, random_state: i
         # the cost scales with k; fewer leaves, a larger step and a tighter iteration cap
         # keep 30-100 sites fast (measured in tests/benchmarks/bench_probe.py: 30 sites x 300 rows x
         # 15 features with a strong shift, 5 folds: 5.0 -> 2.7 CPU s, macro AUC 0.884 -> 0.876).
-        if k > 8:
+        if k > MANY_CLASSES:
             est = make_booster(categorical, random_state=random_state, max_iter=60, learning_rate=0.3)
-            est.set_params(max_leaf_nodes=7, n_iter_no_change=5, max_bins=63)
+            est.set_params(max_leaf_nodes=7, n_iter_no_change=5, max_bins=booster_max_bins(k))
         else:
             est = make_booster(categorical, random_state=random_state, max_iter=150, learning_rate=0.15)
         if n_train < 500:
@@ -157,8 +169,19 @@ def cross_fit(X, y, categorical, folds, *, model: str = "boosting", random_state
         folds = make_folds(y, int(folds), random_state=seed)
     folds = tuple((np.asarray(tr), np.asarray(te)) for tr, te in folds)
     k = int(y.max()) + 1
+    pooled, maps = {}, {}
+    if model == "boosting" and cat.any():
+        # HistGradientBoosting refuses a categorical column with more levels than its bins:
+        # keep the most frequent and pool the rest into one level (unsupervised, whole X)
+        from sitecheck.table.prepare import apply_level_maps, level_maps_for
+
+        maps, pooled = level_maps_for(X, cat, booster_max_bins(k))
+        X = apply_level_maps(X, maps)
     with thread_limit(_threads(len(y))):
-        return _cross_fit(X, y, cat, folds, model, seed, k)
+        fit = _cross_fit(X, y, cat, folds, model, seed, k)
+    if pooled:
+        fit = replace(fit, pooled=pooled, level_maps=maps)
+    return fit
 
 
 #: Below this many rows (sitecheck._runtime.SINGLE_THREAD_BELOW) boosting runs single-threaded: OpenMP start-up and spin-waiting cost
@@ -175,7 +198,7 @@ def _cross_fit(X, y, cat, folds, model, seed, k) -> CrossFit:
         est = _estimator(model, cat, k, len(tr), random_state=derived_seed(seed, "probe.fold_model", f))
         if model == "linear" and X.shape[1] == 0:
             raise InputError("no feature columns to probe")
-        est.fit(X[tr], y[tr])
+        fit_classifier(est, X[tr], y[tr])
         p = est.predict_proba(X[te])
         cls = np.asarray(est.classes_, dtype=np.int64)
         block = np.zeros((len(te), k))
@@ -231,8 +254,16 @@ class ProbeScore:
     ci_widening: float = 1.0
     fold_auc: Tuple[float, ...] = ()
 
+    @property
+    def p_value_floor(self) -> Optional[float]:
+        """The smallest p-value the permutation test could give (None without a p-value)."""
+        if not self.n_permutations or self.p_value is None:
+            return None
+        return stats.permutation_pvalue_floor(self.n_permutations)
+
     def to_dict(self) -> Dict[str, Any]:
-        return {"auc": self.auc, "auc_ci": list(self.auc_ci), "p_value": self.p_value, "n": self.n,
+        return {"auc": self.auc, "auc_ci": list(self.auc_ci), "p_value": self.p_value,
+                "p_value_floor": self.p_value_floor, "n": self.n,
                 "model": self.model, "n_boot": self.n_boot, "n_permutations": self.n_permutations,
                 "ci_widening": self.ci_widening, "fold_auc": list(self.fold_auc)}
 
@@ -330,6 +361,7 @@ def _score_dict(s: ProbeScore, *, with_p: bool = True) -> Dict[str, Any]:
     d = {"auc": s.auc, "auc_ci": list(s.auc_ci), "n": s.n}
     if with_p:
         d["p_value"] = s.p_value
+        d["p_value_floor"] = s.p_value_floor
     return d
 
 
@@ -382,13 +414,16 @@ class GroupProbe:
     levels: Dict[str, int]
     dropped_levels: Dict[str, int]
     n_missing: int
+    #: Feature -> categorical levels pooled into one for this probe's model (more levels
+    #: than its bins; empty when none).
+    pooled_levels: Dict[str, int] = field(default_factory=dict)
 
     def to_dict(self) -> Dict[str, Any]:
         return {"auc": self.score.auc, "auc_ci": list(self.score.auc_ci), "p_value": self.score.p_value,
-                "verdict": self.verdict, "verdict_text": verdict_text(self.verdict, f"group '{self.column}'"),
+                "p_value_floor": self.score.p_value_floor, "verdict": self.verdict, "verdict_text": verdict_text(self.verdict, f"group '{self.column}'"),
                 "n": self.score.n, "levels": dict(self.levels), "dropped_levels": dict(self.dropped_levels),
                 "n_missing": int(self.n_missing), "model": self.score.model,
-                "balanced_accuracy": self.score.balanced_accuracy}
+                "balanced_accuracy": self.score.balanced_accuracy, "pooled_levels": dict(self.pooled_levels)}
 
 
 @dataclass(frozen=True)
@@ -431,6 +466,8 @@ class ProbeResult:
     n_features: int
     crossfit: CrossFit = field(compare=False, repr=False)
     linear_crossfit: Optional[CrossFit] = field(default=None, compare=False, repr=False)
+    #: Levels kept per categorical feature (the most frequent, and one pooled level).
+    categorical_level_limit: int = 250
 
     @property
     def auc(self) -> float:
@@ -450,6 +487,7 @@ class ProbeResult:
             "auc": s.auc,
             "auc_ci": list(s.auc_ci),
             "p_value": s.p_value,
+            "p_value_floor": s.p_value_floor,
             "balanced_accuracy": s.balanced_accuracy,
             "per_site": {k: dict(v) for k, v in self.per_site.items()},
             "n_used": self.n_used,
@@ -468,6 +506,7 @@ class ProbeResult:
             "caution": CAUTION,
             "linear": (None if self.linear is None else
                        {"auc": self.linear.auc, "auc_ci": list(self.linear.auc_ci), "p_value": self.linear.p_value,
+                        "p_value_floor": self.linear.p_value_floor,
                         "balanced_accuracy": self.linear.balanced_accuracy,
                         "model_detail": "L2 logistic regression; median imputation with missing indicators, "
                                         "scaling, one-hot"}),
@@ -486,6 +525,11 @@ class ProbeResult:
                                "mean, valid under any dependence (Vovk & Wang 2020); conservative"),
             "boosting_iterations": list(self.boosting_iterations),
             "lumped_categoricals": dict(self.lumped_categoricals),
+            "categorical_level_limit": int(self.categorical_level_limit),
+            "lumped_method": ("a categorical feature keeps its most frequent levels, at most "
+                              f"{int(self.categorical_level_limit) - 1}, and pools the rest into one level "
+                              "'(other)' (the boosting probe's bins); lumped_categoricals gives the number "
+                              "pooled per feature"),
             "n_features": self.n_features,
         }
 
@@ -507,9 +551,11 @@ def _recode(labels: np.ndarray, min_rows: int):
     return y, kept, dropped, int(missing.sum())
 
 
-def _sub_probe(X, y, cat, n_splits, seed, rng, n_boot, n_permutations) -> ProbeScore:
+def _sub_probe(X, y, cat, n_splits, seed, rng, n_boot, n_permutations, pooled=None) -> ProbeScore:
     folds = make_folds(y, n_splits, random_state=seed)
     fit = cross_fit(X, y, cat, folds, model="boosting", random_state=seed)
+    if pooled is not None:
+        pooled.update(fit.pooled)
     return _score_fit(y, fit, rng, n_boot, n_permutations)
 
 
@@ -609,7 +655,8 @@ def site_probe(prep, *, n_boot: int = 500, n_permutations: int = 999, linear: bo
                 continue
             s = _sub_probe(X[rows[ok]], yy[ok], cat, prep.n_splits, derived_seed(seed, "probe.stratum", int(v)), rng(10 + int(v)),
                            n_boot, n_permutations)
-            wo[key] = {"auc": s.auc, "auc_ci": list(s.auc_ci), "p_value": s.p_value, "n": s.n,
+            wo[key] = {"auc": s.auc, "auc_ci": list(s.auc_ci), "p_value": s.p_value,
+                       "p_value_floor": s.p_value_floor, "n": s.n,
                        "verdict": verdict(s.auc_ci, s.p_value), "sites": kept, "dropped_sites": dropped,
                        "outcome_value": int(v)}
     gprobes: Dict[str, GroupProbe] = {}
@@ -621,17 +668,19 @@ def site_probe(prep, *, n_boot: int = 500, n_permutations: int = 999, linear: bo
             if len(kept) < 2:
                 skipped[gname] = f"fewer than two levels with at least {min_rows} rows"
                 continue
+            pooled: Dict[int, int] = {}
             s = _sub_probe(X[ok], yy[ok], cat, prep.n_splits, derived_seed(seed, "probe.group", gi),
-                           rng(100 + gi), n_boot, n_permutations)
+                           rng(100 + gi), n_boot, n_permutations, pooled=pooled)
             gprobes[gname] = GroupProbe(column=gname, score=s, verdict=verdict(s.auc_ci, s.p_value), levels=kept,
-                                        dropped_levels=dropped, n_missing=n_miss)
+                                        dropped_levels=dropped, n_missing=n_miss,
+                                        pooled_levels={prep.features.names[j]: n for j, n in sorted(pooled.items())})
     return ProbeResult(
         score=score, linear=lin_score, per_site=per_site, confusion=tuple(tuple(int(v) for v in r) for r in conf),
         site_labels=labels, n_used=int(prep.n_used), n_total=int(prep.n_total), folds=len(prep.folds),
         verdict=verdict(score.auc_ci, score.p_value), case_mix=cm, within_outcome=wo,
         groups=GroupsResult(probes=gprobes, skipped=skipped), boosting_iterations=fit.n_iter,
         lumped_categoricals=dict(prep.features.lumped), n_features=int(prep.features.n_features),
-        crossfit=fit, linear_crossfit=lin_fit)
+        crossfit=fit, linear_crossfit=lin_fit, categorical_level_limit=int(prep.features.max_levels))
 
 
 def _outcome_levels(prep) -> Tuple[str, str]:

@@ -8,7 +8,7 @@ an analysis, write its module, then add an :class:`Analysis` here.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any, Callable, Dict, List, Optional
+from typing import Any, Callable, Dict, List, Optional, Union
 
 
 @dataclass(frozen=True)
@@ -32,13 +32,84 @@ class Analysis:
     merge: Optional[Callable[[Any, Any], Any]] = None
     #: Order of the queue for the second process (higher first): the longest tasks go first,
     #: so that the short ones fill the gaps (longest-processing-time-first list scheduling).
-    priority: int = 0
+    #: A number, or a function of the prepared table estimating the analysis's seconds on one core
+    #: (:func:`estimated_seconds`), since which stage is longest depends on the table's shape.
+    priority: Union[float, Callable[[Any], float]] = 0
+    #: The ``report.json`` sections this analysis fills (named in a failure record).
+    fills: tuple = ()
+    #: Analyses in ``needs`` whose failure does not stop this one: it runs without their
+    #: result and says so in its own section (the outcome analysis ranks site leakers by
+    #: its own univariate association when the leak ranking failed).
+    falls_back_without: tuple = ()
+    #: Which values the analysis reads: "given" (the diagnosis: probe, ranking, fingerprints),
+    #: "repaired" (after the repair plan's safe entries, unless ScanOptions.repair is False:
+    #: maps, harmonisation check, outcome) or "residual" (always the repaired values).
+    on: str = "given"
+
+    def cost(self, prep) -> float:
+        """The queue key of this analysis for ``prep`` (:attr:`priority`)."""
+        return float(self.priority(prep) if callable(self.priority) else self.priority)
+
+
+@dataclass(frozen=True)
+class AnalysisFailure:
+    """An analysis that raised, or that did not run because one it needs failed.
+
+    A scan records one per analysis (``report.json`` key ``failed_analyses``)
+    and keeps every other analysis's sections.
+
+    Attributes
+    ----------
+    analysis : str
+        Registry name of the analysis.
+    sections : tuple of str
+        The ``report.json`` sections it would have filled (absent from the report).
+    status : {"failed", "not_run"}
+        ``failed``: it raised; ``not_run``: an analysis it needs failed.
+    error : str or None
+        Exception type (``None`` when not run).
+    message : str
+        One line: the exception's first line, or why it did not run.
+    process : {"main", "second"}
+        The process it ran in.
+    """
+
+    analysis: str
+    sections: tuple
+    status: str
+    error: Optional[str]
+    message: str
+    process: str = "main"
+
+    @classmethod
+    def from_exception(cls, spec: "Analysis", exc: BaseException, *, process: str = "main") -> "AnalysisFailure":
+        text = str(exc).strip()
+        line = text.splitlines()[0].strip() if text else ""
+        if len(line) > 300:
+            line = line[:297] + "..."
+        return cls(analysis=spec.name, sections=tuple(spec.fills), status="failed", error=type(exc).__name__,
+                   message=line or type(exc).__name__, process=process)
+
+    @classmethod
+    def blocked(cls, spec: "Analysis", needed: str, *, process: str = "main") -> "AnalysisFailure":
+        return cls(analysis=spec.name, sections=tuple(spec.fills), status="not_run", error=None,
+                   message=f"not run: it needs the {needed} analysis, which failed", process=process)
+
+    def to_dict(self) -> Dict[str, Any]:
+        return {"analysis": self.analysis, "sections": list(self.sections), "status": self.status,
+                "error": self.error, "message": self.message, "process": self.process}
+
+
+def _resampling(options, **defaults):
+    """The analysis's resampling sizes: the scan option when set (``ScanOptions.n_boot`` ...), else ``defaults``."""
+    get = getattr(options, "resampling", None)
+    return get(**defaults) if get is not None else defaults
 
 
 def _run_probe(prep, options, objects):
     from sitecheck.analyses.probe import site_probe
 
-    return site_probe(prep, random_state=options.seed)
+    return site_probe(prep, random_state=options.seed, **_resampling(options, n_boot=500, n_permutations=999))
 
 
 def _probe_sections(result):
@@ -62,7 +133,7 @@ def _run_leakage(prep, options, objects):
 
     def missingness_probe(M, y):
         return probe_matrix(M, y, np.zeros(M.shape[1], dtype=bool), prep.folds, random_state=options.seed,
-                            n_boot=500, n_permutations=999, model="linear").to_dict()
+                            model="linear", **_resampling(options, n_boot=500, n_permutations=999)).to_dict()
 
     return rank_leakage(prep, probe.crossfit, cluster_threshold=options.cluster_threshold,
                         panels=prep.table.panels, missingness_probe=missingness_probe, random_state=options.seed)
@@ -74,7 +145,7 @@ def _run_outcome(prep, options, objects):
     from sitecheck.analyses.outcome import outcome_risk
 
     return outcome_risk(prep, leakage=objects.get("leakage"), threshold=options.threshold,
-                        random_state=options.seed)
+                        random_state=options.seed, **_resampling(options, n_boot=500))
 
 
 def _run_fingerprints(prep, options, objects):
@@ -84,9 +155,32 @@ def _run_fingerprints(prep, options, objects):
 
 
 def _fingerprint_sections(result):
-    return {"fingerprints": [f.to_dict() for f in result.findings], "fingerprint_tests": result.tests}
+    out = {"fingerprints": [f.to_dict() for f in result.findings], "fingerprint_tests": result.tests}
+    out["fingerprint_skipped"] = dict(getattr(result, "skipped", {}))
+    if result.unit_columns:
+        out["unit_columns"] = result.unit_columns
+    return out
 
 
+
+
+def _run_drift(prep, options, objects):
+    from sitecheck.analyses.drift import drift_check
+
+    return drift_check(prep, fingerprints=objects.get("fingerprints"), random_state=options.seed)
+
+
+def _drift_applies(prep) -> bool:
+    return getattr(prep.table, "time", None) is not None
+
+
+def _run_reconcile(prep, options, objects):
+    from .reconcile import reconcile
+
+    leakage, fingerprints = objects.get("leakage"), objects.get("fingerprints")
+    if leakage is None or fingerprints is None:
+        return None
+    return reconcile(leakage, fingerprints)
 
 
 def _run_maps(prep, options, objects):
@@ -119,11 +213,55 @@ def _merge_maps(whole, part):
 def _run_harmonise(prep, options, objects):
     from sitecheck.harmonise.methods import harmonisation_check
 
-    return harmonisation_check(prep, random_state=options.seed)
+    from sitecheck.harmonise.methods import METHODS
+
+    methods = tuple(getattr(options, "harmonise_methods", None) or METHODS)
+    return harmonisation_check(prep, random_state=options.seed, methods=methods,
+                               **_resampling(options, n_boot=200, n_permutations=199))
+
+
+def _run_residual(prep, options, objects):
+    from sitecheck.table.repair import residual_signal
+
+    probe, repair = objects.get("probe"), objects.get("repair")
+    if probe is None or repair is None:
+        return None
+    return residual_signal(prep, probe, objects.get("leakage"), repair["applied"], random_state=options.seed)
 
 
 def _harmonise_applies(prep) -> bool:
     return any(k == "numeric" for k in prep.features.kinds) and prep.n_used >= 50
+
+
+#: Rows the maps use by default (``ScanOptions.map_rows``), for the estimates below.
+_MAP_ROWS = 10_000
+
+
+def estimated_seconds(name: str, prep) -> float:
+    """Seconds one core spends on an analysis of the second process's queue, estimated from the
+    table's shape; used only to order that queue (longest first), never reported.
+
+    Fitted by hand to stage costs measured with ``tests/benchmarks/bench_maps.py`` and ``run.py``
+    (2026-12-02, 2 cores): the maps (PCA, UMAP with cached kernels, mixing scores of three spaces)
+    6.9-8.3 CPU s and the t-SNE map 5.4-6.1 CPU s at 6,000-9,000 mapped rows, both growing with the
+    mapped rows only (capped); harmonisation 2.2 s (10,000 x 20, 4 sites), 14.8 s (10,000 x 200),
+    4.6 s (9,000 x 20, 30 sites), 18.4 s (100,000 x 50) and 10.3 s on the 6,000-row demo, whose
+    outcome adds five cross-fits to the four re-probes; it grows with the re-probed rows (capped at
+    50,000), the numeric features and the sites. The order these give: harmonisation first on the
+    demo and on wide or long tables, the two maps first on the 30-site table.
+    """
+    n = float(prep.n_used)
+    m = min(n, _MAP_ROWS)
+    if name == "maps":
+        return 1.5 + 0.75e-3 * m
+    if name == "maps_tsne":
+        return 3.0 + 0.33e-3 * m
+    if name == "harmonise":
+        p = sum(k == "numeric" for k in prep.features.kinds)
+        sites = len(prep.site_labels)
+        outcome = 6.0 if prep.outcome is not None else 1.0
+        return 0.3 + 4.3e-4 * min(n, 50_000) ** 0.65 * p ** 0.8 * (1 + 0.04 * sites) * outcome
+    return 0.0
 
 
 def _maps_applies(prep) -> bool:
@@ -131,18 +269,34 @@ def _maps_applies(prep) -> bool:
 
 
 #: The analyses, in report order. The leak ranking reuses the probe's fold models
-#: (objects["probe"].crossfit); the outcome analysis reads the leak ranking; the t-SNE map
+#: (objects["probe"].crossfit); the outcome analysis reads the leak ranking; the drift analysis
+#: reads the fingerprints; the t-SNE map
 #: is merged into the maps' result.
 REGISTRY: List[Analysis] = [
-    Analysis("probe", _run_probe, sections=_probe_sections),
-    Analysis("leakage", _run_leakage, sections=lambda result: result.sections(), needs=("probe",)),
-    Analysis("fingerprints", _run_fingerprints, sections=_fingerprint_sections),
-    Analysis("maps", _run_maps, applies=_maps_applies, sections=lambda result: {"embedding": result}),
-    # t-SNE is the longest single map (about 3/4 of the maps' time at 10,000 rows, measured):
-    # computed apart, it runs beside the probe while PCA and UMAP fill the other lane.
-    Analysis("maps_tsne", _run_tsne, applies=_maps_applies, part_of="maps", merge=_merge_maps, priority=2),
+    Analysis("probe", _run_probe, sections=_probe_sections, fills=("probe", "groups")),
+    Analysis("leakage", _run_leakage, sections=lambda result: result.sections(), needs=("probe",),
+             fills=("leakage", "clusters", "missingness", "leakage_method")),
+    Analysis("fingerprints", _run_fingerprints, sections=_fingerprint_sections,
+             fills=("fingerprints", "fingerprint_tests", "fingerprint_skipped", "unit_columns")),
+    # drift within each site over time (--time); follows the fingerprints' codes, limits and grids
+    Analysis("drift", _run_drift, applies=_drift_applies, sections=lambda result: {"drift": result},
+             needs=("fingerprints",), fills=("drift",)),
+    Analysis("maps", _run_maps, applies=_maps_applies, sections=lambda result: {"embedding": result}, on="repaired",
+             priority=lambda prep: estimated_seconds("maps", prep), fills=("embedding",)),
+    # The t-SNE map, computed apart so that it and PCA/UMAP can run in different processes; the queue
+    # takes the longer of the maps and harmonisation first for the table's shape (estimated_seconds).
+    Analysis("maps_tsne", _run_tsne, applies=_maps_applies, part_of="maps", merge=_merge_maps, on="repaired",
+             priority=lambda prep: estimated_seconds("maps_tsne", prep), fills=("embedding",)),
     Analysis("harmonise", _run_harmonise, applies=_harmonise_applies,
-             sections=lambda result: {"harmonisation": result}, priority=1),
+             sections=lambda result: {"harmonisation": result}, on="repaired",
+             priority=lambda prep: estimated_seconds("harmonise", prep), fills=("harmonisation",)),
     Analysis("outcome", _run_outcome, applies=lambda prep: prep.outcome is not None,
-             sections=lambda result: {"outcome": result}, needs=("leakage",)),
+             sections=lambda result: {"outcome": result}, needs=("leakage",), on="repaired", fills=("outcome",),
+             falls_back_without=("leakage",)),
+    # reads the leak ranking and the fingerprints only (no fit): why a fingerprinted feature ranks near 0
+    Analysis("reconcile", _run_reconcile, sections=lambda result: {"reconciliation": result},
+             needs=("leakage", "fingerprints"), fills=("reconciliation",)),
+    # the probe and the top of the leak ranking again, on the values after the plan's safe repairs
+    Analysis("residual", _run_residual, sections=lambda result: {"residual": result}, needs=("probe", "leakage"),
+             on="residual", fills=("residual",)),
 ]

@@ -10,7 +10,7 @@ seed or a :class:`numpy.random.Generator`).
 """
 from __future__ import annotations
 
-from typing import List, Sequence, Tuple
+from typing import List, Optional, Sequence, Tuple
 
 import numpy as np
 from scipy import stats as _st
@@ -259,6 +259,26 @@ def wilson_ci(k, n, alpha: float = 0.05) -> Tuple[float, float]:
     return (float(max(0.0, centre - half)), float(min(1.0, centre + half)))
 
 
+def round_sig(x, digits: int = 6) -> Optional[float]:
+    """``x`` to ``digits`` significant figures for stable JSON (same data and seed -> same bytes across
+    platforms); None for missing or infinite values, 0.0 for -0.0.
+
+    Examples
+    --------
+    >>> from sitecheck.analyses.stats import round_sig
+    >>> round_sig(3.14159265, 3), round_sig(-0.0), round_sig(float("inf"))
+    (3.14, 0.0, None)
+    """
+    if x is None:
+        return None
+    x = float(x)
+    if not np.isfinite(x):
+        return None
+    if x == 0:
+        return 0.0
+    return float(f"{x:.{digits}g}")
+
+
 def bh_adjust(pvalues) -> np.ndarray:
     """Benjamini-Hochberg adjusted p-values (step-up, monotone, capped at 1).
 
@@ -298,6 +318,12 @@ def merge_pvalues_geometric(pvalues) -> float:
     """
     p = np.clip(np.asarray(pvalues, dtype=float), 1e-300, 1.0)
     return float(min(1.0, np.e * np.exp(np.mean(np.log(p)))))
+
+
+def permutation_pvalue_floor(n_permutations: int) -> float:
+    """The smallest p-value :func:`fold_permutation_pvalue` can return: every fold at
+    1/(B+1) (Phipson & Smyth 2010), merged by e x geometric mean (Vovk & Wang 2020)."""
+    return float(min(1.0, np.e / (int(n_permutations) + 1.0)))
 
 
 def _macro_from_rank_sums(S: np.ndarray, counts: np.ndarray, n: int, cols: List[int]) -> np.ndarray:

@@ -1,5 +1,6 @@
 """Command-line interface: parse options, call the library, report progress,
-map errors to exit codes (0 finished, 1 a gate failed, 2 usage or input error)."""
+map errors to exit codes (0 finished, 1 a gate failed, 2 usage or input error,
+3 the report was written but an analysis failed, or an internal error stopped the scan)."""
 from __future__ import annotations
 
 import os
@@ -14,6 +15,8 @@ from sitecheck.errors import InputError
 from sitecheck.report.gates import FINGERPRINT_KINDS, check_gates
 
 EXIT_OK, EXIT_GATE, EXIT_INPUT, EXIT_INTERNAL = 0, 1, 2, 3
+#: Report written, but an analysis failed (its sections are missing; ``failed_analyses`` says why).
+EXIT_ANALYSIS_FAILED = EXIT_INTERNAL
 
 #: The flag of each library setting that an InputError may name (``InputError.option``).
 OPTION_FLAGS = {"encoding": "--encoding", "sep": "--sep", "min_site_rows": "--min-site-rows", "site": "--site",
@@ -80,6 +83,8 @@ def _common_scan_options(f):
     opts = [
         click.option("--site", "site", metavar="COL", help="Column naming the site or hospital (required unless in --config)."),
         click.option("--outcome", metavar="COL", help="Binary outcome column."),
+        click.option("--time", "time", metavar="COL", help="Date column (e.g. arrival date): adds the drift analysis, "
+                     "when and where each site's measurements changed over the collection period."),
         click.option("--covariate", "covariates", multiple=True, metavar="COL", help="Case-mix column to condition on (repeatable)."),
         click.option("--group", "groups", multiple=True, metavar="COL", help="Demographic column to probe like a site (repeatable)."),
         click.option("--id", "identifiers", multiple=True, metavar="COL", help="Identifier column, never used as a feature (repeatable)."),
@@ -101,6 +106,12 @@ def _common_scan_options(f):
         click.option("--fail-on", "fail_on", multiple=True, metavar="KIND", type=click.Choice(FINGERPRINT_KINDS),
                      help="Gate: exit 1 when a fingerprint of this kind is found (repeatable; one of "
                           + ", ".join(FINGERPRINT_KINDS) + ")."),
+        click.option("--as-given", "as_given", is_flag=True, default=None,
+                     help="Run the maps, the harmonisation check and the outcome analysis on the values as given "
+                          "(default: after the repair plan's safe entries, applied in memory)."),
+        click.option("--censor-policy", type=click.Choice(["limit", "limit_over_sqrt2", "limit_over_2", "missing"]),
+                     default=None, help="Value for censored cells such as '<5' in the repair plan (default: "
+                                        "limit / sqrt(2) below a limit, after Hornung & Reed 1990; the limit above)."),
         click.option("--quiet", "-q", is_flag=True, help="No progress messages on stderr."),
     ]
     for o in reversed(opts):
@@ -113,7 +124,7 @@ GATE_FLAGS = {"fail_above": "--fail-above", "fail_on": "--fail-on"}
 
 
 def _run_scan(data, *, site, outcome, covariates, groups, identifiers, excluded, config, sep, encoding,
-              out_dir, quiet, shareable=False, fail_above=None, fail_on=(), **flags):
+              out_dir, quiet, shareable=False, fail_above=None, fail_on=(), time=None, **flags):
     """Resolve the configuration (the library's one loader), scan, write, print the summary and
     the failed gates; exit 1 when a gate failed."""
     from sitecheck.reading.config import resolve_config
@@ -124,7 +135,7 @@ def _run_scan(data, *, site, outcome, covariates, groups, identifiers, excluded,
     progress = Progress(quiet)
     t = lambda v: tuple(v) if v else None  # noqa: E731
     spec = RoleSpec(site=site, outcome=outcome, covariates=t(covariates), groups=t(groups),
-                    identifiers=t(identifiers), excluded=t(excluded))
+                    identifiers=t(identifiers), excluded=t(excluded), time=time or None)
     if encoding is not None:
         import codecs
 
@@ -134,6 +145,8 @@ def _run_scan(data, *, site, outcome, covariates, groups, identifiers, excluded,
             raise InputError(f"--encoding {encoding!r}: not a known text encoding (for example utf-8, latin-1)") from None
     if sep is not None and len(sep) != 1:
         raise InputError(f"--sep {sep!r}: must be a single character")
+    if flags.pop("as_given", None):
+        flags["repair"] = False
     run = resolve_config(config, roles=spec, options=flags, sep=sep, encoding=encoding,
                          fail_above=fail_above, fail_on=tuple(fail_on) or None)
     if run.roles.site is None:
@@ -143,15 +156,33 @@ def _run_scan(data, *, site, outcome, covariates, groups, identifiers, excluded,
     progress(f"writing report to {out_dir}")
     paths = write_report(result, out_dir, min_cell=run.options.min_cell, shareable=shareable)
     failed = check_gates(result, run.gates)
-    lines = [result.summary(),
-             "report: " + ", ".join(paths[k] for k in ("report.html", "report.json", "findings.md") if k in paths)]
+    residual = result.sections.get("residual")
+    lines = [result.summary()]
+    if residual is not None and getattr(residual, "statement", None):
+        lines.append(residual.statement)
+    lines.append("report: " + ", ".join(paths[k] for k in ("report.html", "report.json", "findings.md",
+                                                           "repair_plan.json") if k in paths))
     for f in failed:
         setting = f"{f.setting:g}" if isinstance(f.setting, float) else f.setting
         lines.append(f"FAILED gate {GATE_FLAGS[f.gate]} {setting}: {f.message}")
     click.echo("\n".join(lines))
+    if result.failures:
+        click.echo(failure_line(result.failures, out_dir), err=True)
+        sys.exit(EXIT_ANALYSIS_FAILED)
     if failed:
         sys.exit(EXIT_GATE)
     return result
+
+
+def failure_line(failures, out_dir: str) -> str:
+    """One line naming the failed analyses (exit code 3: the report was written without their sections)."""
+    hard = [f for f in failures if f.get("status") == "failed"] or list(failures)
+    first = hard[0]
+    what = f"{first['analysis']} ({first['error']}: {first['message']})" if first.get("error") else first["analysis"]
+    more = [f["analysis"] for f in failures if f is not first]
+    extra = f"; also missing: {', '.join(more)}" if more else ""
+    return (f"sitecheck: analysis failed: {what}{extra}; report written to {out_dir} without its sections "
+            "(set SITECHECK_DEBUG=1 for the traceback)")
 
 
 def _check_out_dir(out_dir: str, data: str) -> None:
@@ -184,9 +215,10 @@ def demo_cmd(out_dir, rows, seed, quiet):
         click.echo(f"demo table: {paths['data']} (ground truth: {paths['truth']})", err=True)
     _run_scan(paths["data"], site=DEMO_ROLES["site"], outcome=DEMO_ROLES["outcome"],
               covariates=DEMO_ROLES["covariates"], groups=(), identifiers=DEMO_ROLES["identifiers"], excluded=(),
+              time=DEMO_ROLES["time"],
               config=None, sep=None, encoding=None, out_dir=os.path.join(out_dir, "report"), quiet=quiet,
               seed=None, folds=None, max_rows=None, map_rows=None, min_site_rows=None, min_cell=None,
-              include_datetime=None)
+              include_datetime=None, as_given=None, censor_policy=None)
 
 
 @main.command("schema", epilog="Example:\n\n  sitecheck schema > report.schema.json")
@@ -200,8 +232,11 @@ def schema_cmd():
 
 
 from sitecheck.cli.harmonise import harmonise_cmd  # noqa: E402  (issue 6: the harmonise command)
+from sitecheck.cli.repair import repair_cmd, repair_schema_cmd  # noqa: E402  (issue 17: the repair loop)
 
 main.add_command(harmonise_cmd)
+main.add_command(repair_cmd)
+main.add_command(repair_schema_cmd)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -33,12 +33,13 @@ from sitecheck.table.roles import RoleSpec
 if TYPE_CHECKING:  # pragma: no cover
     from sitecheck.scan import ScanOptions
 
-_ROLE_KEYS = {"site", "outcome", "covariates", "groups", "identifiers", "excluded", "features", "panels"}
+_ROLE_KEYS = {"site", "outcome", "time", "covariates", "groups", "identifiers", "excluded", "features", "panels"}
 _OPTION_KEYS = {"seed", "min_site_rows", "min_cell", "folds", "max_rows", "map_rows", "sep", "encoding",
-                "cluster_threshold", "include_datetime", "fail_above", "fail_on", "threshold"}
+                "cluster_threshold", "include_datetime", "fail_above", "fail_on", "threshold", "repair",
+                "censor_policy"}
 #: [options] keys that are fields of :class:`~sitecheck.scan.ScanOptions`.
 SCAN_OPTION_KEYS = ("seed", "folds", "max_rows", "map_rows", "min_site_rows", "min_cell", "include_datetime",
-                    "cluster_threshold", "threshold")
+                    "cluster_threshold", "threshold", "repair", "censor_policy")
 
 
 def _int(lo: Optional[int] = None, hi: Optional[int] = None):
@@ -85,6 +86,14 @@ def _encoding(v):
     return v
 
 
+def _censor_policy(v):
+    from sitecheck.table.repair import CENSOR_POLICIES
+
+    if not isinstance(v, str) or v not in CENSOR_POLICIES:
+        raise ValueError(f"must be one of {', '.join(CENSOR_POLICIES)}, got {v!r}")
+    return v
+
+
 _OPTION_CHECKS = {
     "seed": _int(),
     "folds": _int(2, 20),
@@ -99,6 +108,8 @@ _OPTION_CHECKS = {
     "encoding": _encoding,
     "fail_above": check_fail_above,
     "fail_on": check_fail_on,
+    "repair": _bool,
+    "censor_policy": _censor_policy,
 }
 
 
@@ -122,7 +133,7 @@ def _tuple_of_str(value, key: str, path: str) -> Tuple[str, ...]:
 def load_config(path: Optional[str]) -> FileConfig:
     """Read a TOML config file.
 
-    The file may hold the role keys ``site``, ``outcome``, ``covariates``,
+    The file may hold the role keys ``site``, ``outcome``, ``time``, ``covariates``,
     ``groups``, ``identifiers``, ``excluded``, ``features``, a ``[panels]``
     table (panel name -> list of columns) and an ``[options]`` table.
     Unknown keys are an error, so that typos do not pass silently; so is an
@@ -150,7 +161,7 @@ def load_config(path: Optional[str]) -> FileConfig:
     if unknown:
         raise InputError(f"{path}: unknown key {sorted(unknown)[0]!r}; expected one of {sorted(_ROLE_KEYS | {'options'})}")
     kw: Dict[str, Any] = {}
-    for key in ("site", "outcome"):
+    for key in ("site", "outcome", "time"):
         if key in data:
             if not isinstance(data[key], str):
                 raise InputError(f"{path}: {key!r} must be a column name")

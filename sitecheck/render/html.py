@@ -1,31 +1,28 @@
-"""Self-contained HTML report. Every string from the data is escaped."""
+"""The self-contained HTML report, rendered from Jinja2 templates with autoescaping.
+
+Each section module in :mod:`sitecheck.render.sections` either builds a display
+model (``model(doc, min_cell)``) rendered by ``templates/sections/<name>.html.j2``,
+or, in the older style, returns its own HTML string (``html(doc, min_cell)``);
+both appear in the page and its contents. The helpers below (``esc``, ``num``,
+``pval``, ``ci``, ``table_html``, ``embed_image``) remain for sections in the
+older style.
+"""
 from __future__ import annotations
 
 import html
+import re
+from functools import lru_cache
+from importlib import resources
 from typing import Any, Dict, List
 
+from markupsafe import Markup
+
+from . import fmt as _fmt
 from .safety import suppress_count
 
 DISCLAIMER = ("sitecheck is decision support for data work, not a clinical device. Its findings "
               "describe the data, not patients; act on them under your local data-governance "
               "rules and licensed clinical and statistical practice.")
-
-_CSS = """
-body{font-family:system-ui,-apple-system,Segoe UI,Roboto,sans-serif;max-width:1100px;margin:2em auto;padding:0 1em;color:#1a1a1a;line-height:1.45}
-h1{font-size:1.6em}h2{border-bottom:2px solid #ddd;padding-bottom:.2em;margin-top:2em}
-table{border-collapse:collapse;margin:.8em 0;font-size:.92em}th,td{border:1px solid #ccc;padding:.25em .6em;text-align:left}
-th{background:#f3f3f3;cursor:pointer}td.n{text-align:right;font-variant-numeric:tabular-nums}
-.note{background:#fff8e1;border-left:4px solid #f0b400;padding:.6em 1em}.verdict{font-size:1.3em;font-weight:600}
-.muted{color:#666}img{max-width:100%}
-"""
-
-_SORT_JS = """
-document.querySelectorAll('table.sortable th').forEach(function(th,i){th.addEventListener('click',function(){
-var t=th.closest('table'),b=t.tBodies[0],r=Array.from(b.rows),d=th.dataset.d==='a'?-1:1;th.dataset.d=d>0?'a':'d';
-r.sort(function(x,y){var a=x.cells[i].dataset.v||x.cells[i].textContent,c=y.cells[i].dataset.v||y.cells[i].textContent;
-var fa=parseFloat(a),fc=parseFloat(c);if(!isNaN(fa)&&!isNaN(fc))return d*(fa-fc);return d*a.localeCompare(c);});
-r.forEach(function(x){b.appendChild(x);});});});
-"""
 
 
 def esc(value: Any) -> str:
@@ -36,36 +33,23 @@ def fmt(value: Any, digits: int = 3) -> str:
     if value is None:
         return "–"
     if isinstance(value, float):
-        return f"{value:.{digits}f}"
+        return _fmt.num(value, digits)
     return str(value)
 
 
-def num(value: Any, digits: int = 3) -> str:
-    """A number for a table cell: fixed decimals; "–" for missing; strings (such as
-    a suppressed count "<10" or "withheld") pass through."""
-    if value is None or isinstance(value, bool):
-        return "–"
-    if isinstance(value, (int, float)):
-        return f"{value:.{digits}f}"
-    return str(value)
+num = _fmt.num
+ci = _fmt.ci
 
 
-def pval(value: Any) -> str:
-    """A p-value for a table cell: "< 0.001" below 0.001, else three decimals."""
-    if value is None or isinstance(value, bool) or not isinstance(value, (int, float)):
-        return "–" if value is None or isinstance(value, bool) else str(value)
-    return "< 0.001" if value < 0.001 else f"{value:.3f}"
-
-
-def ci(pair: Any, digits: int = 3) -> str:
-    if not pair or pair[0] is None:
-        return "–"
-    return f"{pair[0]:.{digits}f} to {pair[1]:.{digits}f}"
+def pval(value: Any, floor: Any = None) -> str:
+    """A p-value for a table cell ("≤ floor" at the permutation floor, "< 0.001", else decimals)."""
+    return _fmt.pval(value, floor)
 
 
 def table_html(headers: List[str], rows: List[List[Any]], *, numeric: tuple = ()) -> str:
-    out = ['<table class="sortable"><thead><tr>']
-    out += [f"<th>{esc(h)}</th>" for h in headers]
+    """A sortable table from headers and rows, every cell escaped (for older-style sections)."""
+    out = ['<div class="tw"><table class="sortable"><thead><tr>']
+    out += [("<th class=\"n\">" if j in numeric else "<th>") + esc(h) + "</th>" for j, h in enumerate(headers)]
     out.append("</tr></thead><tbody>")
     for row in rows:
         out.append("<tr>")
@@ -73,34 +57,8 @@ def table_html(headers: List[str], rows: List[List[Any]], *, numeric: tuple = ()
             cls = ' class="n"' if j in numeric else ""
             out.append(f"<td{cls}>{esc(cell)}</td>")
         out.append("</tr>")
-    out.append("</tbody></table>")
+    out.append("</tbody></table></div>")
     return "".join(out)
-
-
-def _hygiene(doc: Dict[str, Any], min_cell: int) -> str:
-    parts = ["<h2>Data hygiene</h2>"]
-    rows = [[c["name"], c["role"], c["kind"], c["reason"], suppress_count(c.get("n_missing", 0), min_cell),
-             ", ".join(f"{k} ({suppress_count(v, min_cell)})" for k, v in c.get("missing_codes", {}).items())]
-            for c in doc.get("columns", [])]
-    parts.append(table_html(["column", "role", "kind", "reason", "missing", "missing codes"], rows, numeric=(4,)))
-    if doc.get("hygiene"):
-        parts.append("<h3>Findings before modelling</h3>")
-        parts.append(table_html(["column", "finding", "site", "detail"],
-                                [[f["column"], f["kind"], f.get("site", ""), f["detail"]] for f in doc["hygiene"]]))
-    if doc.get("warnings"):
-        parts.append("<h3>Warnings</h3><ul>" + "".join(f"<li>{esc(w)}</li>" for w in doc["warnings"]) + "</ul>")
-    return "".join(parts)
-
-
-def _methods(doc: Dict[str, Any]) -> str:
-    run = doc.get("run", {})
-    inp = doc.get("input", {})
-    rows = [["input file", inp.get("path")], ["SHA-256", inp.get("sha256")], ["seed", run.get("seed")],
-            ["schema", doc.get("schema")]]
-    rows += [[f"version: {k}", v] for k, v in run.get("versions", {}).items()]
-    rows += [[f"seconds: {k}", v] for k, v in run.get("seconds", {}).items()]
-    rows += [[f"option: {k}", v] for k, v in run.get("options", {}).items()]
-    return "<h2>Methods, caveats and reproducibility</h2>" + table_html(["item", "value"], rows)
 
 
 def embed_image(out_dir, rel: str, alt: str = "") -> str:
@@ -118,55 +76,110 @@ def embed_image(out_dir, rel: str, alt: str = "") -> str:
     return f'<img alt="{esc(alt)}" src="data:image/png;base64,{data}">'
 
 
-def _at_a_glance(doc: Dict[str, Any]) -> str:
-    """A short box with the headline answers, drawn from the sections present."""
-    items = []
-    p = doc.get("probe")
-    if isinstance(p, dict) and p.get("auc") is not None:
-        items.append(f"<li><b>Site probe:</b> verdict <span class='verdict'>{esc(p.get('verdict'))}</span>, "
-                     f"AUC {fmt(p.get('auc'))} (95% CI {ci(p.get('auc_ci'))}).</li>")
-    leak = doc.get("leakage") or []
-    if leak:
-        top = [e["feature"] for e in leak[:5] if isinstance(e.get("score_ci"), list) and (e["score_ci"][0] or 0) > 0]
-        if top:
-            items.append("<li><b>Carried mostly by:</b> " + ", ".join(esc(t) for t in top) + ".</li>")
-    fps = doc.get("fingerprints") or []
-    if fps:
-        kinds = {}
-        for f in fps:
-            kinds[f.get("kind")] = kinds.get(f.get("kind"), 0) + 1
-        items.append("<li><b>Fingerprints:</b> " + ", ".join(f"{esc(k)} ({v})" for k, v in kinds.items()) + ".</li>")
-    o = doc.get("outcome")
-    if isinstance(o, dict) and o.get("transport_gap") is not None:
-        items.append(f"<li><b>Outcome:</b> site-only AUC {fmt(o.get('site_only_auc'))}, pooled model AUC "
-                     f"{fmt(o.get('pooled_auc'))}, transport gap {fmt(o.get('transport_gap'))}.</li>")
-    if not items:
+@lru_cache(maxsize=None)
+def _asset(name: str) -> str:
+    return resources.files("sitecheck.render").joinpath("templates", name).read_text(encoding="utf-8")
+
+
+_H2 = re.compile(r"<h2(\s[^>]*)?>(.*?)</h2>", re.S | re.I)
+
+
+def legacy_section(name: str, text: str) -> Dict[str, Any]:
+    """A section in the older style: its HTML as given, with an anchor on its first heading."""
+    sid = f"sec-{name}"
+    m = _H2.search(text)
+    title = re.sub(r"<[^>]+>", "", m.group(2)).strip() if m else name.replace("_", " ").capitalize()
+    title = html.unescape(title)
+    if m and not re.search(r'\bid\s*=', m.group(1) or ""):
+        text = text[:m.start()] + f'<h2 id="{sid}"{m.group(1) or ""}>{m.group(2)}</h2>' + text[m.end():]
+    elif m:
+        sid = re.search(r'\bid\s*=\s*["\']?([^"\'\s>]+)', m.group(1)).group(1)
+    else:
+        text = f'<h2 id="{sid}">{esc(title)}</h2>' + text
+    return {"id": sid, "title": title, "html": Markup(text)}
+
+
+#: Report-section module name -> the report.json key it renders, where they differ.
+_MODULE_KEY = {"maps": "embedding", "leakage": "leakage", "hygiene": "hygiene"}
+
+
+def failure_text(f: Dict[str, Any]) -> str:
+    """Plain words for one ``failed_analyses`` entry (shared by HTML and Markdown)."""
+    secs = ", ".join(f.get("sections") or []) or "none"
+    if f.get("status") == "not_run":
+        return f"The {f.get('analysis')} analysis did not run ({f.get('message')}); missing sections: {secs}."
+    where = " in the second process" if f.get("process") == "second" else ""
+    return (f"The {f.get('analysis')} analysis failed{where} with {f.get('error')}: {f.get('message')}. "
+            f"Missing sections: {secs}. The other sections are complete; rerun with SITECHECK_DEBUG=1 "
+            "for the traceback.")
+
+
+def failed_note(doc: Dict[str, Any], key=None) -> str:
+    """A visible note (HTML) for the failed analyses: all of them, or those that fill section ``key``."""
+    fails = [f for f in doc.get("failed_analyses") or [] if key is None or key in (f.get("sections") or [])]
+    if not fails:
         return ""
-    return "<div class='note'><b>At a glance</b><ul>" + "".join(items) + "</ul></div>"
+    return ("<div class='failed'><ul>" + "".join(f"<li>{esc(failure_text(f))}</li>" for f in fails)
+            + "</ul></div>")
+
+
+def render_sections(doc: Dict[str, Any], min_cell: int) -> List[Dict[str, Any]]:
+    """Every section present, in the order of a decision, as {id, title, html}."""
+    from .sections import hygiene, modules
+    from .templating import has_template, render_html_template
+
+    out = []
+    if doc.get("failed_analyses"):  # first, so that nobody reads the report as complete
+        out.append({"id": "failed", "title": "Analyses that failed",
+                    "html": Markup('<h2 id="failed">Analyses that failed</h2>' + failed_note(doc))})
+    for mod in modules() + [hygiene]:
+        name = mod.__name__.rsplit(".", 1)[-1]
+        note = failed_note(doc, _MODULE_KEY.get(name, name))
+        if note:  # where the section would be
+            title = f"{name.replace('_', ' ').capitalize()}: not available"
+            out.append({"id": f"failed-{name}", "title": title,
+                        "html": Markup(f'<h2 id="failed-{name}">{esc(title)}</h2>' + note)})
+        if hasattr(mod, "model") and has_template(f"sections/{name}.html.j2"):
+            m = mod.model(doc, min_cell)
+            if not m:
+                continue
+            out.append({"id": m["id"], "title": m["title"],
+                        "html": render_html_template(f"sections/{name}.html.j2", m=m)})
+        elif hasattr(mod, "html"):
+            text = mod.html(doc, min_cell)
+            if text:
+                out.append(legacy_section(name, text))
+    meth = hygiene.methods_model(doc)
+    out.append({"id": meth["id"], "title": meth["title"],
+                "html": render_html_template("sections/methods.html.j2", m=meth, disclaimer=DISCLAIMER,
+                                             min_cell=min_cell)})
+    return out
+
+
+def _head(doc: Dict[str, Any], min_cell: int) -> Dict[str, Any]:
+    import os
+
+    inp = doc.get("input", {}) or {}
+    sites = inp.get("sites", {}) or {}
+    return {"file": os.path.basename(str(inp.get("path") or "")) or "table",
+            "rows": _fmt.count(suppress_count(inp.get("rows_used"), min_cell)), "n_sites": len(sites),
+            "site_column": inp.get("site_column"),
+            "sites": [{"name": k, "n": _fmt.count(suppress_count(v, min_cell))} for k, v in sites.items()]}
 
 
 def render_html(doc: Dict[str, Any], *, min_cell: int = 10, out_dir=None) -> str:
-    """Render the report document (``ScanResult.to_dict()``) as one HTML page.
+    """Render the report document (``ScanResult.to_dict()``, suppressed) as one HTML page.
 
-    Section renderers receive ``doc["_out_dir"]`` (not part of report.json) so they can
+    Sections receive ``doc["_out_dir"]`` (not part of report.json) so they can
     embed figures with :func:`embed_image`."""
+    from .sections import actions, probe
+    from .templating import render_html_template
+
     doc = dict(doc)
     doc["_out_dir"] = out_dir
-    inp = doc.get("input", {})
-    sites = inp.get("sites", {})
-    head = (f"<h1>sitecheck report: {esc(inp.get('path'))}</h1>"
-            f"<p class='note'>{esc(DISCLAIMER)}</p>"
-            f"<p>{esc(inp.get('rows_used'))} rows from {len(sites)} sites "
-            f"(site column <code>{esc(inp.get('site_column'))}</code>): "
-            + ", ".join(f"{esc(k)} ({esc(suppress_count(v, min_cell))})" for k, v in sites.items()) + "</p>")
-    body = [head, _at_a_glance(doc)]
-    from .sections import modules
-
-    for mod in modules():
-        body.append(mod.html(doc, min_cell))
-    body.append(_hygiene(doc, min_cell))
-    body.append(_methods(doc))
-    return ("<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
-            "<meta http-equiv='Content-Security-Policy' content=\"default-src 'none'; img-src data:; style-src 'unsafe-inline'; script-src 'unsafe-inline'\">"
-            f"<title>sitecheck report</title><style>{_CSS}</style></head><body>"
-            + "".join(body) + f"<script>{_SORT_JS}</script></body></html>\n")
+    nxt = actions.model(doc, min_cell)
+    page = render_html_template("page.html.j2", head=_head(doc, min_cell), verdict=probe.headline(doc),
+                                disclaimer=DISCLAIMER, next=nxt, glance=nxt["glance"],
+                                sections=render_sections(doc, min_cell),
+                                css=Markup(_asset("style.css")), script=Markup(_asset("sort.js")))
+    return str(page).rstrip() + "\n"

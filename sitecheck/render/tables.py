@@ -7,6 +7,7 @@ import json
 from typing import Any, Dict, List
 
 from .safety import csv_cell, suppress_count
+from .words import MECHANICAL, artefact
 
 
 def _csv(headers: List[str], rows: List[List[Any]]) -> str:
@@ -39,5 +40,8 @@ def fingerprints_csv(doc: Dict[str, Any], *, min_cell: int) -> str:
         ev = f.get("evidence", {}) or {}
         ev_s = {k: (suppress_count(v, min_cell) if k in ("n", "count") else v) for k, v in ev.items()}
         rows.append([f.get("feature"), f.get("site"), f.get("kind"), f.get("detail"),
-                     json.dumps(ev_s, sort_keys=True, default=str)])
-    return _csv(["feature", "site", "kind", "detail", "evidence"], rows)
+                     json.dumps(ev_s, sort_keys=True, default=str), artefact(f.get("kind")), f.get("severity"),
+                     "recording" if f.get("kind") in MECHANICAL else "distribution gap", f.get("suggested_fix")])
+    # the columns of the first version come first (pipelines read them by position or name)
+    return _csv(["feature", "site", "kind", "detail", "evidence", "artefact", "severity", "group", "suggested_fix"],
+                rows)

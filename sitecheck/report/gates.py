@@ -25,8 +25,10 @@ from typing import Any, Mapping, Optional, Tuple
 
 #: The kinds of fingerprint (the one list: the detectors in :mod:`sitecheck.analyses.fingerprints`, the gates and
 #: the command line read it). Kept here, free of heavy imports, so the command line starts fast.
+#: Names are a contract; new kinds are appended (the repair plan's schema reads this list too).
 FINGERPRINT_KINDS = ("unit_ratio", "precision", "heaping", "floor", "ceiling", "missing_code", "site_missing",
-                     "exclusive_level", "shift", "scale")
+                     "exclusive_level", "shift", "scale", "censored_below", "censored_above", "number_format",
+                     "unit_label")
 
 #: The range a ``fail_above`` threshold may take (an AUC of 0.5 is chance).
 FAIL_ABOVE_RANGE = (0.5, 1.0)

@@ -38,7 +38,34 @@ class ScanResult:
     ``sections`` maps a ``report.json`` key (``probe``, ``groups``,
     ``leakage``, ...) to that analysis's result object (anything with a
     ``to_dict`` method, or plain JSON data). Analyses that did not run are
-    absent.
+    absent. ``failures`` lists the analyses that raised (or did not run because
+    one they need raised), as ``report.json``'s ``failed_analyses``: their
+    sections are absent and every other section is complete.
+
+    Attributes
+    ----------
+    input, run : dict
+        The input file (path, format, rows, SHA-256, sites) and the run (seed, options,
+        versions, seconds).
+    columns, findings, warnings : tuple
+        Each column's role and kind, the hygiene findings and the warnings of reading.
+    sections : dict
+        ``report.json`` key -> result.
+    objects : dict
+        The in-memory objects behind the sections (the table, the prepared matrices,
+        each analysis's result), for rendering; not part of the document.
+
+    Examples
+    --------
+    >>> from sitecheck import ScanOptions, generate_demo, scan_frame
+    >>> result = scan_frame(generate_demo(600, seed=7).frame, site="hospital",
+    ...                     identifiers=["attendance_id"],
+    ...                     options=ScanOptions(analyses=("probe",), folds=3, n_jobs=1))
+    >>> doc = result.to_dict()                     # the report.json document
+    >>> doc["schema"].startswith("sitecheck.report/"), doc["input"]["rows"]
+    (True, 600)
+    >>> print(result.summary().splitlines()[0])
+    sitecheck ...: 600 rows, 4 sites
     """
 
     input: Dict[str, Any]
@@ -47,10 +74,16 @@ class ScanResult:
     warnings: Tuple[str, ...]
     run: Dict[str, Any]
     sections: Dict[str, Any] = field(default_factory=dict)
+    failures: Tuple[Dict[str, Any], ...] = ()
     objects: Dict[str, Any] = field(default_factory=dict, compare=False, repr=False)
 
     def __getitem__(self, key: str) -> Any:
         return self.sections[key]
+
+    @property
+    def failed(self) -> Tuple[str, ...]:
+        """Names of the analyses that failed or did not run because of a failure."""
+        return tuple(f["analysis"] for f in self.failures)
 
     def to_dict(self) -> Dict[str, Any]:
         """The ``report.json`` document."""
@@ -63,12 +96,13 @@ class ScanResult:
         }
         for key, value in self.sections.items():
             doc[key] = value
+        doc["failed_analyses"] = [dict(f) for f in self.failures]
         doc["run"] = self.run
         return to_jsonable(doc)
 
     def summary(self, *, max_warnings: int = 5) -> str:
         """A few lines for a terminal: rows and sites, the site probe's AUC with its interval,
-        p-value and verdict, and the first warnings.
+        p-value and verdict, the drift findings (with ``--time``), and the first warnings.
 
         Parameters
         ----------
@@ -95,6 +129,12 @@ class ScanResult:
             lines.append(f"site probe: AUC {probe['auc']:.3f} (95% CI {lo:.3f} to {hi:.3f}), "
                          f"p = {probe['p_value']:.3g}, n = {probe.get('n_used', inp.get('rows_used'))}, "
                          f"verdict: {probe['verdict']}")
+        drift = doc.get("drift")
+        if isinstance(drift, dict):
+            found = drift.get("findings") or []
+            where = ", ".join(f"{c['feature']} at {c['site']} from {c['period']}" for c in found[:3])
+            lines.append(f"drift over time: {len(found)} change(s) at a site" + (f" ({where})" if where else "")
+                         + (f"; {len(drift.get('network') or [])} network-wide" if drift.get("network") else ""))
         warnings = doc.get("warnings", [])
         lines += [f"warning: {w}" for w in warnings[:max_warnings]]
         if len(warnings) > max_warnings:

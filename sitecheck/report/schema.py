@@ -2,7 +2,8 @@
 
 The document's ``schema`` field carries :data:`sitecheck.report.result.SCHEMA_VERSION`.
 Minor versions add keys; a major version renames or removes one. Sections are
-present only when their analysis ran (``outcome`` needs ``--outcome``).
+present only when their analysis ran (``outcome`` needs ``--outcome``, ``drift``
+needs ``--time``).
 """
 from __future__ import annotations
 
@@ -43,7 +44,7 @@ def report_schema() -> Dict[str, Any]:
                         "kind": {"enum": list(FINGERPRINT_KINDS)},
                         "detail": {"type": "string"}, "evidence": {"type": "object"}},
                        ["feature", "site", "kind", "detail", "evidence"])
-    embedding = _obj({"n_used": COUNT, "methods": {"type": "array"}, "mixing": {"type": "object"},
+    embedding = _obj({"values": {"enum": ["after repair", "as given"]}, "n_used": COUNT, "methods": {"type": "array"}, "mixing": {"type": "object"},
                       "silhouette": {}, "figures": {"type": "array", "items": {"type": "string"}}},
                      ["n_used", "methods", "mixing", "silhouette"])
     harm_method = _obj({"probe_auc": NUM, "probe_auc_ci": CI,
@@ -79,10 +80,51 @@ def report_schema() -> Dict[str, Any]:
                         ["threshold", "per_group", "tpr_spread", "fpr_spread", "heterogeneity"])}},
                    ["prevalence", "site_only_auc", "pooled_auc", "loso", "transport_gap", "shortcut_candidates",
                     "equalized_odds"])
+    change_point = _obj({
+        "site": {"type": "string"}, "feature": {"type": "string"},
+        "aspect": {"enum": ["level", "spread", "missing", "artefact"]}, "artefact": {"type": ["string", "null"]},
+        "date": {"type": "string", "pattern": "^[0-9]{4}-[0-9]{2}-[0-9]{2}$"}, "period": {"type": "string"},
+        "before": {"type": "object"}, "after": {"type": "object"}, "size": NUM, "size_ci": CI, "size_sd": NUM,
+        "p_value": NUM, "p_adj": NUM, "scope": {"enum": ["site", "several_sites", "network"]},
+        "other_sites": {"type": "object"}, "artefacts": {"type": "array"}, "finding": {"type": "boolean"},
+        "detail": {"type": "string"}},
+        ["site", "feature", "aspect", "artefact", "date", "period", "size", "size_ci", "size_sd", "p_value",
+         "p_adj", "scope", "finding", "detail"])
+    drift_site = {"anyOf": [_obj({"site": {"type": "string"}, "unit": {"type": "string"},
+                                  "assessed": {"type": "boolean"}, "periods": {"type": "array"},
+                                  "starts": {"type": "array"}, "n": {"type": "array", "items": COUNT},
+                                  "features": {"type": "object"}},
+                                 ["site", "unit", "assessed", "periods", "starts", "n", "features"]),
+                            {"const": "withheld"}]}
+    period_probe = _obj({"site": {"type": "string"}, "n": COUNT, "split_date": {"type": "string"}, "auc": NUM,
+                         "auc_ci": CI, "covariate_auc": NUM, "covariate_auc_ci": CI, "increment": NUM,
+                         "increment_ci": CI, "increment_ci_adjusted": CI, "flagged": {"type": "boolean"}},
+                        ["site", "n", "split_date", "auc", "auc_ci", "covariate_auc", "increment", "increment_ci",
+                         "flagged"])
+    drift = _obj({"time_column": {"type": "string"}, "n_series": {"type": "integer"},
+                  "findings": {"type": "array", "items": change_point},
+                  "change_points": {"type": "array", "items": change_point},
+                  "network": {"type": "array", "items": _obj({"feature": {"type": "string"},
+                                                              "date": {"type": "string"},
+                                                              "sites": {"type": "array"}},
+                                                             ["feature", "date", "sites"])},
+                  "period_probe": {"type": "array", "items": period_probe},
+                  "sites": {"type": "array", "items": drift_site},
+                  "calibration": {"type": "object"}, "params": {"type": "object"}, "time_notes": {"type": "object"},
+                  "figures": {"type": "array", "items": {"type": "string"}}},
+                 ["time_column", "n_series", "findings", "change_points", "network", "period_probe", "sites",
+                  "calibration", "params"],
+                 description="Drift within each site over the collection period (with --time): change points "
+                             "per site, feature and aspect, their scope, and the period probe.")
     column = _obj({"name": {"type": "string"}, "role": {"enum": ["site", "outcome", "covariate", "group", "identifier",
-                                                                 "excluded", "feature"]},
+                                                                 "excluded", "feature", "time"]},
                    "kind": {"enum": ["numeric", "binary", "categorical", "datetime", "text"]},
-                   "reason": {"type": "string"}}, ["name", "role", "kind", "reason"])
+                   "reason": {"type": "string"},
+                   "idioms": {"type": "object", "description": "site -> lab-export idiom -> cells",
+                              "additionalProperties": {"type": "object", "additionalProperties": COUNT}},
+                   "units": {"type": "object", "description": "site -> unit written after the number -> cells",
+                             "additionalProperties": {"type": "object", "additionalProperties": COUNT}}},
+                  ["name", "role", "kind", "reason"])
     return {
         "$schema": "https://json-schema.org/draft/2020-12/schema",
         "$id": f"urn:sitecheck:{SCHEMA_VERSION}",
@@ -111,7 +153,37 @@ def report_schema() -> Dict[str, Any]:
             "embedding": embedding,
             "harmonisation": {"type": "object", "additionalProperties": harm_method},
             "outcome": outcome,
+            "residual": _obj({"auc_given": NUM, "auc_given_ci": CI, "auc_repaired": NUM,
+                              "auc_repaired_ci": {"anyOf": [CI, {"type": "null"}]},
+                              "difference": NUM, "difference_ci": {"anyOf": [CI, {"type": "null"}]},
+                              "explained_share": NUM, "n_used": COUNT, "statement": {"type": "string"},
+                              "applied": {"type": "array"}, "top": {"type": "array"}},
+                             ["auc_given", "auc_given_ci", "auc_repaired", "statement"],
+                             description="the site probe again after the repair plan's safe entries"),
+            "repair": _obj({"plan_file": {"type": "string"}, "plan_version": {"type": "string"},
+                            "n_entries": {"type": "integer"}, "n_safe": {"type": "integer"},
+                            "values_for_maps_harmonisation_outcome": {"enum": ["after repair", "as given"]},
+                            "entries": {"type": "array", "items": _obj({
+                                "id": {"type": "string"}, "kind": {"enum": list(FINGERPRINT_KINDS)},
+                                "column": {"type": "string"}, "site": {"type": ["string", "null"]},
+                                "operation": {"type": "string"}, "cells": COUNT, "safe": {"type": "boolean"},
+                                "enabled": {"type": "boolean"}},
+                                ["id", "kind", "column", "site", "operation", "cells", "safe", "enabled"])},
+                            "applied_in_scan": {"type": "array"}, "log": {"type": "object"},
+                            "not_repaired": {"type": "array"}},
+                           ["plan_file", "plan_version", "entries", "values_for_maps_harmonisation_outcome"],
+                           description="the repair plan (repair_plan.json; its schema: sitecheck repair-schema)"),
+            "unit_columns": {"type": "object", "description": "unit column -> the numeric column it qualifies"},
+            "drift": drift,
             "shareable": _obj({"min_cell": {"type": "integer"}, "withheld_sites": {"type": "array"}}),
+            "failed_analyses": {"type": "array", "description": (
+                "analyses that raised (status 'failed': exception type and its first line) or did not run because "
+                "one they need failed (status 'not_run'); their sections are absent, every other section is "
+                "complete. The command exits 3 when this list is not empty."),
+                "items": _obj({"analysis": {"type": "string"}, "sections": {"type": "array", "items": {"type": "string"}},
+                               "status": {"enum": ["failed", "not_run"]}, "error": {"type": ["string", "null"]},
+                               "message": {"type": "string"}, "process": {"enum": ["main", "second"]}},
+                              ["analysis", "sections", "status", "error", "message"])},
         }, ["schema", "input", "columns", "warnings", "run"]),
     }
 

@@ -18,9 +18,9 @@ import numpy as np
 import pandas as pd
 
 from sitecheck.errors import InputError
-from sitecheck.reading.intake import ColumnIntake, RawTable
+from sitecheck.reading.intake import IDIOM_BITS, CellNotes, ColumnIntake, RawTable
 
-ROLES = ("site", "outcome", "covariate", "group", "identifier", "excluded", "feature")
+ROLES = ("site", "outcome", "covariate", "group", "identifier", "excluded", "feature", "time")
 KINDS = ("numeric", "binary", "categorical", "datetime", "text")
 
 #: Name tokens that denote direct identifiers, after the HIPAA Safe Harbor
@@ -47,6 +47,7 @@ _IDENT_PATTERNS = [
     r"biometric", r"finger_?print", r"photo(graph)?",
 ]
 _IDENT_RE = re.compile(r"^(?:" + "|".join(_IDENT_PATTERNS) + r")$")
+_PERSON_NAME_RE = re.compile(r"(^|_)((first|last|given|family|sur|maiden|middle)_?names?)$")
 
 
 def value_label(value: Any) -> Optional[str]:
@@ -85,6 +86,10 @@ def identifier_name_match(name: str) -> Optional[str]:
                  re.sub(r"_(raw|text|str|full)$", "", norm)):
         if part != norm and _IDENT_RE.match(part):
             return part
+    # a person's name after any prefix ("fake_last_name", "mothers_first_name")
+    m = _PERSON_NAME_RE.search(norm)
+    if m:
+        return m.group(2)
     return None
 
 
@@ -94,6 +99,23 @@ class RoleSpec:
 
     ``None`` for a list means "not given" (so a config file value may apply);
     an empty tuple means "given, and empty".
+
+    Parameters
+    ----------
+    site : str, optional
+        The site (or group) column; required by :func:`assign_roles`.
+    outcome : str, optional
+        A binary outcome.
+    covariates, groups, identifiers, excluded : tuple of str, optional
+        Case-mix columns, demographic columns probed like sites, identifiers (never
+        features) and columns left out.
+
+    Examples
+    --------
+    >>> from sitecheck import RoleSpec
+    >>> spec = RoleSpec(site="hospital", covariates=("age",))
+    >>> spec.site, spec.covariates, spec.groups
+    ('hospital', ('age',), None)
     """
 
     site: Optional[str] = None
@@ -104,6 +126,7 @@ class RoleSpec:
     excluded: Optional[Tuple[str, ...]] = None
     features: Optional[Tuple[str, ...]] = None
     panels: Optional[Dict[str, Tuple[str, ...]]] = None
+    time: Optional[str] = None
 
     def merged_over(self, base: "RoleSpec") -> "RoleSpec":
         """Return this spec with unset fields filled from ``base`` (flags over file)."""
@@ -146,6 +169,10 @@ class Column:
     unparsed_count: int = 0
     unparsed_examples: Tuple[str, ...] = ()
     levels: Tuple[str, ...] = ()
+    #: site -> lab-export idiom -> cells (censored_below, decimal_comma, unit_suffix, ...)
+    idioms: Dict[str, Dict[str, int]] = field(default_factory=dict)
+    #: site -> unit written after the number -> cells
+    units: Dict[str, Dict[str, int]] = field(default_factory=dict)
 
     def to_dict(self) -> dict:
         d = {
@@ -158,6 +185,10 @@ class Column:
         }
         if self.unparsed_count:
             d["unparsed"] = {"count": int(self.unparsed_count), "examples": list(self.unparsed_examples)}
+        if self.idioms:
+            d["idioms"] = {s: dict(v) for s, v in self.idioms.items()}
+        if self.units:
+            d["units"] = {s: dict(v) for s, v in self.units.items()}
         return d
 
 
@@ -185,6 +216,16 @@ class Table:
     source : RawTable
     dropped_sites : dict
         Site label -> rows, for sites left out below the minimum row count.
+    cells : dict
+        Column -> :class:`~sitecheck.reading.intake.CellNotes` of the retained rows, for the
+        columns whose cells used a lab-export idiom (censoring flags, units).
+    outcome : str or None
+    time : str or None
+        The time column (``--time``), parsed to datetime64 per site; rows without a
+        usable date hold NaT.
+    time_notes : dict
+        Site label -> what parsing the time column found there: ``rows``, ``dated``,
+        ``without_date``, ``implausible``, ``first``, ``last``, ``format``.
     """
 
     frame: pd.DataFrame
@@ -198,6 +239,16 @@ class Table:
     source: RawTable
     dropped_sites: Dict[str, int]
     outcome: Optional[str] = None
+    cells: Dict[str, CellNotes] = field(default_factory=dict)
+    time: Optional[str] = None
+    time_notes: Dict[str, dict] = field(default_factory=dict)
+
+    def censored(self, name: str) -> Optional[np.ndarray]:
+        """-1/0/+1 per row (below a limit / not censored / above), or None without censoring."""
+        notes = self.cells.get(name)
+        if notes is None or not notes.censor.any():
+            return None
+        return notes.censor
 
     def names(self, role: str) -> List[str]:
         return [c.name for c in self.columns if c.role == role]
@@ -339,6 +390,17 @@ def assign_roles(
     InputError
         Unknown columns, fewer than two sites, a non-binary outcome, no usable
         feature.
+
+    Examples
+    --------
+    >>> from sitecheck import RoleSpec, assign_roles, read_table
+    >>> with open("labs.csv", "w") as fh:
+    ...     _ = fh.write("hospital,crp,potassium\\nAshby,12,4.1\\nAshby,<5,3.9\\n"
+    ...                  "Brill,7,NA\\nBrill,9,4.4\\n")
+    >>> table = assign_roles(read_table("labs.csv", site="hospital"), RoleSpec(site="hospital"),
+    ...                      min_site_rows=2)
+    >>> table.site_labels, table.features
+    (('Ashby', 'Brill'), ['crp', 'potassium'])
     """
     if not isinstance(min_site_rows, (int, np.integer)) or min_site_rows < 1:
         raise InputError(f"min_site_rows must be a positive integer, got {min_site_rows!r}")
@@ -366,9 +428,15 @@ def assign_roles(
     for n in covs + groups:
         if n in special:
             raise InputError(f"column {n!r} cannot be both the site/outcome and a covariate or group")
+    if spec.time:
+        _check_named(names, [spec.time], "time")
+        if spec.time in special or spec.time in covs + groups + ids + excl:
+            raise InputError(f"time column {spec.time!r} cannot also be the site, the outcome, a covariate, "
+                             "a group, an identifier or excluded")
 
     warnings: List[str] = []
     findings: List[Finding] = []
+    time_notes: Dict[str, dict] = {}
 
     # -- sites -------------------------------------------------------------
     site_raw = frame[spec.site]
@@ -397,13 +465,18 @@ def assign_roles(
     intake = {c.name: c for c in raw.columns}
     columns: List[Column] = []
     binary_levels: Dict[str, Tuple[str, str]] = {}
+    cells = {name: notes.take(keep_mask) for name, notes in raw.cells.items()}
+    site_code = np.searchsorted(np.array(kept, dtype=object), frame[spec.site].to_numpy(dtype=object))
+    idioms_of, units_of = {}, {}
+    for name, notes in cells.items():
+        idioms_of[name], units_of[name] = _per_site_idioms(notes, site_code, kept)
 
     def make(name, role, kind, reason, levels=()):
         info: ColumnIntake = intake[name]
         return Column(name=name, role=role, kind=kind, reason=reason,
                       n_missing=int(frame[name].isna().sum()), missing_codes=dict(info.missing_codes),
                       unparsed_count=info.unparsed_count, unparsed_examples=info.unparsed_examples,
-                      levels=tuple(levels))
+                      levels=tuple(levels), idioms=idioms_of.get(name, {}), units=units_of.get(name, {}))
 
     for name in names:
         info = intake[name]
@@ -415,6 +488,13 @@ def assign_roles(
             )
         if name == spec.site:
             columns.append(make(name, "site", "categorical", "site column (given)", kept))
+            continue
+        if name == spec.time:
+            text = None if info.text is None else pd.Series(info.text[keep_mask], index=frame.index)
+            parsed, time_notes, time_warnings = parse_dates_by_site(frame[name], info, site, kept, text=text)
+            frame[name] = parsed
+            warnings.extend(time_warnings)
+            columns.append(make(name, "time", "datetime", "time column (given); dates parsed per site"))
             continue
         kind = _infer_kind(frame[name], info.storage, n)
         levels: Tuple[str, ...] = ()
@@ -513,14 +593,21 @@ def assign_roles(
                                         f"never recorded at site {lab!r} (all {int((site == lab).sum())} rows missing)",
                                         site=lab, count=int((site == lab).sum())))
         if col.kind == "categorical":
+            # one finding per column x site, listing the levels (most frequent first)
             ct = pd.crosstab(frame[col.name], site)
+            per_site: Dict[str, List[Tuple[str, int]]] = {}
             for level, row in ct.iterrows():
                 nz = row[row > 0]
                 if len(nz) == 1 and int(nz.iloc[0]) >= 5:
-                    lab = str(nz.index[0])
-                    findings.append(Finding(col.name, "exclusive_level",
-                                            f"level {str(level)!r} occurs only at site {lab!r}",
-                                            site=lab, count=int(nz.iloc[0])))
+                    per_site.setdefault(str(nz.index[0]), []).append((str(level), int(nz.iloc[0])))
+            for lab in kept:
+                lv = sorted(per_site.get(lab, []), key=lambda t: (-t[1], t[0]))
+                if not lv:
+                    continue
+                shown = ", ".join(repr(x) for x, _ in lv[:5]) + (f" and {len(lv) - 5} more" if len(lv) > 5 else "")
+                what = f"level {shown} occurs" if len(lv) == 1 else f"{len(lv)} levels occur ({shown})"
+                findings.append(Finding(col.name, "exclusive_level", f"{what} only at site {lab!r}",
+                                        site=lab, count=sum(c for _, c in lv)))
 
     usable = [c for c in columns if c.role == "feature"]
     if not usable:
@@ -545,7 +632,32 @@ def assign_roles(
         source=raw,
         dropped_sites=dropped,
         outcome=spec.outcome,
+        cells=cells,
+        time=spec.time or None,
+        time_notes=time_notes,
     )
+
+
+def _per_site_idioms(notes: CellNotes, site_code: np.ndarray, labels: Sequence[str]):
+    """(site -> idiom -> cells, site -> unit -> cells) from per-cell notes (vectorised)."""
+    k = len(labels)
+    idioms: Dict[str, Dict[str, int]] = {}
+    for key, bit in IDIOM_BITS.items():
+        hit = (notes.idiom & bit) != 0
+        if not hit.any():
+            continue
+        counts = np.bincount(site_code[hit], minlength=k)
+        for s in np.flatnonzero(counts):
+            idioms.setdefault(labels[s], {})[key] = int(counts[s])
+    units: Dict[str, Dict[str, int]] = {}
+    has = notes.unit >= 0
+    if has.any():
+        nl = len(notes.unit_levels)
+        counts = np.bincount(site_code[has] * nl + notes.unit[has], minlength=k * nl).reshape(k, nl)
+        for s, u in zip(*np.nonzero(counts)):
+            units.setdefault(labels[s], {})[notes.unit_levels[u]] = int(counts[s, u])
+    return ({lab: idioms[lab] for lab in labels if lab in idioms},
+            {lab: units[lab] for lab in labels if lab in units})
 
 
 _POSITIVE = ("1", "yes", "y", "true", "t", "positive", "pos", "died", "dead", "event", "admitted")
@@ -578,3 +690,142 @@ def _datetime_periods(values: pd.Series, site: pd.Series, labels: Sequence[str])
         if share < 0.8:
             return f"collection periods differ by site (common overlap {share:.0%} of the span; " + "; ".join(parts) + "); left out of the probe"
     return "datetime column; left out of the probe (" + "; ".join(parts) + ")"
+
+
+#: Date formats tried, site by site, on a time column that intake left as text. Day-first
+#: comes before month-first: when both read every value, the day-first reading is kept
+#: and a warning says so.
+DATE_FORMATS = ("ISO8601", "%d/%m/%Y", "%m/%d/%Y", "%d.%m.%Y", "%d-%m-%Y", "%Y/%m/%d", "%Y.%m.%d",
+                "%d/%m/%y", "%m/%d/%y", "%d %b %Y", "%d-%b-%Y", "%b %d %Y")
+
+#: Dates outside [first, last) are read as placeholders (1900-01-01, 2999-12-31, ...), not dates.
+PLAUSIBLE_DATES = (pd.Timestamp("1901-01-01"), pd.Timestamp("2100-01-01"))
+
+#: Share of a site's non-missing values that must parse in one format (as intake's COERCE_SHARE).
+DATE_SHARE = 0.95
+
+
+def _parse_text_dates(values: pd.Series) -> Tuple[pd.Series, str, bool]:
+    """Parse one site's date strings in the format that reads most of them.
+
+    Returns (parsed, format, ambiguous): ``ambiguous`` is True when day-first and
+    month-first both read every value and disagree on some.
+    """
+    import warnings as _w
+
+    best, best_fmt, best_ok = None, "", -1
+    results = {}
+    with _w.catch_warnings():
+        _w.simplefilter("ignore")
+        for fmt in DATE_FORMATS:
+            try:
+                got = pd.to_datetime(values, format=fmt, errors="coerce")
+            except (ValueError, TypeError):  # pragma: no cover - pandas refuses the format
+                continue
+            ok = int(got.notna().sum())
+            results[fmt] = got
+            if ok > best_ok:
+                best, best_fmt, best_ok = got, fmt, ok
+            if ok == len(values) and fmt not in ("%d/%m/%Y", "%d/%m/%y"):
+                break
+    ambiguous = False
+    for dayfirst, monthfirst in (("%d/%m/%Y", "%m/%d/%Y"), ("%d/%m/%y", "%m/%d/%y")):
+        if best_fmt == dayfirst and monthfirst in results:
+            other = results[monthfirst]
+            if int(other.notna().sum()) == best_ok and not other.equals(best):
+                ambiguous = True
+    return best, best_fmt, ambiguous
+
+
+def parse_dates_by_site(values: pd.Series, info: ColumnIntake, site: pd.Series,
+                        labels: Sequence[str], *, text: Optional[pd.Series] = None
+                        ) -> Tuple[pd.Series, Dict[str, dict], List[str]]:
+    """Parse and validate the time column, site by site.
+
+    Text (``text``, the column as written when intake read it as dates, or the
+    column itself when intake left it as text) is parsed per site in the format
+    that reads most of that site's values: sites may write dates differently,
+    and one format per site keeps 03/01 from being read as 3 January at one row
+    and 1 March at the next. Dates stored as dates (Parquet) are taken as they
+    are; integers written as YYYYMMDD are read as dates.
+    Dates before 1901 or from 2100 are taken as placeholders. Rows without a
+    usable date become NaT and are counted per site.
+
+    Returns
+    -------
+    (parsed, notes, warnings)
+        ``parsed`` is datetime64[ns] aligned with ``values``; ``notes`` maps each site
+        to ``rows``, ``dated``, ``without_date``, ``implausible``, ``first``, ``last``,
+        ``format``.
+
+    Raises
+    ------
+    InputError
+        The column holds numbers that are not YYYYMMDD dates, or a site's values are
+        not dates in any one format (fewer than 95% parse), or no site has a date.
+    """
+    name = info.name
+    out = pd.Series(pd.NaT, index=values.index, dtype="datetime64[ns]")
+    formats: Dict[str, str] = {}
+    warn: List[str] = []
+    if info.storage == "datetime" and text is not None:
+        values = text
+    if info.storage == "datetime" and text is None:
+        out[:] = pd.to_datetime(values).astype("datetime64[ns]").to_numpy()
+        formats = {lab: "stored as dates" for lab in labels}
+    elif info.storage == "numeric":
+        v = pd.to_numeric(values, errors="coerce")
+        present = v.dropna()
+        ymd = present.between(19000101, 21001231) & (present % 1 == 0)
+        if len(present) == 0 or float(ymd.mean()) < DATE_SHARE:
+            ex = ", ".join(repr(float(x)) for x in present[~ymd].head(3)) if len(present) else "none"
+            raise InputError(f"time column {name!r} holds numbers, not dates (e.g. {ex}); "
+                             "write dates as text such as 2025-01-31")
+        out[:] = pd.to_datetime(v.where(ymd).astype("Int64").astype(str), format="%Y%m%d",
+                                errors="coerce").astype("datetime64[ns]").to_numpy()
+        formats = {lab: "YYYYMMDD numbers" for lab in labels}
+    else:
+        text = values.astype(object)
+        for lab in labels:
+            mask = (site == lab).to_numpy() & text.notna().to_numpy()
+            vals = text[mask].astype(str).str.strip()
+            if len(vals) == 0:
+                continue
+            parsed, fmt, ambiguous = _parse_text_dates(vals)
+            ok = int(parsed.notna().sum())
+            if ok < DATE_SHARE * len(vals):
+                bad = vals[parsed.isna().to_numpy()]
+                ex = ", ".join(repr(x) for x in pd.unique(bad.to_numpy())[:3])
+                raise InputError(f"time column {name!r}: at site {lab!r}, {len(vals) - ok} of {len(vals)} values are "
+                                 f"not dates in any one format (e.g. {ex})")
+            out[mask] = parsed.astype("datetime64[ns]").to_numpy()
+            formats[lab] = "ISO 8601" if fmt == "ISO8601" else fmt
+            if ambiguous:
+                warn.append(f"time column {name!r}: dates at site {lab!r} were read day-first ({fmt}); "
+                            "every day number is 12 or less, so month-first would also fit")
+    lo, hi = PLAUSIBLE_DATES
+    implausible = out.notna() & ((out < lo) | (out >= hi))
+    out[implausible] = pd.NaT
+    notes: Dict[str, dict] = {}
+    without: Dict[str, int] = {}
+    for lab in labels:
+        m = (site == lab).to_numpy()
+        d = out[m]
+        dated = int(d.notna().sum())
+        notes[lab] = {"rows": int(m.sum()), "dated": dated, "without_date": int(m.sum()) - dated,
+                      "implausible": int(implausible[m].sum()),
+                      "first": None if dated == 0 else f"{d.min():%Y-%m-%d}",
+                      "last": None if dated == 0 else f"{d.max():%Y-%m-%d}",
+                      "format": formats.get(lab, "")}
+        if notes[lab]["without_date"]:
+            without[lab] = notes[lab]["without_date"]
+        if dated == 0:
+            warn.append(f"time column {name!r}: no usable date at site {lab!r}; the site is left out of the "
+                        "drift analysis")
+    if all(n["dated"] == 0 for n in notes.values()):
+        raise InputError(f"time column {name!r}: no value could be read as a date")
+    if without:
+        warn.append(f"time column {name!r}: {sum(without.values())} rows have no usable date ("
+                    + ", ".join(f"{k} {v}" for k, v in sorted(without.items()))
+                    + "); they are left out of the drift analysis")
+    return out, notes, warn

@@ -232,3 +232,108 @@ def convert(value, analyte: str, from_unit: str, to_unit: str):
             if (c.to_unit, c.from_unit) == (from_unit, to_unit):
                 return value / c.factor
     raise KeyError(f"no conversion for {analyte!r} from {from_unit!r} to {to_unit!r}")
+
+
+# ---------------------------------------------------------------------------
+# unit labels written in cells or in a column of their own
+# ---------------------------------------------------------------------------
+
+#: Metric prefixes (SI brochure, BIPM, 9th edition, 2019).
+_PREFIX = {"": 1.0, "d": 1e-1, "c": 1e-2, "m": 1e-3, "u": 1e-6, "n": 1e-9, "p": 1e-12, "f": 1e-15, "k": 1e3}
+_BASES = ("mol", "g", "eq", "iu", "u", "kat")
+_UNIT_PARTS = re.compile(r"^(?P<pm>[dcmunpfk]?)(?P<base>mol|g|eq|iu|u|kat)/(?P<pv>[dcmunpf]?)l$")
+_DISPLAY = {"mg/dl": "mg/dL", "g/dl": "g/dL", "ug/dl": "ug/dL", "ng/ml": "ng/mL", "pg/ml": "pg/mL",
+            "mmhg": "mmHg", "kpa": "kPa", "degc": "degC", "degf": "degF", "iu/l": "IU/L", "u/l": "U/L"}
+_OTHER_UNITS = {"mmhg", "kpa", "kg", "lb", "cm", "in", "degc", "degf", "%", "mm", "m", "g", "bpm", "/min", "fl",
+                "pg", "s"}
+
+
+def canonical_unit(text) -> Optional[str]:
+    """The canonical spelling of a unit label, or None when ``text`` is not one.
+
+    Case, spaces, the micro sign (µ, μ, mc) and litre spellings are normalised:
+    ``"µmol/l"``, ``"umol/L"`` and ``"micromol/L"`` all give ``"umol/L"``.
+
+    >>> canonical_unit(" µmol/l "), canonical_unit("MG/DL"), canonical_unit("ward 3")
+    ('umol/L', 'mg/dL', None)
+    """
+    if text is None:
+        return None
+    s = str(text).strip().lower().replace(" ", "")
+    if not s:
+        return None
+    s = s.replace("\u00b5", "u").replace("\u03bc", "u").replace("micro", "u").replace("mcg", "ug")
+    s = s.replace("mcmol", "umol").replace("litre", "l").replace("liter", "l").replace("\u00b0", "deg")
+    s = {"lbs": "lb", "deg.c": "degc", "deg.f": "degf", "c": "degc", "f": "degf"}.get(s, s)
+    m = _UNIT_PARTS.match(s)
+    if m:
+        key = f"{m['pm']}{m['base']}/{m['pv']}l"
+        if key in _DISPLAY:
+            return _DISPLAY[key]
+        return f"{m['pm']}{m['base']}/{m['pv']}L"
+    if s in _OTHER_UNITS:
+        return _DISPLAY.get(s, s)
+    return None
+
+
+def _parts(unit: str):
+    m = _UNIT_PARTS.match(unit.lower())
+    if not m:
+        return None
+    return _PREFIX[m["pm"]], m["base"], _PREFIX[m["pv"]]
+
+
+def unit_factor(from_unit: str, to_unit: str, name: Optional[str] = None) -> Optional[Tuple[float, str]]:
+    """The factor ``f`` with ``value_in_to_unit = value_in_from_unit * f``, and its source.
+
+    The analyte's row of :data:`CONVERSIONS` (matched by the column ``name``) when it
+    converts between the two units; otherwise metric prefixes alone when both are
+    ``amount/volume`` of the same base (``mg/dL`` -> ``mg/L`` = 10); else None (for
+    instance ``mg/dL`` -> ``mmol/L`` without an analyte, which needs a molar mass).
+
+    >>> unit_factor("mg/dL", "umol/L", "creatinine")[0]  # doctest: +ELLIPSIS
+    88.4...
+    >>> unit_factor("g/dL", "g/L")
+    (10.0, 'metric prefixes')
+    """
+    a, b = canonical_unit(from_unit), canonical_unit(to_unit)
+    if a is None or b is None or a == b:
+        return None
+    if name is not None:
+        for c in conversions_for(name):
+            cf, ct = canonical_unit(c.from_unit), canonical_unit(c.to_unit)
+            if (cf, ct) == (a, b):
+                return float(c.factor), c.source
+            if (cf, ct) == (b, a):
+                return 1.0 / float(c.factor), c.source
+    pa_, pb = _parts(a), _parts(b)
+    if pa_ and pb and pa_[1] == pb[1]:
+        # amount per volume: x [pm base / pv L] = x * pm / pv  [base / L]
+        return (pa_[0] / pa_[2]) / (pb[0] / pb[2]), "metric prefixes"
+    return None
+
+
+def unit_column_base(name: str) -> Optional[str]:
+    """The name of the measurement a unit column qualifies, from its own name
+    (``creat_unit`` -> ``creat``, ``units_glucose`` -> ``glucose``), or None."""
+    norm = normalise_name(name)
+    for pat in (r"^(.+?)_(units?|uom|unit_of_measure)$", r"^(units?|uom)_(.+)$"):
+        m = re.match(pat, norm)
+        if m:
+            return m.group(1) if not m.group(1).startswith(("unit", "uom")) else m.group(2)
+    return None
+
+
+def names_refer_to_same(a: str, b: str) -> bool:
+    """Whether two column names denote the same measurement: equal after
+    normalising, one a prefix of the other at a word or 4-letter boundary, or both
+    matching one analyte of :data:`CONVERSIONS`."""
+    na, nb = normalise_name(a), normalise_name(b)
+    if na == nb:
+        return True
+    short, long_ = sorted((na, nb), key=len)
+    if len(short) >= 4 and long_.startswith(short):
+        return True
+    ca = {c.analyte for c in conversions_for(na)}
+    cb = {c.analyte for c in conversions_for(nb)}
+    return bool(ca & cb)

@@ -43,13 +43,16 @@ LEAKERS = 5
 
 
 def make_table(n_rows: int, n_features: int, n_sites: int, seed: int = 0) -> pd.DataFrame:
-    """Invented pooled table: features 0..4 shifted per site by decreasing amounts."""
+    """Invented pooled table: features 0..4 shifted per site by decreasing amounts; the first
+    site writes 2% of lab_000 as the missing-value code -99, so that the scan's repair loop (the
+    plan and the residual probe) runs, as it does on real exports."""
     rng = np.random.default_rng(seed)
     codes = rng.integers(0, n_sites, n_rows)
     X = rng.normal(size=(n_rows, n_features)).astype(np.float64)
     offsets = rng.normal(size=(n_sites, LEAKERS)) * np.array([0.8, 0.6, 0.45, 0.35, 0.3])
     X[:, :LEAKERS] += offsets[codes]
     X[rng.random(X.shape) < 0.05] = np.nan
+    X[(codes == 0) & (rng.random(n_rows) < 0.02), 0] = -99.0
     df = pd.DataFrame(X, columns=[f"lab_{j:03d}" for j in range(n_features)])
     df.insert(0, "site", np.array([f"Site-{k:02d}" for k in range(n_sites)])[codes])
     return df

@@ -1,42 +1,33 @@
 """Report section: do the sites mix in a 2-D map (LISI and silhouette by site, with the figures)."""
 from __future__ import annotations
 
-from typing import Any, Dict, List
+from typing import Any, Dict, List, Optional
 
-from ..html import embed_image, esc, num, table_html
-from ..markdown import md_escape, md_table
+from ..fmt import DASH, ci, count, num, pct
 from ..safety import suppress_count
+from ..templating import Col, Table, figures_of, section_html, section_md
 
+ID = "maps"
+TITLE = "Do the sites mix? Maps and mixing scores"
 SPACE_NAMES = {"features": "feature space", "pca": "PCA", "tsne": "t-SNE", "umap": "UMAP"}
 
 
-def _num(v, d=2):
-    return num(v, d)
-
-
-def _ci(pair, d=2):
-    if not pair or pair[0] is None:
-        return "–"
-    return f"{pair[0]:.{d}f} to {pair[1]:.{d}f}"
-
-
-def _overall_rows(emb: Dict[str, Any]) -> List[List[Any]]:
+def _overall(emb: Dict[str, Any], min_cell: int) -> Table:
     rows = []
     sil = emb.get("silhouette") or {}
     for space, m in (emb.get("mixing") or {}).items():
         o = m.get("overall") or {}
         s = sil.get(space) or {}
-        rows.append([SPACE_NAMES.get(space, space), _num(o.get("lisi_mean")), _ci(o.get("lisi_ci")),
-                     _num(o.get("expected_random")), _num(o.get("normalised")), _ci(o.get("normalised_ci")),
-                     _num(s.get("value")), _ci(s.get("ci")), o.get("n")])
-    return rows
+        rows.append([SPACE_NAMES.get(space, space), num(o.get("lisi_mean"), 2), ci(o.get("lisi_ci"), 2),
+                     num(o.get("expected_random"), 2), num(o.get("normalised"), 2), ci(o.get("normalised_ci"), 2),
+                     num(s.get("value"), 2), ci(s.get("ci"), 2), count(suppress_count(o.get("n"), min_cell))])
+    return Table([Col("space"), Col("LISI", "mean over rows", True), Col("95% CI", "bootstrap over rows", True),
+                  Col("if random", "LISI expected", True), Col("normalised", "LISI ÷ expected", True),
+                  Col("95% CI", "bootstrap over rows", True), Col("silhouette", "by site", True),
+                  Col("95% CI", "bootstrap", True), Col("rows", numeric=True)], rows)
 
 
-_OVERALL_HEAD = ["space", "LISI (mean)", "95% CI", "expected if random", "normalised", "95% CI",
-                 "silhouette by site", "95% CI", "rows"]
-
-
-def _site_rows(emb: Dict[str, Any], min_cell: int) -> List[List[Any]]:
+def _by_site(emb: Dict[str, Any], min_cell: int) -> Table:
     mixing = emb.get("mixing") or {}
     spaces = list(mixing)
     sites: List[str] = []
@@ -49,61 +40,53 @@ def _site_rows(emb: Dict[str, Any], min_cell: int) -> List[List[Any]]:
         entries = [(mixing[sp].get("per_site") or {}).get(s) for sp in spaces]
         first = next((e for e in entries if isinstance(e, dict)), None)
         n = first.get("n") if first else None
-        # withheld upstream (shareable document), suppressed count, or too few mapped rows
         small = first is None or not isinstance(n, int) or 0 < n < min_cell
-        row = [s, "withheld" if first is None else suppress_count(n, min_cell)]
+        row = [s, "withheld" if first is None else count(suppress_count(n, min_cell))]
         for e in entries:
             ok = isinstance(e, dict) and not small
-            row.append(f"{_num(e.get('normalised'))} ({_ci(e.get('lisi_ci'))})" if ok else "withheld")
+            row.append(f"{num(e.get('normalised'), 2)} ({ci(e.get('lisi_ci'), 2)})" if ok else "withheld")
         rows.append(row)
-    return rows
+    cols = [Col("site"), Col("mapped rows", numeric=True)] + [
+        Col(SPACE_NAMES.get(sp, sp), "normalised LISI (mean LISI 95% CI)", True) for sp in spaces]
+    return Table(cols, rows)
 
 
-def _site_head(emb) -> List[str]:
-    return ["site", "mapped rows"] + [f"{SPACE_NAMES.get(sp, sp)}: normalised LISI (mean LISI 95% CI)"
-                                      for sp in (emb.get("mixing") or {})]
-
-
-def _intro(emb: Dict[str, Any]) -> str:
+def model(doc: Dict[str, Any], min_cell: int) -> Optional[Dict[str, Any]]:
+    emb = doc.get("embedding")
+    if not emb:
+        return None
     mm = emb.get("mixing_method") or {}
-    return (f"{emb.get('n_used')} rows mapped (site-stratified subsample of {emb.get('n_available')}, cap "
-            f"{emb.get('cap')}). Mixing score: the local inverse Simpson's index (LISI, Korsunsky et al. 2019) of the "
-            f"site labels over each row's {mm.get('k')} nearest neighbours with a Gaussian kernel of perplexity "
-            f"{_num(mm.get('perplexity'), 0)}: the effective number of sites around a row, from 1 (only its own site) "
-            f"to {_num(mm.get('expected_random'))} (what random mixing gives with these site proportions). "
-            "Normalised = mean LISI / that expected value, so 1 means the sites mix as if at random. Intervals: "
-            "bootstrap over rows (neighbouring rows are not independent, so they are narrower than a new sample "
-            "would give). Silhouette by site: near 0 or below, the sites overlap; towards 1, they form separate "
-            "clusters. t-SNE and UMAP axes have no units and their distances are not metric; compare scores, not "
-            "the look of clusters.")
+    evr = ((emb.get("method_settings") or {}).get("pca") or {}).get("explained_variance_ratio") or []
+    return {"id": ID, "title": TITLE, "n_used": count(suppress_count(emb.get("n_used"), min_cell)),
+            "n_available": count(suppress_count(emb.get("n_available"), min_cell)), "cap": count(emb.get("cap")),
+            "k": mm.get("k"), "perplexity": num(mm.get("perplexity"), 0),
+            "expected": num(mm.get("expected_random"), 2),
+            "pca_variance": ", ".join(pct(v, 1) for v in evr[:2]) if evr else "",
+            "overall": _overall(emb, min_cell), "by_site": _by_site(emb, min_cell),
+            "preprocessing": emb.get("preprocessing") or DASH, "figures": [_captioned(f) for f in figures_of(doc, "embedding")]}
+
+
+def _captioned(fig):
+    """A map figure with its caption in words (the file name says which colouring)."""
+    import dataclasses
+    import re
+
+    m = re.search(r"embedding_(.+?)(?:_density)?\.png", fig.png) if not fig.caption else None
+    what = m.group(1) if m else ""
+    if not what:
+        return fig
+    colour = "site" if what == "site" else ("the outcome" if what == "outcome" else "a group column")
+    return dataclasses.replace(fig, id=f"fig-maps-{what.replace('_', '-')}",
+                               caption=f"2-D maps of the same rows (PCA, t-SNE, UMAP), coloured by {colour}. "
+                                       "PCA axes show the share of variance they explain; t-SNE and UMAP axes have "
+                                       "no units.")
 
 
 def html(doc: Dict[str, Any], min_cell: int) -> str:
-    emb = doc.get("embedding")
-    if not emb:
-        return ""
-    parts = ["<h2>Do the sites mix? Maps and mixing scores</h2>", f"<p>{esc(_intro(emb))}</p>",
-             table_html(_OVERALL_HEAD, _overall_rows(emb), numeric=(1, 3, 4, 6, 8)),
-             "<h3>By site</h3>",
-             table_html(_site_head(emb), _site_rows(emb, min_cell), numeric=(1,))]
-    parts.append(f"<p class='muted'>Preprocessing: {esc(emb.get('preprocessing'))}.</p>")
-    out_dir = doc.get("_out_dir")
-    for rel in emb.get("figures") or []:
-        if str(rel).endswith(".png"):
-            img = embed_image(out_dir, rel, alt=f"2-D map {rel}")
-            if img:
-                parts.append(f"<figure>{img}<figcaption class='muted'>{esc(rel)} (SVG alongside)</figcaption></figure>")
-    return "".join(parts)
+    """The section as HTML ("" when absent), from :func:`model` and its template."""
+    return section_html("maps", model(doc, min_cell))
 
 
 def markdown(doc: Dict[str, Any], min_cell: int) -> str:
-    emb = doc.get("embedding")
-    if not emb:
-        return ""
-    parts = ["## Do the sites mix? Maps and mixing scores", "", md_escape(_intro(emb)), "",
-             md_table(_OVERALL_HEAD, _overall_rows(emb)), "", "By site:", "",
-             md_table(_site_head(emb), _site_rows(emb, min_cell)), ""]
-    figs = [f for f in emb.get("figures") or [] if str(f).endswith(".png")]
-    if figs:
-        parts += ["Figures: " + ", ".join(f"`{f}`" for f in figs), ""]
-    return "\n".join(parts).rstrip() + "\n"
+    """The section as Markdown ("" when absent), from :func:`model` and its template."""
+    return section_md("maps", model(doc, min_cell))

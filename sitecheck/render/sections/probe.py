@@ -1,18 +1,20 @@
 """Report sections ``probe`` and ``groups``: can the site (or a group) be predicted from the features?
 
-The verdict comes first, in plain words, with the AUC and its interval; then
-the per-site table, the linear second opinion, the case-mix increment, the
-probe within outcome classes and the group probes. Data text is escaped;
-counts go through :func:`~sitecheck.render.safety.suppress_count`; per-site
-statistics of sites with fewer rows than ``min_cell`` are withheld.
+:func:`model` turns the document into one display model, which feeds both
+``templates/sections/probe.html.j2`` and ``probe.md.j2``. Counts go through
+:func:`~sitecheck.render.safety.suppress_count`; per-site statistics of sites
+with fewer rows than ``min_cell`` are withheld.
 """
 from __future__ import annotations
 
-from typing import Any, Dict, List
+from typing import Any, Dict, List, Optional
 
-from ..html import ci, esc, table_html, num, pval
-from ..markdown import md_escape, md_table
+from ..fmt import DASH, ci, count, num, p_is, pval
 from ..safety import suppress_count
+from ..templating import Col, Table, figures_of, section_html, section_md
+
+ID = "probe"
+TITLE = "Can the site be predicted from the features?"
 
 _WORDS = {
     "strong": "The site can be predicted from the features with high accuracy.",
@@ -22,12 +24,6 @@ _WORDS = {
 }
 
 
-_num = num  # shared formatter (render/html.py)
-
-
-_p = pval  # shared formatter (render/html.py)
-
-
 def _small(n, min_cell) -> bool:
     try:
         return 0 < int(n) < min_cell
@@ -35,145 +31,115 @@ def _small(n, min_cell) -> bool:
         return True
 
 
-def _per_site_rows(probe: Dict[str, Any], min_cell: int) -> List[List[Any]]:
+def _per_site(probe: Dict[str, Any], min_cell: int) -> Table:
     rows = []
     for label, e in (probe.get("per_site") or {}).items():
         if not isinstance(e, dict) or _small(e.get("n"), min_cell):
             n = e.get("n") if isinstance(e, dict) else None
-            rows.append([label, suppress_count(n, min_cell) if n is not None else "withheld", "withheld", "withheld"])
+            rows.append([label, count(suppress_count(n, min_cell)) if n is not None else "withheld",
+                         "withheld", "withheld"])
             continue
-        rows.append([label, suppress_count(e.get("n"), min_cell), _num(e.get("auc")), ci(e.get("auc_ci"))])
-    return rows
+        rows.append([label, count(suppress_count(e.get("n"), min_cell)), num(e.get("auc")), ci(e.get("auc_ci"))])
+    return Table([Col("site"), Col("rows", numeric=True), Col("AUC", "this site against the rest", True),
+                  Col("95% CI", "bootstrap", True)], rows)
 
 
-def _case_mix_rows(cm: Dict[str, Any]) -> List[List[Any]]:
+def _case_mix(cm: Dict[str, Any]) -> Dict[str, Any]:
     rows = []
     for key, name in (("covariates_only", "covariates alone"), ("with_features", "features + covariates")):
         e = cm.get(key) or {}
-        rows.append([name, _num(e.get("auc")), ci(e.get("auc_ci")), _p(e.get("p_value"))])
+        rows.append([name, num(e.get("auc")), ci(e.get("auc_ci")), pval(e.get("p_value"), e.get("p_value_floor"))])
     inc = cm.get("increment") or {}
-    rows.append(["increment the features add", _num(inc.get("auc")), ci(inc.get("auc_ci")), "–"])
-    return rows
+    rows.append(["what the features add", num(inc.get("auc")), ci(inc.get("auc_ci")), DASH])
+    lo, hi = (inc.get("auc_ci") or [None, None])[:2]
+    sentence = ""
+    if lo is not None and lo > 0:
+        sentence = ("The features tell the sites apart beyond what the covariates (case mix) explain: "
+                    "the difference looks like measurement or recording, not only patients.")
+    elif lo is not None and hi is not None and hi >= 0 >= lo:
+        sentence = ("The features add no clear site signal beyond the covariates: the differences may be "
+                    "explained by case mix.")
+    return {"covariates": ", ".join(cm.get("covariates") or []), "sentence": sentence,
+            "table": Table([Col("probe"), Col("AUC", "macro one-vs-rest", True), Col("95% CI", "bootstrap", True),
+                            Col("p", "label permutation", True)], rows, sortable=False)}
 
 
-def _case_mix_sentence(cm: Dict[str, Any]) -> str:
-    inc = cm.get("increment") or {}
-    lo = (inc.get("auc_ci") or [None, None])[0]
-    hi = (inc.get("auc_ci") or [None, None])[1]
-    if lo is None:
-        return ""
-    if lo > 0:
-        return ("The features tell the sites apart beyond what the covariates (case mix) explain: "
-                "the difference looks like measurement or recording, not only patients.")
-    if hi is not None and hi >= 0 >= lo:
-        return ("The features add no clear site signal beyond the covariates: the differences may be "
-                "explained by case mix.")
-    return ""
-
-
-def _within_rows(wo: Dict[str, Any], min_cell: int) -> List[List[Any]]:
+def _within(wo: Dict[str, Any], min_cell: int) -> Table:
     rows = []
     for key, e in wo.items():
         if e.get("auc") is None:
-            rows.append([key, suppress_count(e.get("n"), min_cell), "–", "–", "–", e.get("skipped", "")])
+            rows.append([key, count(suppress_count(e.get("n"), min_cell)), DASH, DASH, DASH, e.get("skipped", "")])
         else:
-            rows.append([key, suppress_count(e.get("n"), min_cell), _num(e.get("auc")), ci(e.get("auc_ci")),
-                         _p(e.get("p_value")), e.get("verdict", "")])
-    return rows
+            rows.append([key, count(suppress_count(e.get("n"), min_cell)), num(e.get("auc")), ci(e.get("auc_ci")),
+                         pval(e.get("p_value"), e.get("p_value_floor")), e.get("verdict", "")])
+    return Table([Col("outcome class"), Col("rows", numeric=True), Col("AUC", "site probe in this class", True),
+                  Col("95% CI", "bootstrap", True), Col("p", "label permutation", True), Col("verdict")], rows)
 
 
-def _group_rows(groups: Dict[str, Any], min_cell: int) -> List[List[Any]]:
+def _groups(groups: Dict[str, Any], min_cell: int) -> Table:
     rows = []
     for col, e in groups.items():
         if e.get("auc") is None:
-            rows.append([col, "–", "–", "–", "–", e.get("skipped", "skipped")])
+            rows.append([col, DASH, DASH, DASH, DASH, e.get("skipped", "skipped")])
             continue
-        rows.append([col, suppress_count(e.get("n"), min_cell), _num(e.get("auc")), ci(e.get("auc_ci")),
-                     _p(e.get("p_value")), e.get("verdict", "")])
-    return rows
+        rows.append([col, count(suppress_count(e.get("n"), min_cell)), num(e.get("auc")), ci(e.get("auc_ci")),
+                     pval(e.get("p_value"), e.get("p_value_floor")), e.get("verdict", "")])
+    return Table([Col("group column"), Col("rows", numeric=True), Col("AUC", "macro one-vs-rest", True),
+                  Col("95% CI", "bootstrap", True), Col("p", "label permutation", True), Col("verdict")], rows)
 
 
-def _headline(probe: Dict[str, Any]) -> str:
-    v = probe.get("verdict", "none")
-    return probe.get("verdict_text") or _WORDS.get(v, "")
+def model(doc: Dict[str, Any], min_cell: int) -> Optional[Dict[str, Any]]:
+    probe = doc.get("probe")
+    groups = doc.get("groups")
+    if not probe and not groups:
+        return None
+    m: Dict[str, Any] = {"id": ID, "title": TITLE, "probe": None, "groups": None, "group_id": "groups",
+                         "figures": figures_of(doc, "probe")}
+    if probe:
+        n_used = count(suppress_count(probe.get("n_used"), min_cell))
+        sub = (f" (a site-stratified subsample of {count(suppress_count(probe.get('n_total'), min_cell))})"
+               if probe.get("subsampled") else "")
+        lin = probe.get("linear") or {}
+        cm = probe.get("case_mix")
+        wo = probe.get("within_outcome")
+        m["probe"] = {
+            "verdict": probe.get("verdict") or "none",
+            "headline": probe.get("verdict_text") or _WORDS.get(probe.get("verdict", "none"), ""),
+            "auc": num(probe.get("auc")), "auc_ci": ci(probe.get("auc_ci")),
+            "p": p_is(probe.get("p_value"), probe.get("p_value_floor")),
+            "at_floor": pval(probe.get("p_value"), probe.get("p_value_floor")).startswith("≤"),
+            "n_permutations": probe.get("n_permutations"),
+            "balanced_accuracy": num(probe.get("balanced_accuracy")),
+            "rows": n_used, "subsample": sub, "folds": probe.get("folds"),
+            "linear": ({"auc": num(lin.get("auc")), "auc_ci": ci(lin.get("auc_ci"))} if lin else None),
+            "caution": probe.get("caution", ""),
+            "per_site": _per_site(probe, min_cell),
+            "case_mix": _case_mix(cm) if cm else None,
+            "within": _within(wo, min_cell) if wo else None,
+            "interval_method": probe.get("interval_method", ""), "n_boot": probe.get("n_boot"),
+            "p_method": probe.get("p_value_method", ""),
+        }
+    if groups:
+        m["groups"] = _groups(groups, min_cell)
+    return m
+
+
+def headline(doc: Dict[str, Any]) -> Optional[Dict[str, str]]:
+    """The verdict line for the top of the page and of findings.md."""
+    probe = doc.get("probe")
+    if not probe or probe.get("auc") is None:
+        return None
+    return {"verdict": probe.get("verdict") or "none",
+            "text": probe.get("verdict_text") or _WORDS.get(probe.get("verdict", "none"), ""),
+            "auc": num(probe.get("auc")), "auc_ci": ci(probe.get("auc_ci")),
+            "p": p_is(probe.get("p_value"), probe.get("p_value_floor"))}
 
 
 def html(doc: Dict[str, Any], min_cell: int) -> str:
-    parts: List[str] = []
-    probe = doc.get("probe")
-    if probe:
-        parts.append("<h2>Can the site be predicted from the features?</h2>")
-        parts.append(f"<p class='verdict'>Verdict: {esc(probe.get('verdict'))}. {esc(_headline(probe))}</p>")
-        parts.append(
-            f"<p>Out-of-fold macro one-vs-rest ROC AUC {esc(_num(probe.get('auc')))} "
-            f"(95% CI {esc(ci(probe.get('auc_ci')))}), permutation p {esc(_p(probe.get('p_value')))}, "
-            f"balanced accuracy {esc(_num(probe.get('balanced_accuracy')))}; "
-            f"{esc(suppress_count(probe.get('n_used'), min_cell))} rows"
-            + (f" (a site-stratified subsample of {esc(suppress_count(probe.get('n_total'), min_cell))})"
-               if probe.get("subsampled") else "")
-            + f", {esc(probe.get('folds'))} folds, model {esc(probe.get('model'))}. "
-            "0.5 means the sites cannot be told apart; 1 means they separate perfectly.</p>")
-        lin = probe.get("linear")
-        if lin:
-            parts.append(f"<p>Second opinion (logistic regression): AUC {esc(_num(lin.get('auc')))} "
-                         f"(95% CI {esc(ci(lin.get('auc_ci')))}).</p>")
-        parts.append(f"<p class='note'>{esc(probe.get('caution', ''))}</p>")
-        rows = _per_site_rows(probe, min_cell)
-        if rows:
-            parts.append("<h3>Each site against the rest</h3>")
-            parts.append(table_html(["site", "rows", "AUC", "95% CI"], rows, numeric=(1, 2)))
-        cm = probe.get("case_mix")
-        if cm:
-            parts.append("<h3>Beyond case mix</h3>")
-            parts.append(f"<p>Covariates: {esc(', '.join(cm.get('covariates', [])))}. {esc(_case_mix_sentence(cm))}</p>")
-            parts.append(table_html(["probe", "AUC", "95% CI", "p"], _case_mix_rows(cm), numeric=(1,)))
-        wo = probe.get("within_outcome")
-        if wo:
-            parts.append("<h3>Within each outcome class</h3>")
-            parts.append(table_html(["outcome class", "rows", "AUC", "95% CI", "p", "verdict"],
-                                    _within_rows(wo, min_cell), numeric=(1, 2)))
-        parts.append(f"<p class='muted'>Interval: {esc(probe.get('interval_method', ''))} "
-                     f"({esc(probe.get('n_boot'))} resamples). p-value: {esc(probe.get('p_value_method', ''))}. "
-                     "Verdict thresholds on the interval's low end are sitecheck's own convention: strong &ge; 0.80, "
-                     "moderate &ge; 0.65, weak &gt; 0.50.</p>")
-    groups = doc.get("groups")
-    if groups:
-        parts.append("<h2>Can a group be predicted from the features?</h2>")
-        parts.append("<p>The same probe, predicting each group column instead of the site.</p>")
-        parts.append(table_html(["group column", "rows", "AUC", "95% CI", "p", "verdict"],
-                                _group_rows(groups, min_cell), numeric=(1, 2)))
-    return "".join(parts)
+    """The section as HTML ("" when absent), from :func:`model` and its template."""
+    return section_html("probe", model(doc, min_cell))
 
 
 def markdown(doc: Dict[str, Any], min_cell: int) -> str:
-    parts: List[str] = []
-    probe = doc.get("probe")
-    if probe:
-        parts += ["## Can the site be predicted from the features?", "",
-                  f"**Verdict: {md_escape(probe.get('verdict'))}.** {md_escape(_headline(probe))}", "",
-                  f"Out-of-fold macro one-vs-rest ROC AUC {_num(probe.get('auc'))} "
-                  f"(95% CI {ci(probe.get('auc_ci'))}), permutation p {_p(probe.get('p_value'))}, "
-                  f"balanced accuracy {_num(probe.get('balanced_accuracy'))}; "
-                  f"{md_escape(suppress_count(probe.get('n_used'), min_cell))} rows, {md_escape(probe.get('folds'))} folds, "
-                  f"model {md_escape(probe.get('model'))}.", ""]
-        lin = probe.get("linear")
-        if lin:
-            parts += [f"Second opinion (logistic regression): AUC {_num(lin.get('auc'))} "
-                      f"(95% CI {ci(lin.get('auc_ci'))}).", ""]
-        parts += [f"*{md_escape(probe.get('caution', ''))}*", ""]
-        rows = _per_site_rows(probe, min_cell)
-        if rows:
-            parts += [md_table(["site", "rows", "AUC", "95% CI"], rows), ""]
-        cm = probe.get("case_mix")
-        if cm:
-            parts += ["### Beyond case mix", "", md_escape(_case_mix_sentence(cm)), "",
-                      md_table(["probe", "AUC", "95% CI", "p"], _case_mix_rows(cm)), ""]
-        wo = probe.get("within_outcome")
-        if wo:
-            parts += ["### Within each outcome class", "",
-                      md_table(["outcome class", "rows", "AUC", "95% CI", "p", "verdict"], _within_rows(wo, min_cell)), ""]
-    groups = doc.get("groups")
-    if groups:
-        parts += ["## Can a group be predicted from the features?", "",
-                  md_table(["group column", "rows", "AUC", "95% CI", "p", "verdict"], _group_rows(groups, min_cell)), ""]
-    return "\n".join(parts).rstrip("\n")
+    """The section as Markdown ("" when absent), from :func:`model` and its template."""
+    return section_md("probe", model(doc, min_cell))
