@@ -571,17 +571,20 @@ def test_command_writes_on_the_grid_inside_the_recorded_range(tmp_path):
 
 
 def test_command_refuses_findings_unless_forced(tmp_path, demo_small_path, demo_truth):
-    truth = {e["kind"]: (e["feature"], e["site"]) for e in demo_truth["effects"]}
+    from sitecheck.harmonise.methods import BLOCKING_KINDS
+
+    # Ground truth (demo_truth.json): the injected effects of a blocking kind.
+    blocking = [(e["feature"], e["kind"], e["site"]) for e in demo_truth["effects"] if e["kind"] in BLOCKING_KINDS]
+    assert {"unit_ratio", "missing_code"} <= {k for _, k, _ in blocking}
     res = _cli(["harmonise", demo_small_path, "--site", "hospital", "--method", "combat",
                 "--out", str(tmp_path / "h.csv")])
     _one_line_error(res, "--despite-findings")
-    for kind in ("unit_ratio", "missing_code"):
-        feature, site = truth[kind]
-        assert f"{feature} ({kind} at {site})" in res.output
     assert not (tmp_path / "h.csv").exists()
     res = _cli(["harmonise", demo_small_path, "--site", "hospital", "--method", "combat",
                 "--out", str(tmp_path / "h.csv"), "--despite-findings", "-q"])
-    assert res.exit_code == 0 and "harmonised despite 2 finding(s)" in res.output
+    assert res.exit_code == 0 and f"harmonised despite {len(blocking)} finding(s)" in res.output
+    for feature, kind, site in blocking:
+        assert f"{feature} ({kind} at {site})" in res.output
     assert (tmp_path / "h.csv").exists()
 
 
