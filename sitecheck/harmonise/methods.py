@@ -1874,6 +1874,8 @@ def site_reprobe_cv(X: np.ndarray, site: np.ndarray, cat: np.ndarray, folds, *, 
     """
     from threadpoolctl import threadpool_limits
 
+    from sitecheck._runtime import derived_seed
+    from sitecheck.analyses.models import fit_classifier
     from sitecheck.analyses.probe import CrossFit, _estimator, _threads, score_crossfit
 
     site = np.asarray(site).astype(np.int64)
@@ -1890,8 +1892,8 @@ def site_reprobe_cv(X: np.ndarray, site: np.ndarray, cat: np.ndarray, folds, *, 
                                  unchanged_reason=reasons, log_skewed=True, random_state=stream + [1])
             Xtr = apply_harmoniser(fit, X[tr], site[tr], design=D[tr], clip=True, random_state=stream + [2])
             Xte = apply_harmoniser(fit, X[te], site[te], design=D[te], clip=True, random_state=stream + [3])
-            est = _estimator(model, cat, k, len(tr), random_state=seed + 1000 * f)
-            est.fit(Xtr, site[tr])
+            est = _estimator(model, cat, k, len(tr), random_state=derived_seed(seed, "probe.fold_model", f))
+            fit_classifier(est, Xtr, site[tr])
             block = np.zeros((len(te), k))
             block[:, np.asarray(est.classes_, dtype=np.int64)] = est.predict_proba(Xte)
             proba[te] = block

@@ -85,9 +85,10 @@ def blocking_findings(raw, site: str, features: Sequence[str], *, identifiers: S
     return [f for f in res.findings if f.kind in BLOCKING_KINDS and f.feature in wanted]
 
 
-def _blocking_line(found: list) -> str:
-    parts = [f"{f.feature} ({f.kind} at {f.site})" for f in found[:4]]
-    more = f" and {len(found) - 4} more" if len(found) > 4 else ""
+def _blocking_line(found: list, limit: Optional[int] = 4) -> str:
+    shown = found if limit is None else found[:limit]
+    parts = [f"{f.feature} ({f.kind} at {f.site})" for f in shown]
+    more = f" and {len(found) - len(shown)} more" if len(found) > len(shown) else ""
     return ", ".join(parts) + more
 
 
@@ -100,7 +101,7 @@ def _check_findings(raw, site, features, identifiers, excluded, outcome, despite
         raise InputError(f"not harmonised: {_blocking_line(found)} would be spread over every value of the site; "
                          "repair them first (see `sitecheck scan`) or pass --despite-findings")
     warnings.append(f"harmonised despite {len(found)} finding(s) that harmonisation cannot repair: "
-                    f"{_blocking_line(found)}")
+                    f"{_blocking_line(found, None)}")
 
 
 
