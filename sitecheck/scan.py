@@ -491,7 +491,9 @@ def _repair_stage(table: Table, prep: Prepared, options: ScanOptions, say: Progr
         "n_safe": len(plan.safe()),
         "values_for_maps_harmonisation_outcome": "after repair" if (options.repair and repaired is not None)
         else "as given",
-        "entries": [{"id": e.id, "kind": e.kind, "column": e.column, "site": e.site, "operation": e.operation,
+        "entries": [{"id": e.id, "kind": e.kind, "finding": {"kind": e.kind, "feature": e.finding_feature,
+                                                            "site": e.site},
+                     "column": e.column, "site": e.site, "operation": e.operation,
                      "cells": e.cells, "rows": e.rows, "safe": e.safe, "enabled": e.enabled, "reason": e.reason}
                     for e in plan.entries],
         "applied_in_scan": applied_doc, "log": log.to_dict(), "not_repaired": list(plan.not_repaired),

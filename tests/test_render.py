@@ -131,6 +131,59 @@ def test_checklist_opens_the_page_mechanical_first(demo_report, demo_truth):
     assert len(md_lines) == len(lines)
 
 
+def _checklist_plan_links(tree):
+    """(the line's own link, its column, its site, the plan links) of each checklist line."""
+    out = []
+    for li in tree.findall(".//ol[@class='todo-list']/li"):
+        own = li.find("a")
+        column = own.find("strong").text
+        site = "".join(own.itertext())[len(column):].replace(" at ", "", 1).strip()
+        plan = [a.get("href") for a in li.findall("span[@class='plan']/a")]
+        out.append((own.get("href"), column, site, plan))
+    return out
+
+
+def test_checklist_lines_link_to_their_repair_plan_entries(demo_report):
+    out, html, md, doc = demo_report
+    plan = json.loads((out / "repair_plan.json").read_text(encoding="utf-8"))
+    entries = {e["id"]: e for e in plan["entries"]}
+    assert len(entries) >= 4  # the demo's unit, code, censoring, number-format and never-measured entries
+    tree = _parse(html)
+    # every plan entry has an anchored row in the page's repair-plan table, showing its id, site and column
+    rows = {tr.get("id"): ["".join(td.itertext()) for td in tr.findall("td")]
+            for tr in tree.findall(".//section[@id='repair']//tr") if tr.get("id")}
+    for eid, e in entries.items():
+        cells = rows["plan-" + eid]
+        assert cells[:3] == [eid, e["site"] or "all sites", e["column"]]
+        assert cells[7:9] == ["yes" if e["safe"] else "no", "yes" if e["enabled"] else "no"]
+    ids = {el.get("id") for el in tree.iter() if el.get("id")}
+    lines = _checklist_plan_links(tree)
+    by_href = {href: (col, site, links) for href, col, site, links in lines}
+    linked = 0
+    for href, col, site, links in lines:
+        assert href[1:] in ids  # the line's own section anchor
+        for link in links:
+            assert link[1:] in ids and link.startswith("#plan-")
+            e = entries[link[len("#plan-"):]]
+            # the entry fixes this line's finding: same site and column (as repair_plan.json records them)
+            assert (e["finding"]["feature"], e["site"]) == (col, site), (link, col, site)
+            linked += 1
+    # and every recording finding that has a plan entry is on a line that points at it
+    from sitecheck.render.sections.fingerprints import finding_id
+
+    for f in doc["fingerprints"]:
+        hits = [eid for eid, e in entries.items()
+                if (e["finding"]["kind"], e["finding"]["feature"], e["site"]) == (f["kind"], f["feature"], f["site"])]
+        if hits and "#" + finding_id(f) in by_href:
+            assert by_href["#" + finding_id(f)][2] == ["#plan-" + h for h in hits]
+    assert linked == len(entries)  # on the demo each entry's finding has its own checklist line
+    # findings.md names the entry id on the same line
+    md_lines = [ln for ln in md.split("## What to do next")[1].split("##")[0].splitlines() if re.match(r"\d+\. ", ln)]
+    for eid, e in entries.items():
+        (ln,) = [ln for ln in md_lines if f"(repair plan {eid})" in ln]
+        assert f"{e['finding']['feature']} at {e['site']}" in ln
+
+
 def test_at_a_glance_lists_only_features_whose_drop_excludes_zero(demo_report):
     _, html, _, doc = demo_report
     tree = _parse(html)

@@ -108,11 +108,18 @@ class RepairEntry:
     safe: bool
     enabled: bool
     reason: str
+    #: the finding's feature where it differs from ``column`` (a unit column whose values column is converted)
+    feature: Optional[str] = None
+
+    @property
+    def finding_feature(self) -> str:
+        return self.feature if self.feature is not None else self.column
 
     def to_dict(self) -> dict:
         from sitecheck.report.result import to_jsonable
 
-        return to_jsonable({"id": self.id, "finding": {"kind": self.kind, "feature": self.column, "site": self.site},
+        return to_jsonable({"id": self.id, "finding": {"kind": self.kind, "feature": self.finding_feature,
+                                                       "site": self.site},
                             "column": self.column, "site": self.site, "operation": self.operation,
                             "params": self.params, "evidence": self.evidence, "rows": int(self.rows),
                             "cells": int(self.cells), "safe": bool(self.safe), "enabled": bool(self.enabled),
@@ -255,7 +262,7 @@ def plan_repairs(table, fingerprints, *, censor_policy: Optional[str] = None) ->
         entries.append(RepairEntry(id="", kind=f.kind, column=column or f.feature, site=f.site, operation=operation,
                                    params=params, evidence=dict(evidence if evidence is not None else f.evidence),
                                    rows=int(at.sum()), cells=int(cells), safe=bool(safe), enabled=bool(safe),
-                                   reason=reason))
+                                   reason=reason, feature=f.feature if (column or f.feature) != f.feature else None))
 
     for f in fingerprints.findings:
         col = f.feature
@@ -644,7 +651,9 @@ def plan_from_dict(doc: Any) -> RepairPlan:
         entries.append(RepairEntry(id=str(d["id"]), kind=d["finding"]["kind"], column=d["column"], site=d.get("site"),
                                    operation=d["operation"], params=dict(d["params"]), evidence=dict(d["evidence"]),
                                    rows=int(d["rows"]), cells=int(d["cells"]), safe=bool(d["safe"]),
-                                   enabled=bool(d["enabled"]), reason=str(d.get("reason", ""))))
+                                   enabled=bool(d["enabled"]), reason=str(d.get("reason", "")),
+                                   feature=d["finding"].get("feature") if d["finding"].get("feature") != d["column"]
+                                   else None))
     return RepairPlan(entries=tuple(entries), site_column=str(doc["site_column"]), input=dict(doc.get("input", {})),
                       not_repaired=tuple(doc.get("not_repaired", [])), version=ver)
 

@@ -16,6 +16,7 @@ from ..words import DISTRIBUTION, artefact, hygiene_word
 from . import fingerprints as fp_section
 from .leakage import reconciled, redundancy_sentence
 from .outcome import gap_sentence
+from .repair import entries_by_finding, plan_anchor
 
 MAX_LINES = 15
 MIN_MECHANICAL = 6
@@ -35,7 +36,8 @@ def _fp_line(f: Dict[str, Any], sites: Dict[str, Any], min_cell: int, rec) -> Di
             note = "near 0 in the leak ranking: " + redundancy_sentence(r)
     return {"severity": f.get("severity", ""), "site": f.get("site") or "", "column": f.get("feature"),
             "what": artefact(f.get("kind")), "evidence": evidence, "fix": f.get("suggested_fix", ""),
-            "note": note, "href": "#" + fp_section.finding_id(f)}
+            "note": note, "href": "#" + fp_section.finding_id(f),
+            "keys": [(f.get("kind"), f.get("feature"), f.get("site"))]}
 
 
 def _rolled(fps, sites, min_cell, rec) -> List[Dict[str, Any]]:
@@ -66,9 +68,30 @@ def _rolled(fps, sites, min_cell, rec) -> List[Dict[str, Any]]:
         first = _fp_line(group[0], sites, min_cell, rec)
         names = [g.get("feature") for g in group]
         first.update(column=f"{len(group)} features", what=artefact(group[0].get("kind")),
-                     evidence=", ".join(names[:6]) + (f" and {len(names) - 6} more" if len(names) > 6 else ""))
+                     evidence=", ".join(names[:6]) + (f" and {len(names) - 6} more" if len(names) > 6 else ""),
+                     keys=[(g.get("kind"), g.get("feature"), g.get("site")) for g in group])
         lines.append(first)
     return lines
+
+
+#: plan entries named on one checklist line at most (a rolled-up line can have several)
+MAX_PLAN_LINKS = 3
+
+
+def with_plan(line: Dict[str, Any], plan: Dict[tuple, List[Dict[str, Any]]]) -> Dict[str, Any]:
+    """The line with the repair-plan entries of its findings (``plan``: id and anchor of each),
+    matched on the finding's kind, feature and site as the plan records them."""
+    refs, seen = [], set()
+    for key in line.get("keys") or []:
+        for e in plan.get(tuple(key), []):
+            if e["id"] not in seen:
+                seen.add(e["id"])
+                refs.append({"id": e["id"], "href": "#" + plan_anchor(e["id"]), "site": e.get("site"),
+                             "column": e.get("column")})
+    out = dict(line)
+    out["plan"] = refs[:MAX_PLAN_LINKS]
+    out["plan_more"] = max(0, len(refs) - MAX_PLAN_LINKS)
+    return out
 
 
 def _hygiene_lines(doc: Dict[str, Any], fp_keys) -> List[Dict[str, Any]]:
@@ -139,10 +162,15 @@ def model(doc: Dict[str, Any], min_cell: int) -> Dict[str, Any]:
     lines = first[:room]
     more = len(first) - len(lines)
     lines += tail
+    plan = entries_by_finding(doc)
+    lines = [with_plan(x, plan) for x in lines]
     full_rows = [[Cell(x["severity"], cls="sev-" + x["severity"]), x["site"], Cell(x["column"], href=x["href"]),
-                  x["what"], x["evidence"], x["fix"]]
-                 for x in first + [_fp_line(f, sites, min_cell, rec) for f in fps if f.get("kind") in DISTRIBUTION]]
-    full = Table([Col("severity"), Col("site"), Col("column"), Col("what"), Col("evidence", wide=True), Col("fix", wide=True)], [],
+                  x["what"], x["evidence"], x["fix"],
+                  Cell(", ".join(r["id"] for r in x["plan"]), href=x["plan"][0]["href"]) if x["plan"] else ""]
+                 for x in [with_plan(y, plan) for y in first] + [_fp_line(f, sites, min_cell, rec) | {"plan": []}
+                                                               for f in fps if f.get("kind") in DISTRIBUTION]]
+    full = Table([Col("severity"), Col("site"), Col("column"), Col("what"), Col("evidence", wide=True),
+                  Col("fix", wide=True), Col("plan entry")], [],
                  folded=full_rows, folded_note=f"the full list ({len(full_rows)} items; also in fingerprints.csv)")
     return {"id": "next", "title": "What to do next", "lines": lines, "more": more, "full": full,
             "n_all": len(full_rows), "glance": glance(doc)}

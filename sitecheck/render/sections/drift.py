@@ -196,7 +196,8 @@ def next_lines(doc: Dict[str, Any]) -> List[Dict[str, Any]]:
                     "what": f"change over time from {c.get('period')}",
                     "evidence": c.get("detail", ""),
                     "fix": f"ask the site what changed about {c.get('period')}; harmonise or model the periods before "
-                           "and after apart, or leave one out", "note": "", "href": "#drift"})
+                           "and after apart, or leave one out", "note": "", "href": "#drift",
+                    "keys": [("drift_" + str(c.get("aspect")), c.get("feature"), c.get("site"))]})
     return out
 
 
