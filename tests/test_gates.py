@@ -1,6 +1,9 @@
 """Gates (sitecheck/gates.py), the configuration loader shared by the CLI and the Python API, the
 summary, and the error classes. The end-to-end gate runs (exit codes 0 and 1 on the demo) are in
 tests/test_report.py, where they share the scans of the determinism check."""
+import math
+from dataclasses import replace
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -165,6 +168,23 @@ def test_no_library_message_suggests_a_flag_that_does_not_exist():
         assert "--verbose" not in path.read_text(encoding="utf-8"), path
 
 
+def test_stdout_html_and_markdown_share_one_floor_rule():
+    # one rule decides "at the floor" for the summary on stdout and for the HTML and findings.md
+    from sitecheck.analyses.stats import at_permutation_floor, permutation_pvalue_floor
+    from sitecheck.render.fmt import p_is, pval
+    from sitecheck.report.result import p_text
+
+    floor = permutation_pvalue_floor(999)
+    assert floor == pytest.approx(math.e / 1000, rel=1e-12)  # Vovk & Wang (2020) merge of 1/(B+1) per fold
+    for v, at in ((floor, True), (floor * (1 + 1e-12), True), (floor * 1.001, False), (0.2, False),
+                  (floor / 2, True)):
+        assert at_permutation_floor(v, floor) is at
+        assert pval(v, floor).startswith("≤") is at and p_is(v, floor).startswith("p ≤") is at
+        assert p_text(v, floor, 999).startswith("p ≤") is at
+    assert p_text(floor * 1.001, floor, 999) == f"p = {floor * 1.001:.3g}"
+    assert p_text(0.01, None) == "p = 0.01" and p_text(None, floor) == "p not computed"
+
+
 def test_summary_lines(demo_table):
     from sitecheck.scan import scan_table
 
@@ -172,8 +192,17 @@ def test_summary_lines(demo_table):
     lines = res.summary().splitlines()
     p = res.to_dict()["probe"]
     assert lines[0].endswith(f"{res.input['rows_used']} rows, 4 sites") and res.input["rows_used"] == 1200
+    # The demo's site signal is strong: the probe's p-value sits at the floor of its test, e/(B+1) for B label
+    # permutations per fold merged by e x geometric mean (Phipson & Smyth 2010; Vovk & Wang 2020). The summary
+    # says it is a bound, as the HTML does, never "p = 0.00272".
+    assert p["p_value"] == pytest.approx(p["p_value_floor"]) == pytest.approx(math.e / (p["n_permutations"] + 1))
     assert lines[1] == (f"site probe: AUC {p['auc']:.3f} (95% CI {p['auc_ci'][0]:.3f} to {p['auc_ci'][1]:.3f}), "
-                        f"p = {p['p_value']:.3g}, n = {p['n_used']}, verdict: {p['verdict']}")
+                        f"p ≤ {p['p_value_floor']:.3g} (permutation floor: {p['n_permutations']} label permutations "
+                        f"per fold), n = {p['n_used']}, verdict: {p['verdict']}")
+    assert "p = " not in lines[1]
+    # off the floor the value is printed as computed
+    off = replace(res, sections={**res.sections, "probe": {**p, "p_value": 0.0132}})
+    assert "p = 0.0132, n = " in off.summary().splitlines()[1]
     assert lines[2:] == [f"warning: {w}" for w in res.warnings[:5]]
     assert res.summary(max_warnings=0).count("warning:") == 0
     with pytest.raises(ValueError):

@@ -226,6 +226,14 @@ def test_permutation_floor_is_shown_as_a_bound(demo_report):
     assert doc["probe"]["p_value"] == pytest.approx(doc["probe"]["p_value_floor"])  # the demo sits at the floor
     assert "p ≤ 0.0027" in html and "p ≤ 0.0027" in md
     assert "p = <" not in html and "p = <" not in md and "-0.000" not in html
+    # the equalized-odds permutation p-values carry their floor 1/(B+1) (Phipson & Smyth 2010) and, when
+    # they sit on it, read "≤ 0.001" in both outputs
+    het = doc["outcome"]["equalized_odds"]["heterogeneity"]
+    for rate in ("tpr", "fpr"):
+        h = het[rate]
+        assert h["p_value_floor"] == pytest.approx(1 / (h["permutations"] + 1))
+        if h["p_value"] <= h["p_value_floor"]:
+            assert "permutation p ≤ 0.001" in md and "p = 0.001" not in md
 
 
 def test_missing_code_empty_string_is_visible():

@@ -46,6 +46,7 @@ from scipy import optimize as _opt
 from scipy import stats as _st
 
 from sitecheck.errors import ParameterError
+from sitecheck.analyses.stats import plain_permutation_pvalue_floor
 
 Interval = Optional[Tuple[float, float]]
 
@@ -322,6 +323,8 @@ class RateHeterogeneity:
             "sd_rate": _f(self.sd_rate), "sd_rate_ci": _ci(self.sd_rate_ci),
             "variance": _f(self.variance), "spread": _f(self.spread),
             "permutations": self.n_permutations, "p_value": _f(self.p_value),
+            "p_value_floor": plain_permutation_pvalue_floor(self.n_permutations) if self.p_value is not None
+            else None,
             "variance_p_value": _f(self.variance_p_value), "spread_p_value": _f(self.spread_p_value),
             "exceeds_noise": self.exceeds_noise,
             "null": {"tau2": self.null_tau2.to_dict(), "i2": self.null_i2.to_dict(),

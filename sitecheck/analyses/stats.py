@@ -326,6 +326,32 @@ def permutation_pvalue_floor(n_permutations: int) -> float:
     return float(min(1.0, np.e / (int(n_permutations) + 1.0)))
 
 
+def plain_permutation_pvalue_floor(n_permutations: int) -> Optional[float]:
+    """The smallest value of the plain permutation p-value (1 + #{null >= observed}) / (1 + B):
+    1 / (B + 1) (Phipson & Smyth 2010); None without permutations."""
+    b = int(n_permutations)
+    return None if b <= 0 else 1.0 / (b + 1.0)
+
+
+def at_permutation_floor(p_value, floor) -> bool:
+    """Whether a permutation p-value sits at its floor (the smallest value its test can give).
+
+    The one rule every output uses (the summary on stdout, the HTML, findings.md): a p-value
+    at its floor is reported as "p ≤ floor", never as if exact. A relative tolerance of
+    1e-9 absorbs floating-point noise in the merged value.
+
+    >>> at_permutation_floor(permutation_pvalue_floor(999), permutation_pvalue_floor(999))
+    True
+    >>> at_permutation_floor(0.01, permutation_pvalue_floor(999)), at_permutation_floor(0.01, None)
+    (False, False)
+    """
+    num = (int, float, np.integer, np.floating)
+    if isinstance(p_value, bool) or isinstance(floor, bool) or not isinstance(p_value, num) \
+            or not isinstance(floor, num):
+        return False
+    return bool(p_value <= floor * (1 + 1e-9))
+
+
 def _macro_from_rank_sums(S: np.ndarray, counts: np.ndarray, n: int, cols: List[int]) -> np.ndarray:
     n1 = counts[cols].astype(float)
     return ((S[..., cols] - n1 * (n1 + 1) / 2.0) / (n1 * (n - n1))).mean(axis=-1)

@@ -6,6 +6,8 @@ from __future__ import annotations
 
 from typing import Any, Optional
 
+from sitecheck.analyses.stats import at_permutation_floor  # the one rule for "at the floor"
+
 DASH = "–"
 
 
@@ -54,7 +56,7 @@ def pval(value: Any, floor: Optional[float] = None) -> str:
         return DASH
     if not _is_num(value):
         return str(value)
-    if floor is not None and _is_num(floor) and value <= floor * (1 + 1e-9):
+    if at_permutation_floor(value, floor):
         return f"≤ {floor:.2g}"
     if value < 0.001:
         return "< 0.001"

@@ -31,6 +31,20 @@ def to_jsonable(obj: Any) -> Any:
     return obj
 
 
+def p_text(p_value: Any, floor: Any = None, n_permutations: Any = None) -> str:
+    """A p-value for the terminal: "p = 0.0132", or at the permutation floor (the smallest value
+    the test can give; the same rule as the report, :func:`sitecheck.analyses.stats.at_permutation_floor`)
+    "p ≤ 0.00272 (permutation floor: 999 label permutations per fold)"."""
+    from sitecheck.analyses.stats import at_permutation_floor
+
+    if p_value is None or isinstance(p_value, bool):
+        return "p not computed"
+    if at_permutation_floor(p_value, floor):
+        perms = f": {n_permutations} label permutations per fold" if isinstance(n_permutations, int) else ""
+        return f"p ≤ {floor:.3g} (permutation floor{perms})"
+    return f"p = {p_value:.3g}"
+
+
 @dataclass(frozen=True)
 class ScanResult:
     """Every section of a scan.
@@ -127,8 +141,8 @@ class ScanResult:
         if isinstance(probe, dict) and probe.get("auc") is not None:
             lo, hi = probe["auc_ci"]
             lines.append(f"site probe: AUC {probe['auc']:.3f} (95% CI {lo:.3f} to {hi:.3f}), "
-                         f"p = {probe['p_value']:.3g}, n = {probe.get('n_used', inp.get('rows_used'))}, "
-                         f"verdict: {probe['verdict']}")
+                         f"{p_text(probe.get('p_value'), probe.get('p_value_floor'), probe.get('n_permutations'))}"
+                         f", n = {probe.get('n_used', inp.get('rows_used'))}, verdict: {probe['verdict']}")
         drift = doc.get("drift")
         if isinstance(drift, dict):
             found = drift.get("findings") or []

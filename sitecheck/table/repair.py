@@ -746,6 +746,8 @@ class ResidualSignal:
     top: Tuple[Dict[str, Any], ...]
     verdict_repaired: Optional[str]
     statement: str
+    #: the smallest value the repaired probe's permutation test can give
+    p_value_repaired_floor: Optional[float] = None
 
     def to_dict(self) -> dict:
         from sitecheck.report.result import to_jsonable
@@ -754,7 +756,8 @@ class ResidualSignal:
             "auc_given": self.auc_given, "auc_given_ci": list(self.auc_given_ci),
             "auc_repaired": self.auc_repaired,
             "auc_repaired_ci": None if self.auc_repaired_ci is None else list(self.auc_repaired_ci),
-            "p_value_repaired": self.p_value_repaired, "difference": self.difference,
+            "p_value_repaired": self.p_value_repaired, "p_value_repaired_floor": self.p_value_repaired_floor,
+            "difference": self.difference,
             "difference_ci": None if self.difference_ci is None else list(self.difference_ci),
             "explained_share": self.explained_share, "n_used": self.n_used, "n_boot": self.n_boot,
             "verdict_repaired": self.verdict_repaired, "applied": list(self.applied), "top": list(self.top),
@@ -852,7 +855,8 @@ def residual_signal(prep_repaired, probe, leakage, applied: Sequence[Dict[str, A
         auc_repaired_ci=(float(lo), float(hi)), p_value_repaired=res.p_value, difference=diff,
         difference_ci=None if diff_ci is None else (float(diff_ci[0]), float(diff_ci[1])),
         explained_share=share, n_used=int(res.n_used), n_boot=int(n_boot), applied=tuple(applied), top=tuple(rows),
-        verdict_repaired=res.verdict, statement=statement)
+        verdict_repaired=res.verdict, statement=statement,
+        p_value_repaired_floor=getattr(getattr(res, "score", None), "p_value_floor", None))
 
 
 # ---------------------------------------------------------------------------

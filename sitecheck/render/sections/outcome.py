@@ -108,9 +108,12 @@ def _pct_ci(pair: Any) -> str:
 
 
 def _perm_p(h: Dict[str, Any], key: str = "p_value") -> str:
-    """A permutation p-value; at its floor 1 / (permutations + 1) it is shown as "≤ floor"."""
-    b = h.get("permutations")
-    floor = 1.0 / (b + 1) if isinstance(b, int) and b > 0 else None
+    """A permutation p-value; at its floor (``p_value_floor``, 1 / (permutations + 1)) it is shown as
+    "≤ floor". The variance and spread p-values come from the same permutations, hence the same floor."""
+    floor = h.get("p_value_floor")
+    if floor is None:  # a document written before the floor was recorded
+        b = h.get("permutations")
+        floor = 1.0 / (b + 1) if isinstance(b, int) and b > 0 else None
     return pval(h.get(key), floor)
 
 

@@ -9,6 +9,8 @@ from __future__ import annotations
 
 from typing import Any, Dict, List, Optional
 
+from sitecheck.analyses.stats import at_permutation_floor  # the one floor rule
+
 from ..fmt import DASH, ci, count, num, p_is, pval
 from ..safety import suppress_count
 from ..templating import Col, Table, figures_of, section_html, section_md
@@ -107,7 +109,7 @@ def model(doc: Dict[str, Any], min_cell: int) -> Optional[Dict[str, Any]]:
             "headline": probe.get("verdict_text") or _WORDS.get(probe.get("verdict", "none"), ""),
             "auc": num(probe.get("auc")), "auc_ci": ci(probe.get("auc_ci")),
             "p": p_is(probe.get("p_value"), probe.get("p_value_floor")),
-            "at_floor": pval(probe.get("p_value"), probe.get("p_value_floor")).startswith("≤"),
+            "at_floor": at_permutation_floor(probe.get("p_value"), probe.get("p_value_floor")),
             "n_permutations": probe.get("n_permutations"),
             "balanced_accuracy": num(probe.get("balanced_accuracy")),
             "rows": n_used, "subsample": sub, "folds": probe.get("folds"),
