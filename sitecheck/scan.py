@@ -375,6 +375,9 @@ def scan_table(table: Table, options: ScanOptions = ScanOptions(), *,
                        failed=failed)
     sections = dict(out["sections"])
     objects = dict(out["objects"])
+    failures = list(out["failures"])
+    if plan_doc is not None and objects.get("drift") is not None:
+        _period_stage(table, plan_doc, objects["drift"], failures)
     if plan_doc is not None:
         values = "after repair" if (options.repair and repaired is not None) else "as given"
         for key in ("embedding", "harmonisation", "outcome"):
@@ -414,7 +417,7 @@ def scan_table(table: Table, options: ScanOptions = ScanOptions(), *,
         warnings=tuple(table.warnings) + _pooling_warnings(prep),
         run=run,
         sections=sections,
-        failures=tuple(f.to_dict() for f in out["failures"]),
+        failures=tuple(f.to_dict() for f in failures),
         objects={"table": table, "prepared": prep, **objects},
     )
 
@@ -491,15 +494,45 @@ def _repair_stage(table: Table, prep: Prepared, options: ScanOptions, say: Progr
         "n_safe": len(plan.safe()),
         "values_for_maps_harmonisation_outcome": "after repair" if (options.repair and repaired is not None)
         else "as given",
-        "entries": [{"id": e.id, "kind": e.kind, "finding": {"kind": e.kind, "feature": e.finding_feature,
-                                                            "site": e.site},
-                     "column": e.column, "site": e.site, "operation": e.operation,
-                     "cells": e.cells, "rows": e.rows, "safe": e.safe, "enabled": e.enabled, "reason": e.reason}
-                    for e in plan.entries],
+        "entries": _plan_entries_doc(plan),
         "applied_in_scan": applied_doc, "log": log.to_dict(), "not_repaired": list(plan.not_repaired),
     }
     return ({"fingerprints": fp, "repair": {"plan": plan, "log": log, "applied": applied_doc}}, repaired,
             {"summary": summary, "plan": plan, "log": log})
+
+
+def _plan_entries_doc(plan) -> list:
+    """The plan's entries as report.json's ``repair.entries`` lists them (an entry scoped to a period
+    also carries its period, parameters and evidence)."""
+    out = []
+    for e in plan.entries:
+        d = {"id": e.id, "kind": e.kind, "finding": {"kind": e.kind, "feature": e.finding_feature, "site": e.site},
+             "column": e.column, "site": e.site, "operation": e.operation,
+             "cells": e.cells, "rows": e.rows, "safe": e.safe, "enabled": e.enabled, "reason": e.reason}
+        if e.period is not None:
+            d.update(period=dict(e.period), params=dict(e.params), evidence=dict(e.evidence))
+        out.append(d)
+    return out
+
+
+def _period_stage(table: Table, plan_doc: Dict[str, Any], drift, failures: list) -> None:
+    """Extend the plan with entries scoped to a period from the drift analysis's findings
+    (:func:`sitecheck.table.repair.plan_period_repairs`); they are never safe by default, so the
+    values the scan repaired in memory do not change. A failure here is recorded and leaves the
+    plan as it was."""
+    from sitecheck.analyses import registry as analyses
+    from sitecheck.table.repair import plan_period_repairs
+
+    failed: Dict[str, Any] = {}
+    spec = analyses.Analysis("repair", lambda *a: None, fills=("repair",))
+    plan = _guarded(spec, failed, lambda: plan_period_repairs(table, drift, plan_doc["plan"]), None)
+    failures.extend(failed.values())
+    if plan is None or plan is plan_doc["plan"]:
+        return
+    plan_doc["plan"] = plan
+    summary = plan_doc["summary"]
+    summary.update(plan_version=plan.version, n_entries=len(plan.entries), n_safe=len(plan.safe()),
+                   entries=_plan_entries_doc(plan), not_repaired=list(plan.not_repaired))
 
 
 def _pooling_warnings(prep: Prepared) -> tuple:

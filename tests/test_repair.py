@@ -263,3 +263,165 @@ def test_residual_probe_is_lower_on_the_demo(demo_table, demo_prepared, demo_pla
     assert np.array_equal(prep_r.site, demo_prepared.site) and res.n_used == probe.n_used
     none = residual_signal(prep_r, probe, None, [], random_state=0)
     assert none.auc_repaired is None and "no safe repair" in none.statement
+
+
+# -- entries scoped to a period (a step over time at one site) ------------------------------------
+
+def _dated_scan(tmp_path_factory, null=False, blank=0):
+    """The 6,000-row demo with its arrival dates (two years; drift potassium +0.15 at Aldermoor from
+    2026-04-01, fixtures/demo_truth.json), scanned for fingerprints and drift only; ``blank`` Aldermoor
+    rows lose their date (as exports do), spread over the whole period."""
+    from sitecheck.demo import generate_demo
+    from sitecheck.render import write_report
+    from sitecheck.scan import ScanOptions, scan_file
+
+    d = generate_demo(6000, seed=7, null=null)
+    frame = d.frame.copy()
+    undated = np.zeros(len(frame), dtype=bool)
+    if blank:
+        ald = np.flatnonzero((frame.hospital == "Aldermoor").to_numpy())
+        undated[ald[::len(ald) // blank][:blank]] = True
+        frame.loc[undated, "arrival_date"] = ""
+    root = tmp_path_factory.mktemp("null" if null else "dated")
+    data = root / "demo.csv"
+    frame.to_csv(data, index=False)
+    res = scan_file(str(data), site="hospital", outcome="admitted_hdu", covariates=["age", "sex"],
+                    identifiers=["attendance_id"], time="arrival_date",
+                    options=ScanOptions(analyses=("fingerprints", "drift"), n_jobs=1))
+    write_report(res, str(root / "out"), figures=False)
+    plan = json.loads((root / "out" / "repair_plan.json").read_text(encoding="utf-8"))
+    return d, frame, undated, data, root, res, plan
+
+
+@pytest.fixture(scope="module")
+def dated(tmp_path_factory):
+    return _dated_scan(tmp_path_factory, blank=40)
+
+
+def _months(iso):
+    t = pd.Timestamp(iso)
+    return t.year * 12 + t.month
+
+
+def test_a_step_at_one_site_becomes_a_period_entry(dated, demo_truth):
+    d, frame, undated, _, _, res, plan = dated
+    (truth,) = demo_truth["drift"]
+    assert d.truth["drift"] == [truth]
+    (e,) = [e for e in plan["entries"] if e["operation"] == "remove_step"]
+    assert (e["site"], e["column"], e["finding"]["kind"]) == (truth["site"], truth["feature"], "drift_level")
+    assert abs(_months(e["period"]["from"]) - _months(truth["from"])) <= 1  # within one period (months here)
+    assert e["period"] == {"time_column": "arrival_date", "from": e["period"]["from"], "until": None}
+    assert e["safe"] is False and e["enabled"] is False and "not safe by default" in e["reason"]
+    # its evidence is the drift finding's: date, size with its interval, p-values
+    (f,) = res.to_dict()["drift"]["findings"]
+    ev = e["evidence"]
+    assert (ev["change_date"], ev["size"], ev["size_ci"], ev["p_adj"]) == (f["date"], f["size"], f["size_ci"],
+                                                                           f["p_adj"])
+    assert e["params"]["subtract"] == f["size"] and e["params"]["interval"] == f["size_ci"]
+    assert ev["size_ci"][0] < truth["offset"] < ev["size_ci"][1] and ev["p_adj"] < 0.05
+    # the step is the difference of 20% trimmed means after minus before (Yuen 1974), here against
+    # scipy.stats.trim_mean on the rows of the two segments
+    t = pd.to_datetime(frame.arrival_date, errors="coerce")
+    ald = (frame.hospital == "Aldermoor") & t.notna()
+    k = pd.to_numeric(frame.potassium.astype(str).str.replace(",", "."), errors="coerce")  # Cindervale writes 4,2
+    after = k[ald & (t >= e["period"]["from"])].dropna()
+    before = k[ald & (t < e["period"]["from"])].dropna()
+    assert e["params"]["subtract"] == pytest.approx(stats.trim_mean(after, 0.2) - stats.trim_mean(before, 0.2),
+                                                    rel=1e-5)
+    assert e["rows"] == int((ald & (t >= e["period"]["from"])).sum()) and e["cells"] == len(after)
+    assert ev["site_rows_without_date"] == int(undated.sum()) == 40
+    # the plan names version 1.1 and validates against the schema `sitecheck repair-schema` prints
+    assert plan["plan_version"] == "sitecheck.repair/1.1"
+    r = CliRunner().invoke(main, ["repair-schema"])
+    schema = json.loads(r.output)
+    assert schema["$id"].endswith("repair/1.1") and "remove_step" in schema["properties"]["entries"]["items"][
+        "properties"]["operation"]["enum"]
+    assert validate(plan, schema) == []
+    assert plan_from_dict(plan).entries[-1].period == e["period"]
+
+
+def test_applying_the_period_entry_puts_the_later_period_on_the_earlier(dated, tmp_path):
+    _, frame, undated, data, _, _, plan = dated
+    doc = json.loads(json.dumps(plan))
+    for e in doc["entries"]:
+        e["enabled"] = e["operation"] == "remove_step"
+    (e,) = [e for e in doc["entries"] if e["enabled"]]
+    p = tmp_path / "plan.json"
+    p.write_text(json.dumps(doc))
+    out = tmp_path / "repaired.csv"
+    r = CliRunner().invoke(main, ["repair", str(data), "--plan", str(p), "--out", str(out)])
+    assert r.exit_code == 0, r.output
+    assert f"entry {e['id']}: 40 rows of its site have no usable date" in r.output
+    log = json.loads((tmp_path / "repaired.csv.repair_log.json").read_text())
+    assert log["rows_without_date"] == {e["id"]: 40}
+    fixed = pd.read_csv(out, dtype=str, keep_default_na=False)
+    given = pd.read_csv(data, dtype=str, keep_default_na=False)
+    t = pd.to_datetime(given.arrival_date, errors="coerce")
+    ald = (given.hospital == "Aldermoor").to_numpy()
+    later = ald & (t >= e["period"]["from"]).to_numpy()
+    changed = (fixed != given).to_numpy()
+    # only potassium, only Aldermoor, only rows dated in the period: no other site, no row before the date,
+    # no row without a date
+    cols = list(given.columns)
+    assert not changed[:, [i for i, c in enumerate(cols) if c != "potassium"]].any()
+    pot = changed[:, cols.index("potassium")]
+    assert not pot[~later].any() and not pot[undated].any() and pot.sum() == e["cells"] == log["cells_total"]
+    k0 = pd.to_numeric(given.potassium.str.replace(",", "."), errors="coerce")
+    k1 = pd.to_numeric(fixed.potassium, errors="coerce")
+    early = ald & (t < e["period"]["from"]).to_numpy()
+    # Before repair the later median sits a recording step (0.1 mmol/L) above the earlier one. Tolerance:
+    # after repair the medians agree within half a recording step (both lie on the 0.1 grid, so they are
+    # equal), and the trimmed means within half a step too (the step subtracted is rounded to the grid).
+    assert k0[later].median() - k0[early].median() >= 0.1 - 1e-9
+    assert abs(k1[later].median() - k1[early].median()) <= 0.05
+    gap0 = stats.trim_mean(k0[later].dropna(), 0.2) - stats.trim_mean(k0[early].dropna(), 0.2)
+    gap1 = stats.trim_mean(k1[later].dropna(), 0.2) - stats.trim_mean(k1[early].dropna(), 0.2)
+    assert abs(gap1) <= 0.05 < gap0
+    # the repaired values stay on the site's recording grid (one decimal): no new recording signature
+    v = k1[later].dropna().to_numpy()
+    assert np.allclose(v * 10, np.round(v * 10), atol=1e-9)
+
+
+def test_checklist_line_of_the_change_links_to_its_period_entry(dated):
+    import html5lib
+
+    _, _, _, _, root, _, plan = dated
+    (e,) = [e for e in plan["entries"] if e["operation"] == "remove_step"]
+    page = (root / "out" / "report.html").read_text(encoding="utf-8")
+    tree = html5lib.HTMLParser(strict=True, namespaceHTMLElements=False).parse(page)
+    ids = {el.get("id") for el in tree.iter() if el.get("id")}
+    lines = [li for li in tree.findall(".//ol[@class='todo-list']/li") if "change over time" in "".join(li.itertext())]
+    assert len(lines) == 1
+    links = [a.get("href") for a in lines[0].findall("span[@class='plan']/a")]
+    assert links == ["#plan-" + e["id"]] and links[0][1:] in ids
+    row = tree.find(f".//tr[@id='plan-{e['id']}']")
+    cells = ["".join(td.itertext()) for td in row.findall("td")]
+    assert cells[1:3] == [e["site"], e["column"]] and f"from {e['period']['from']}" in cells[4]
+    md = (root / "out" / "findings.md").read_text(encoding="utf-8")
+    (ln,) = [ln for ln in md.splitlines() if "change over time" in ln and ln[:1].isdigit()]
+    assert f"(repair plan {e['id']})" in ln and f"{e['column']} at {e['site']}" in ln
+
+
+def test_a_null_table_with_dates_yields_no_period_entry(tmp_path_factory):
+    *_, res, plan = _dated_scan(tmp_path_factory, null=True)
+    assert res.to_dict()["drift"]["findings"] == []
+    assert [e for e in plan["entries"] if e.get("period") or e["operation"] == "remove_step"] == []
+    assert [f for f in plan["not_repaired"] if f["kind"].startswith("drift_")] == []
+
+
+def test_older_plans_still_read_and_bad_periods_are_refused(dated):
+    *_, plan = dated
+    old = json.loads(json.dumps(plan))
+    old["plan_version"] = "sitecheck.repair/1.0"
+    old["entries"] = [e for e in old["entries"] if "period" not in e]
+    assert len(plan_from_dict(old).entries) == len(plan["entries"]) - 1
+    (e,) = [e for e in plan["entries"] if e["operation"] == "remove_step"]
+    for change, msg in (({"period": None}, "remove_step needs a period"),
+                        ({"period": dict(e["period"], **{"from": "2026-04-01", "until": "2026-01-01"})},
+                         "is not after 'from'"),
+                        ({"period": dict(e["period"], **{"from": "April"})}, r"period\.from: does not match"),
+                        ({"params": dict(e["params"], subtract="0.15")}, "needs a number 'subtract'")):
+        bad = json.loads(json.dumps(plan))
+        bad["entries"][-1].update(change)
+        with pytest.raises(InputError, match=msg):
+            plan_from_dict(bad)

@@ -28,6 +28,9 @@ def repair_cmd(data, plan_path, out, sep, encoding):
     for site, cols in res["cells_by_site"].items():
         parts = ", ".join(f"{c} {op} {n}" for c, ops in cols.items() for op, n in ops.items())
         click.echo(f"  {site}: {parts}")
+    for eid, n in res.get("rows_without_date", {}).items():
+        if n:
+            click.echo(f"  entry {eid}: {n} rows of its site have no usable date and were left as they were")
     click.echo(f"log: {res['log']}")
 
 

@@ -30,6 +30,12 @@ Operations
 ``map_level``
     An exclusive level is mapped to the common coding when the mapping is evident
     (``Male`` -> ``M``, ``walk in`` -> ``walk-in``).
+``remove_step``
+    Scoped to a period (``period``: time column, ``from``, ``until``): a step in one
+    site's level found by the drift analysis (:func:`plan_period_repairs`) is subtracted
+    from that site's values dated in the period, putting the later period on the
+    earlier one; the result is rounded to the site's recording step. Never safe by
+    default: a step may be real (a new population, a new referral pathway).
 
 Applying a plan never modifies the input; :func:`apply_repairs` returns a new
 table with a per-site log of the cells changed. This is decision support for
@@ -55,14 +61,18 @@ from sitecheck.errors import InputError
 
 #: Version of the plan document. Minor versions add keys; a major version renames
 #: or removes one. :func:`read_plan` refuses a major version it does not know.
-PLAN_VERSION = "sitecheck.repair/1.0"
-OPERATIONS = ("convert_unit", "recode_missing", "number_format", "censored_policy", "drop_column", "map_level")
+PLAN_VERSION = "sitecheck.repair/1.1"
+#: 1.1 added entries scoped to a period (``period``; operation ``remove_step``, finding kind ``drift_level``).
+OPERATIONS = ("convert_unit", "recode_missing", "number_format", "censored_policy", "drop_column", "map_level",
+              "remove_step")
+#: finding kinds of plan entries that come from the drift analysis, not from the fingerprints
+DRIFT_KINDS = ("drift_level",)
 CENSOR_POLICIES = ("limit", "limit_over_sqrt2", "limit_over_2", "missing")
 #: Hornung & Reed (1990): L / sqrt(2) when the geometric standard deviation is below 3, L / 2 above.
 GSD_HIGHLY_SKEWED = 3.0
 #: Order in which operations apply to a column (codes out before a unit conversion).
 _ORDER = {op: i for i, op in enumerate(("recode_missing", "number_format", "censored_policy", "convert_unit",
-                                        "map_level", "drop_column"))}
+                                        "remove_step", "map_level", "drop_column"))}
 NOTE = ("Decision support for data work, not a clinical device. Review every entry under your local "
         "data-governance rules; set \"enabled\" to false to skip one.")
 
@@ -110,6 +120,9 @@ class RepairEntry:
     reason: str
     #: the finding's feature where it differs from ``column`` (a unit column whose values column is converted)
     feature: Optional[str] = None
+    #: the rows' period, for an entry scoped to one: {"time_column", "from", "until"} (ISO dates; "until"
+    #: exclusive, None for open-ended); None applies to every row of the site
+    period: Optional[Dict[str, Any]] = None
 
     @property
     def finding_feature(self) -> str:
@@ -121,6 +134,7 @@ class RepairEntry:
         return to_jsonable({"id": self.id, "finding": {"kind": self.kind, "feature": self.finding_feature,
                                                        "site": self.site},
                             "column": self.column, "site": self.site, "operation": self.operation,
+                            **({"period": dict(self.period)} if self.period is not None else {}),
                             "params": self.params, "evidence": self.evidence, "rows": int(self.rows),
                             "cells": int(self.cells), "safe": bool(self.safe), "enabled": bool(self.enabled),
                             "reason": self.reason})
@@ -208,6 +222,16 @@ def _round_to(x: np.ndarray, step: Optional[float]) -> np.ndarray:
         return np.round(x, 6)
     digits = max(0, -int(math.floor(math.log10(step)))) + 2
     return np.round(np.round(x / step) * step, digits)
+
+
+def _round_half_even(x: np.ndarray, step: Optional[float]) -> np.ndarray:
+    """``x`` on the grid of ``step`` (None: unchanged), halves to the even multiple (IEEE 754's default
+    rounding, unbiased over many values); ``x / step`` is first cut to 6 decimals so that floating-point
+    noise (4.15 / 0.1 = 41.4999...) does not decide a half."""
+    if step is None or not step > 0:
+        return x
+    digits = max(0, -int(math.floor(math.log10(step)))) + 2
+    return np.round(np.round(np.round(x / step, 6)) * step, digits)
 
 
 def _site_mask(table, site: str) -> np.ndarray:
@@ -396,6 +420,121 @@ def plan_repairs(table, fingerprints, *, censor_policy: Optional[str] = None) ->
     return RepairPlan(entries=tuple(entries), site_column=table.site, input=inp, not_repaired=tuple(skipped))
 
 
+def _iso_day(value) -> np.datetime64:
+    return np.datetime64(str(value)[:10], "ns")
+
+
+def period_mask(times: np.ndarray, period: Dict[str, Any]) -> Tuple[np.ndarray, np.ndarray]:
+    """(rows dated in ``period``, rows without a date) of a datetime64 array: ``from`` inclusive,
+    ``until`` exclusive (either may be None)."""
+    t = np.asarray(times, dtype="datetime64[ns]")
+    undated = np.isnat(t)
+    inside = ~undated
+    if period.get("from"):
+        inside &= t >= _iso_day(period["from"])
+    if period.get("until"):
+        inside &= t < _iso_day(period["until"])
+    return inside, undated
+
+
+def plan_period_repairs(table, drift, plan: RepairPlan) -> RepairPlan:
+    """Add entries scoped to a period to ``plan``: one per step in one site's level found by the
+    drift analysis.
+
+    A drift finding (significant after adjustment, of practical size; see
+    :func:`sitecheck.analyses.drift.drift_check`) becomes an entry when it is a change of
+    level (aspect ``level``) of a numeric feature, at this site only (scope ``site``: a
+    change shared with other sites or with the whole network is not one site's artefact),
+    with a 95% interval of the step that excludes 0. The entry subtracts the step (the
+    difference of 20% trimmed means after minus before, Yuen 1974) from the site's values
+    dated from the change until the next change point of the same series (open-ended when
+    there is none), putting the later period on the earlier one, rounded to the site's
+    recording step so that the repair adds no recording signature of its own.
+
+    It is never safe by default (``enabled`` false): a step may be real (a new population,
+    a new referral pathway), and only the site can say. Other drift findings are listed
+    under ``not_repaired`` with the reason.
+
+    Parameters
+    ----------
+    table : sitecheck.table.roles.Table
+        The validated table the drift analysis ran on (with its time column).
+    drift : sitecheck.analyses.drift.DriftResult
+    plan : RepairPlan
+        The plan built from the fingerprints; its entries keep their ids.
+
+    Returns
+    -------
+    RepairPlan
+        ``plan`` with the period entries appended (ids continue the plan's numbering).
+
+    References
+    ----------
+    Yuen, K. K. (1974). The two-sample trimmed t for unequal population variances.
+    Biometrika 61(1), 165-170.
+    """
+    tcol = getattr(table, "time", None)
+    if drift is None or tcol is None:
+        return plan
+    frame = table.frame
+    site_vals = frame[table.site].to_numpy(dtype=object)
+    times = frame[tcol].to_numpy(dtype="datetime64[ns]")
+    entries = list(plan.entries)
+    skipped = list(plan.not_repaired)
+    n = len(entries)
+    for c in drift.findings:
+        doc = c.to_dict()
+        kind = f"drift_{c.aspect}"
+        lo, hi = doc["size_ci"] if len(doc["size_ci"]) == 2 else (None, None)
+        reason = None
+        if c.aspect != "level":
+            reason = {"spread": "a change in spread over time is not a mechanical fix",
+                      "missing": "a change in the missing share over time cannot be undone",
+                      "artefact": "an artefact that appeared or vanished over time: repair the artefact itself"
+                      }.get(c.aspect, "no mechanical fix")
+        elif c.scope != "site":
+            reason = "other sites changed at the same time: not one site's artefact"
+        elif table.kind(c.feature) != "numeric":
+            reason = "not a numeric feature"
+        elif lo is None or hi is None or not (lo > 0 or hi < 0):
+            reason = "the step's 95% interval includes 0"
+        if reason is not None:
+            skipped.append({"kind": kind, "feature": c.feature, "site": c.site, "period_from": c.date,
+                            "reason": reason})
+            continue
+        later = [o.date for o in drift.change_points
+                 if (o.site, o.feature, o.aspect, o.artefact) == (c.site, c.feature, c.aspect, c.artefact)
+                 and o.date > c.date]
+        period = {"time_column": tcol, "from": c.date, "until": min(later) if later else None}
+        at = site_vals == c.site
+        inside, undated = period_mask(times, period)
+        x = frame[c.feature].to_numpy(dtype=float)
+        rows = at & inside
+        step = _grid_step(x[at & ~np.isnan(x)])
+        size = doc["size"]
+        params = {"subtract": size, "interval": [lo, hi], "round_to": step,
+                  "estimate": "difference of 20% trimmed means, later period minus earlier (Yuen 1974), with "
+                              "its 95% interval",
+                  "choices": "edit 'subtract' (for instance to the value the site's laboratory reports) or "
+                             "set 'round_to' to null to keep the exact difference"}
+        evidence = {"change_date": c.date, "period": c.period, "size": size, "size_ci": [lo, hi],
+                    "size_sd": doc["size_sd"], "p_value": doc["p_value"], "p_adj": doc["p_adj"], "scope": c.scope,
+                    "before": doc["before"], "after": doc["after"], "detail": c.detail,
+                    "site_rows_without_date": int(np.sum(at & undated))}
+        until = f" until before {period['until']}" if period["until"] else ""
+        n += 1
+        entries.append(RepairEntry(
+            id=f"r{n:03d}", kind="drift_level", column=c.feature, site=c.site, operation="remove_step",
+            params=params, evidence=evidence, rows=int(rows.sum()), cells=int(np.sum(rows & ~np.isnan(x))),
+            safe=False, enabled=False, period=period,
+            reason=(f"{c.feature} at {c.site} from {c.date}{until}: subtract the step ({size:.3g}, 95% CI "
+                    f"{lo:.3g} to {hi:.3g}) to put the later period on the earlier one (not safe by default: "
+                    "a step may be real; ask the site what changed)")))
+    if len(entries) == len(plan.entries) and len(skipped) == len(plan.not_repaired):
+        return plan
+    return replace(plan, entries=tuple(entries), not_repaired=tuple(skipped))
+
+
 def _units_of(detail: str) -> Tuple[str, str]:
     m = re.search(r"this site likely records (.+?), the others (.+)$", detail)
     return (m.group(1), m.group(2)) if m else ("site unit", "reference unit")
@@ -456,6 +595,8 @@ class RepairLog:
     applied: Tuple[str, ...]
     skipped: Tuple[str, ...]
     dropped_columns: Tuple[str, ...] = ()
+    #: entry id -> rows of its site left alone because they have no usable date (entries scoped to a period)
+    rows_without_date: Dict[str, int] = field(default_factory=dict)
 
     @property
     def total(self) -> int:
@@ -464,7 +605,7 @@ class RepairLog:
     def to_dict(self) -> dict:
         return {"cells_by_site": {s: {c: dict(o) for c, o in v.items()} for s, v in self.cells_by_site.items()},
                 "cells_total": self.total, "applied": list(self.applied), "skipped": list(self.skipped),
-                "dropped_columns": list(self.dropped_columns)}
+                "dropped_columns": list(self.dropped_columns), "rows_without_date": dict(self.rows_without_date)}
 
 
 def check_plan_fits(plan: RepairPlan, columns: Sequence[str], site_column: str, sites: Sequence[str]) -> None:
@@ -481,15 +622,21 @@ def check_plan_fits(plan: RepairPlan, columns: Sequence[str], site_column: str, 
         uc = e.params.get("unit_column")
         if uc is not None and uc not in cols:
             raise InputError(f"repair plan entry {e.id}: unit column {uc!r} is not in the table")
+        if e.period is not None and e.period.get("time_column") not in cols:
+            raise InputError(f"repair plan entry {e.id}: time column {e.period.get('time_column')!r} is not in "
+                             "the table")
 
 
 def repair_values(frame: pd.DataFrame, plan: RepairPlan, *, site: np.ndarray, cells: Dict[str, Any],
-                  binary_levels: Optional[Dict[str, Tuple[str, str]]] = None, safe_only: bool = False):
+                  binary_levels: Optional[Dict[str, Tuple[str, str]]] = None, safe_only: bool = False,
+                  times: Optional[Dict[str, np.ndarray]] = None):
     """Apply a plan's entries to parsed values (vectorised); return (frame, log, changed).
 
     ``frame`` holds numbers as float64 and text as objects (a copy is changed);
     ``site`` the site label of each row; ``cells`` the intake's
-    :class:`~sitecheck.reading.intake.CellNotes` per column (censoring flags, idioms).
+    :class:`~sitecheck.reading.intake.CellNotes` per column (censoring flags, idioms);
+    ``times`` maps a time column to its dates (datetime64, NaT without a usable date) for
+    entries scoped to a period (default: the frame's own column when it holds dates).
     ``changed`` maps column -> boolean mask of the cells whose value or written
     form changes (for writing a file), ``None`` for a dropped column.
     """
@@ -499,7 +646,9 @@ def repair_values(frame: pd.DataFrame, plan: RepairPlan, *, site: np.ndarray, ce
     changed: Dict[str, Optional[np.ndarray]] = {}
     by_site: Dict[str, Dict[str, Dict[str, int]]] = {}
     applied, skipped, dropped = [], [], []
+    undated_rows: Dict[str, int] = {}
     binary_levels = binary_levels or {}
+    times = dict(times or {})
 
     def note(site_label, column, op, mask):
         n = int(mask.sum())
@@ -517,8 +666,24 @@ def repair_values(frame: pd.DataFrame, plan: RepairPlan, *, site: np.ndarray, ce
             skipped.append(e.id)
             continue
         at = site == e.site if e.site is not None else np.ones(len(out), dtype=bool)
+        if e.period is not None:  # only the rows dated in the period; rows without a date are left alone
+            tcol = e.period.get("time_column")
+            t = times.get(tcol)
+            if t is None and tcol in frame.columns and np.issubdtype(frame[tcol].dtype, np.datetime64):
+                t = frame[tcol].to_numpy(dtype="datetime64[ns]")
+            if t is None:
+                raise InputError(f"repair plan entry {e.id}: time column {tcol!r} holds no dates")
+            inside, undated = period_mask(t, e.period)
+            undated_rows[e.id] = int(np.sum(at & undated))
+            at = at & inside
         op, p = e.operation, e.params
-        if op == "recode_missing":
+        if op == "remove_step":
+            x = out[e.column].to_numpy(dtype=float).copy()
+            m = at & ~np.isnan(x)
+            x[m] = _round_half_even(x[m] - float(p["subtract"]), p.get("round_to"))
+            out[e.column] = x
+            note(e.site, e.column, op, m)
+        elif op == "recode_missing":
             x = out[e.column].to_numpy(dtype=float).copy()
             m = at & np.isin(x, np.asarray(p["codes"], dtype=float))
             x[m] = np.nan
@@ -587,7 +752,7 @@ def repair_values(frame: pd.DataFrame, plan: RepairPlan, *, site: np.ndarray, ce
             raise InputError(f"repair plan entry {e.id}: unknown operation {op!r}")
         applied.append(e.id)
     log = RepairLog(cells_by_site={s: by_site[s] for s in sorted(by_site)}, applied=tuple(applied),
-                    skipped=tuple(skipped), dropped_columns=tuple(dropped))
+                    skipped=tuple(skipped), dropped_columns=tuple(dropped), rows_without_date=undated_rows)
     return out, log, changed
 
 
@@ -653,9 +818,37 @@ def plan_from_dict(doc: Any) -> RepairPlan:
                                    rows=int(d["rows"]), cells=int(d["cells"]), safe=bool(d["safe"]),
                                    enabled=bool(d["enabled"]), reason=str(d.get("reason", "")),
                                    feature=d["finding"].get("feature") if d["finding"].get("feature") != d["column"]
-                                   else None))
+                                   else None, period=_read_period(d)))
     return RepairPlan(entries=tuple(entries), site_column=str(doc["site_column"]), input=dict(doc.get("input", {})),
                       not_repaired=tuple(doc.get("not_repaired", [])), version=ver)
+
+
+def _read_period(d: Dict[str, Any]) -> Optional[Dict[str, Any]]:
+    """An entry's period, checked: a time column and ISO dates (``until`` after ``from``)."""
+    per = d.get("period")
+    if per is None:
+        if d["operation"] == "remove_step":
+            raise InputError(f"repair plan entry {d['id']}: remove_step needs a period (time_column, from)")
+        return None
+    out = {"time_column": str(per["time_column"]), "from": per.get("from"), "until": per.get("until")}
+    bounds = []
+    for key in ("from", "until"):
+        if out[key] is None:
+            bounds.append(None)
+            continue
+        try:
+            bounds.append(pd.Timestamp(str(out[key])))
+        except (ValueError, TypeError):
+            raise InputError(f"repair plan entry {d['id']}: period {key} {out[key]!r} is not a date "
+                             "(write YYYY-MM-DD)") from None
+    if bounds[0] is None and bounds[1] is None:
+        raise InputError(f"repair plan entry {d['id']}: the period needs 'from' or 'until'")
+    if bounds[0] is not None and bounds[1] is not None and bounds[1] <= bounds[0]:
+        raise InputError(f"repair plan entry {d['id']}: period 'until' {out['until']} is not after 'from' "
+                         f"{out['from']}")
+    if d["operation"] == "remove_step" and not isinstance(d["params"].get("subtract"), (int, float)):
+        raise InputError(f"repair plan entry {d['id']}: remove_step needs a number 'subtract' in params")
+    return out
 
 
 def read_plan(path: str) -> RepairPlan:
@@ -680,14 +873,21 @@ def plan_schema() -> Dict[str, Any]:
         return {"type": "object", "properties": props, "required": list(required), "additionalProperties": True}
 
     s = {"type": "string"}
+    date = r"^\d{4}-\d{2}-\d{2}$"
     entry = obj({
-        "id": s, "finding": obj({"kind": {"enum": list(KINDS)}, "feature": s, "site": {"type": ["string", "null"]}},
-                                ["kind", "feature", "site"]),
+        "id": s, "finding": obj({"kind": {"enum": list(KINDS) + list(DRIFT_KINDS)}, "feature": s,
+                                 "site": {"type": ["string", "null"]}}, ["kind", "feature", "site"]),
         "column": s, "site": {"type": ["string", "null"]}, "operation": {"enum": list(OPERATIONS)},
+        "period": {"type": ["object", "null"], "description": "rows dated from 'from' (inclusive) until 'until' "
+                   "(exclusive; null: open-ended) in time_column; rows without a date are left alone (plan 1.1)",
+                   "properties": {"time_column": s, "from": {"type": ["string", "null"], "pattern": date},
+                                  "until": {"type": ["string", "null"], "pattern": date}},
+                   "required": ["time_column", "from", "until"], "additionalProperties": True},
         "params": {"type": "object", "description": "by operation: convert_unit {factor, offset_before, "
                    "offset_after, from_unit, to_unit, source, round_to, unit_column?, unit_label?, site_labels?}; "
                    "recode_missing {codes}; number_format {formats}; censored_policy {side, policy, limits}; "
-                   "map_level {mapping}; drop_column {}"},
+                   "map_level {mapping}; drop_column {}; remove_step {subtract, interval, unit?, round_to, "
+                   "estimate} (with a period)"},
         "evidence": {"type": "object"}, "rows": {"type": ["integer", "string"]},
         "cells": {"type": ["integer", "string"]}, "safe": {"type": "boolean"}, "enabled": {"type": "boolean"},
         "reason": s}, ["id", "finding", "column", "site", "operation", "params", "evidence", "rows", "cells", "safe",
@@ -885,6 +1085,24 @@ def _as_text(values: np.ndarray, missing: str):
     return out
 
 
+def _plan_times(raw, plan: RepairPlan, labels: np.ndarray, sites: Sequence[str]) -> Dict[str, np.ndarray]:
+    """The dates of each time column an enabled entry is scoped by, read site by site as the scan
+    reads them (:func:`sitecheck.table.roles.parse_dates_by_site`; NaT without a usable date)."""
+    from sitecheck.table.roles import parse_dates_by_site
+
+    out: Dict[str, np.ndarray] = {}
+    for e in plan.enabled():
+        tcol = (e.period or {}).get("time_column")
+        if tcol is None or tcol in out:
+            continue
+        info = next(c for c in raw.columns if c.name == tcol)
+        text = None if info.text is None else pd.Series(info.text, index=raw.frame.index)
+        parsed, _, _ = parse_dates_by_site(raw.frame[tcol], info, pd.Series(labels, index=raw.frame.index,
+                                                                               dtype=object), list(sites), text=text)
+        out[tcol] = parsed.to_numpy(dtype="datetime64[ns]")
+    return out
+
+
 def repair_file(data: str, plan_path: str, out: str, *, sep: Optional[str] = None,
                 encoding: str = "utf-8") -> Dict[str, Any]:
     """Apply a repair plan's enabled entries to a table file and write the repaired
@@ -920,7 +1138,8 @@ def repair_file(data: str, plan_path: str, out: str, *, sep: Optional[str] = Non
     labels = _site_labels(raw.frame[plan.site_column])
     sites = sorted({str(v) for v in labels if v is not None})
     check_plan_fits(plan, list(raw.frame.columns), plan.site_column, sites)
-    frame, log, changed = repair_values(raw.frame, plan, site=labels, cells=raw.cells, safe_only=False)
+    frame, log, changed = repair_values(raw.frame, plan, site=labels, cells=raw.cells, safe_only=False,
+                                        times=_plan_times(raw, plan, labels, sites))
     missing_code = {}
     for info in raw.columns:
         codes = {k: v for k, v in info.missing_codes.items() if k != "(null)"}
@@ -978,4 +1197,5 @@ def repair_file(data: str, plan_path: str, out: str, *, sep: Optional[str] = Non
         fh.write("\n")
     os.replace(log_path + ".tmp", log_path)
     return {"out": out, "log": log_path, "cells_by_site": log.cells_by_site, "cells_total": log.total,
-            "applied": list(log.applied), "skipped": list(log.skipped), "dropped_columns": list(log.dropped_columns)}
+            "applied": list(log.applied), "skipped": list(log.skipped), "dropped_columns": list(log.dropped_columns),
+            "rows_without_date": dict(log.rows_without_date)}

@@ -33,7 +33,8 @@ ACTION = {
 }
 
 #: a plan entry's finding kind that is not a fingerprint kind -> words
-_KIND_WORDS = {"drift_level": "change over time (level)"}
+_KIND_WORDS = {"drift_level": "change over time (level)", "drift_spread": "change over time (spread)",
+               "drift_missing": "change over time (missing share)", "drift_artefact": "change over time (artefact)"}
 
 
 def plan_anchor(entry_id: Any) -> str:
@@ -86,11 +87,9 @@ def _plan_table(rep: Dict[str, Any], min_cell: int) -> Table:
         if not isinstance(e, dict):
             continue
         kind = finding_key(e)[0]
-        scoped = isinstance(e.get("period"), dict)
         rows.append([Cell(e.get("id"), cls="id"), e.get("site") or "all sites", e.get("column"),
                      _KIND_WORDS.get(kind, artefact(kind)), action_text(e),
-                     count(suppress_count(e.get("rows_in_scope", e.get("rows")) if scoped else e.get("rows"),
-                                          min_cell)),
+                     count(suppress_count(e.get("rows"), min_cell)),
                      count(suppress_count(e.get("cells"), min_cell)),
                      Cell("yes" if e.get("safe") else "no", cls="ok" if e.get("safe") else ""),
                      "yes" if e.get("enabled") else "no", e.get("reason") or ""])
@@ -154,7 +153,8 @@ def model(doc: Dict[str, Any], min_cell: int) -> Optional[Dict[str, Any]]:
                           "action": action_text(e), "safe": bool(e.get("safe")), "enabled": bool(e.get("enabled"))}
                          for e in entries],
             "not_repaired": Table([Col("finding"), Col("column"), Col("site"), Col("why not", wide=True)],
-                                  [[artefact(f.get("kind")), f.get("feature"), f.get("site"), f.get("reason")]
+                                  [[_KIND_WORDS.get(f.get("kind"), artefact(f.get("kind"))), f.get("feature"),
+                                    f.get("site"), f.get("reason")]
                                    for f in nr]),
         }
     return m
