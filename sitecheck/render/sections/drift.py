@@ -10,7 +10,7 @@ from __future__ import annotations
 from typing import Any, Dict, List
 
 from ..html import embed_image, esc, num, pval, table_html
-from ..markdown import md_table
+from ..markdown import md_escape
 from ..safety import suppress_count
 
 _SCOPE = {"site": "this site only", "several_sites": "this and some other sites at the same time",
@@ -139,6 +139,9 @@ def html(doc: Dict[str, Any], min_cell: int) -> str:
     if rows:
         parts.append("<h3>Changes at a site</h3>")
         parts.append(table_html(_FINDING_HEAD, rows, numeric=(6, 7)))
+        refs = _plan_refs_html(doc)
+        if refs:
+            parts.append(refs)
     else:
         parts.append("<p>No change over time passed its test at any site.</p>")
     net = _network_rows(d)
@@ -166,21 +169,72 @@ def html(doc: Dict[str, Any], min_cell: int) -> str:
 
 
 def markdown(doc: Dict[str, Any], min_cell: int) -> str:
+    """A few lines for findings.md: how the search was calibrated, one line per change at a site (with its
+    repair-plan entry), the network-wide changes and the flagged period probes; the tables are in the HTML."""
     d = doc.get("drift")
     if not isinstance(d, dict):
         return ""
-    out = ["## Drift over the collection period", "", _intro(d), ""]
-    rows = _finding_rows(d, min_cell)
-    out.append(md_table(_FINDING_HEAD, rows) if rows else "No change over time passed its test at any site.")
+    params = d.get("params") or {}
+    out = ["## Drift over the collection period", "",
+           md_escape(f"Time column {d.get('time_column')}: per site and feature, monthly (or coarser) medians, spreads, "
+                     f"missing and artefact shares searched for change points with PELT (ruptures), the penalty set "
+                     f"for a false-alarm rate of at most {params.get('alpha', 0.05)} per series, p-values adjusted "
+                     f"by Benjamini-Hochberg over the {d.get('n_series')} series searched."), ""]
+    plan = _plan_ids(doc)
+    found = [c for c in d.get("findings") or [] if isinstance(c, dict)]
+    for c in found:
+        ref = plan.get((c.get("feature"), c.get("site"), c.get("date")))
+        out.append(md_escape(f"- {c.get('feature')} at {c.get('site')} from {c.get('period')}: {c.get('detail')}; "
+                             f"size {_md_size(c)}, p (adjusted) {pval(c.get('p_adj'))}; "
+                             f"{_SCOPE.get(c.get('scope'), c.get('scope'))}"
+                             + (f"; repair plan {ref}" if ref else "") + "."))
+    if not found:
+        out.append("No change over time passed its test at any site.")
     net = _network_rows(d)
     if net:
-        out += ["", "Network-wide changes (not site effects):", "",
-                md_table(["feature", "what changed", "from about", "sites"], net)]
-    probes = _probe_rows(d, min_cell)
-    if probes:
-        out += ["", md_table(_PROBE_HEAD, probes)]
-    out += ["", md_table(_SITE_HEAD, _site_rows(d, min_cell))]
+        out += ["", md_escape("Network-wide changes (not site effects): "
+                              + "; ".join(f"{r[0]} ({r[1]}) from about {r[2]}" for r in net) + ".")]
+    flagged = [p.get("site") for p in d.get("period_probe") or [] if isinstance(p, dict) and p.get("flagged")]
+    if flagged:
+        out += ["", md_escape("The period probe tells the later half of the collection period apart beyond the "
+                              f"covariates at: {', '.join(map(str, flagged))}.")]
     return "\n".join(out)
+
+
+def _plan_refs_html(doc: Dict[str, Any]) -> str:
+    """A line linking each repair-plan entry scoped to a change found here (its row in the plan table)."""
+    from .repair import plan_anchor
+
+    rep = doc.get("repair") if isinstance(doc.get("repair"), dict) else {}
+    items = []
+    for e in rep.get("entries") or []:
+        per = e.get("period") if isinstance(e, dict) else None
+        if not isinstance(per, dict):
+            continue
+        state = "enabled" if e.get("enabled") else "not enabled: enable it in the plan file once the site confirms"
+        items.append(f'<a href="#{esc(plan_anchor(e.get("id")))}">{esc(e.get("id"))}</a> ({esc(e.get("column"))} at '
+                     f'{esc(e.get("site"))} from {esc(per.get("from"))}; {state})')
+    if not items:
+        return ""
+    return ("<p>Repair-plan entries that subtract a step over the later period: " + "; ".join(items)
+            + ". A step may be real (a new population, a new referral pathway): ask the site first.</p>")
+
+
+def _md_size(c: Dict[str, Any]) -> str:
+    if c.get("aspect") == "level" and isinstance(c.get("size"), (int, float)):
+        return f"{_g(c.get('size'))} (95% CI {_ci(c.get('size_ci'))})"
+    return _size(c)
+
+
+def _plan_ids(doc: Dict[str, Any]) -> Dict[tuple, str]:
+    """(feature, site, change date) -> the id of the repair-plan entry scoped to that change."""
+    rep = doc.get("repair") if isinstance(doc.get("repair"), dict) else {}
+    out = {}
+    for e in rep.get("entries") or []:
+        per = e.get("period") if isinstance(e, dict) else None
+        if isinstance(per, dict):
+            out[(e.get("column"), e.get("site"), per.get("from"))] = e.get("id")
+    return out
 
 
 def next_lines(doc: Dict[str, Any]) -> List[Dict[str, Any]]:
