@@ -11,7 +11,7 @@ from typing import Dict, List, Optional
 
 import numpy as np
 
-from .figures import _save, style
+from .figures import FONT, _save, style
 from .safety import suppress_count
 
 #: Colour limits of the heatmap, in robust SD units of the site's own values.
@@ -75,7 +75,7 @@ def heatmap(result, out_dir: str, *, min_cell: int = 10) -> List[str]:
                        interpolation="nearest", extent=(lo - 0.5, hi - 0.5, len(sites) - 0.5, -0.5))
         ax.set_facecolor("#9e9e9e")
         ax.set_yticks(range(len(sites)))
-        ax.set_yticklabels([s.site for s in sites], fontsize=8)
+        ax.set_yticklabels([s.site for s in sites], fontsize=FONT["tick"])
         for c in result.change_points:
             if c.feature != f or (not c.finding and c.scope != "network"):
                 continue
@@ -87,13 +87,15 @@ def heatmap(result, out_dir: str, *, min_cell: int = 10) -> List[str]:
                     linestyle="-" if c.finding else ":")
         ticks = [m for m in range(lo, hi) if m % 3 == 0]
         ax.set_xticks(ticks)
-        ax.set_xticklabels([f"{m // 12}-{m % 12 + 1:02d}" for m in ticks], fontsize=7, rotation=0)
-        ax.set_title(f, fontsize=9, loc="left")
+        ax.set_xticklabels([f"{m // 12}-{m % 12 + 1:02d}" for m in ticks], fontsize=FONT["tick"], rotation=0)
+        ax.set_title(f, fontsize=FONT["title"], loc="left")
     fig.suptitle("Median per period minus the site's median, in the site's robust SD (grey: no data or fewer "
                  f"than {min_cell} values)\nblack bar: a change found at that site; dotted bar: a network-wide "
-                 "change", fontsize=8.5, y=1 - 0.12 / total)
+                 "change", fontsize=FONT["note"], y=1 - 0.12 / total)
     cax = fig.add_axes((0.88, 0.35 / total, 0.015, 1 - 1.1 / total))
-    fig.colorbar(im, cax=cax, label="SD from the site's median", extend="both")
+    cb = fig.colorbar(im, cax=cax, extend="both")
+    cb.set_label("SD from the site's median", fontsize=FONT["label"])
+    cb.ax.tick_params(labelsize=FONT["tick"])
     return _save(fig, out_dir, "drift_heatmap")
 
 
@@ -167,16 +169,16 @@ def time_series(result, out_dir: str, *, min_cell: int = 10) -> List[str]:
             n_before = suppress_count(c.before.get("n"), min_cell)
             n_after = suppress_count(c.after.get("n"), min_cell)
             ax.set_title(f"{c.feature} at {c.site}: {c.detail}  (values before {n_before}, after {n_after})",
-                         fontsize=8.5, loc="left")
+                         fontsize=FONT["note"], loc="left")
         else:
-            ax.set_title(f"{feature}: median per period at each site (no change found)", fontsize=9, loc="left")
+            ax.set_title(f"{feature}: median per period at each site (no change found)", fontsize=FONT["title"], loc="left")
         ylabel = {"median": "median (IQR band)", "missing": "missing share"}.get(key, "share of values")
-        ax.set_ylabel(ylabel, fontsize=8)
+        ax.set_ylabel(ylabel, fontsize=FONT["label"])
         ax.xaxis.set_major_formatter(mdates.DateFormatter("%Y-%m"))
-        ax.tick_params(labelsize=7)
+        ax.tick_params(labelsize=FONT["tick"])
         ax.grid(alpha=0.25)
-        ax.legend(fontsize=7, loc="upper left", frameon=False, ncol=4)
-    fig.suptitle("Per-site series with change points (dashed); other sites in grey", fontsize=9, y=0.995)
+        ax.legend(fontsize=FONT["legend"], loc="upper left", frameon=False, ncol=4)
+    fig.suptitle("Per-site series with change points (dashed); other sites in grey", fontsize=FONT["title"], y=0.995)
     fig.tight_layout(rect=(0, 0, 1, 0.97))
     return _save(fig, out_dir, "drift_series")
 

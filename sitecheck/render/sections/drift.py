@@ -243,14 +243,19 @@ def next_lines(doc: Dict[str, Any]) -> List[Dict[str, Any]]:
     if not isinstance(d, dict):
         return []
     out = []
+    plan = _plan_ids(doc)
     for c in d.get("findings") or []:
         if not isinstance(c, dict):
             continue
+        ref = plan.get((c.get("feature"), c.get("site"), c.get("date")))
+        fix = (f"ask the site what changed about {c.get('period')}; if the step is the measurement's, enable "
+               f"plan entry {ref} to subtract it, else model the periods apart or leave one out" if ref else
+               f"ask the site what changed about {c.get('period')}; harmonise or model the periods before "
+               "and after apart, or leave one out")
         out.append({"severity": "review", "site": c.get("site") or "", "column": c.get("feature"),
                     "what": f"change over time from {c.get('period')}",
                     "evidence": c.get("detail", ""),
-                    "fix": f"ask the site what changed about {c.get('period')}; harmonise or model the periods before "
-                           "and after apart, or leave one out", "note": "", "href": "#drift",
+                    "fix": fix, "note": "", "href": "#drift",
                     "keys": [("drift_" + str(c.get("aspect")), c.get("feature"), c.get("site"))]})
     return out
 

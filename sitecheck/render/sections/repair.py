@@ -64,7 +64,7 @@ def action_text(e: Dict[str, Any]) -> str:
     p = e.get("params") if isinstance(e.get("params"), dict) else {}
     if e.get("operation") == "remove_step" and isinstance(p.get("subtract"), (int, float)):
         unit = f" {p['unit']}" if p.get("unit") else ""
-        text = f"subtract {p['subtract']:g}{unit}"
+        text = f"subtract {p['subtract']:.3g}{unit}"
         if isinstance(p.get("interval"), list) and len(p["interval"]) == 2:
             text += f" (95% CI {ci(p['interval'])})"
     scope = e.get("period") if isinstance(e.get("period"), dict) else None
@@ -95,8 +95,8 @@ def _plan_table(rep: Dict[str, Any], min_cell: int) -> Table:
                      "yes" if e.get("enabled") else "no", e.get("reason") or ""])
         ids.append(plan_anchor(e.get("id")))
     cols = [Col("entry"), Col("site"), Col("column"), Col("fixes"), Col("action", wide=True),
-            Col("rows in scope", "the site's rows (in the period)", True),
-            Col("cells changed", "when applied", True), Col("safe by default"), Col("enabled"), Col("why", wide=True)]
+            Col("rows in scope", numeric=True), Col("cells changed", numeric=True), Col("safe by default"),
+            Col("enabled"), Col("why", wide=True)]
     return Table(cols, rows, row_ids=ids, sortable=False)
 
 
