@@ -94,7 +94,7 @@ def _plan_table(rep: Dict[str, Any], min_cell: int) -> Table:
                      Cell("yes" if e.get("safe") else "no", cls="ok" if e.get("safe") else ""),
                      "yes" if e.get("enabled") else "no", e.get("reason") or ""])
         ids.append(plan_anchor(e.get("id")))
-    cols = [Col("entry"), Col("site"), Col("column"), Col("fixes"), Col("action", wide=True),
+    cols = [Col("entry"), Col("site"), Col("column"), Col("fixes"), Col("action"),
             Col("rows in scope", numeric=True), Col("cells changed", numeric=True), Col("safe by default"),
             Col("enabled"), Col("why", wide=True)]
     return Table(cols, rows, row_ids=ids, sortable=False)
@@ -116,9 +116,9 @@ def _idiom_table(doc: Dict[str, Any], min_cell: int) -> Table:
                 rows.append([c.get("name"), site, "withheld", ""])
                 continue
             units = (c.get("units") or {}).get(site) or {}
-            unit_txt = ", ".join(f"{u} ({suppress_count(n, min_cell)})" for u, n in units.items()) \
+            unit_txt = ", ".join(f"{u} ({count(suppress_count(n, min_cell))})" for u, n in units.items()) \
                 if isinstance(units, dict) else ""
-            rows.append([c.get("name"), site, ", ".join(f"{k.replace('_', ' ')} ({suppress_count(v, min_cell)})"
+            rows.append([c.get("name"), site, ", ".join(f"{k.replace('_', ' ')} ({count(suppress_count(v, min_cell))})"
                                                         for k, v in idioms.items()), unit_txt])
     return Table([Col("column"), Col("site"), Col("idioms read (cells)"), Col("units written (cells)")], rows)
 
