@@ -411,14 +411,15 @@ def test_number_format_false_alarm_rate_when_every_site_writes_commas():
 
 
 def test_kinds_are_one_list_for_gates_and_schema():
-    from sitecheck.table.repair import plan_schema
+    from sitecheck.table.repair import DRIFT_KINDS, plan_schema
     from sitecheck.report.gates import FINGERPRINT_KINDS, check_fail_on
     from sitecheck.report.schema import report_schema
 
     enum = report_schema()["properties"]["fingerprints"]["items"]["properties"]["kind"]["enum"]
     assert enum == list(KINDS) == list(FINGERPRINT_KINDS)
+    # a plan entry fixes a fingerprint, or (plan 1.1) a step over time found by the drift analysis
     assert plan_schema()["properties"]["entries"]["items"]["properties"]["finding"]["properties"]["kind"]["enum"] \
-        == list(KINDS)
+        == list(KINDS) + list(DRIFT_KINDS) and DRIFT_KINDS == ("drift_level",)
     assert KINDS[:10] == ("unit_ratio", "precision", "heaping", "floor", "ceiling", "missing_code", "site_missing",
                           "exclusive_level", "shift", "scale")      # shipped names, a contract
     assert check_fail_on(["censored_below", "censored_above", "number_format", "unit_label"])

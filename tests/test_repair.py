@@ -425,3 +425,16 @@ def test_older_plans_still_read_and_bad_periods_are_refused(dated):
         bad["entries"][-1].update(change)
         with pytest.raises(InputError, match=msg):
             plan_from_dict(bad)
+
+
+def test_period_entry_counts_are_suppressed_in_shared_outputs(dated):
+    from sitecheck.render.safety import shareable_document
+
+    *_, res, _ = dated
+    shared = shareable_document(res.to_dict(), min_cell=50)
+    (e,) = [e for e in shared["repair"]["entries"] if e.get("period")]
+    # 40 rows without a date at the site: below 50, so withheld; the segments' row counts stay (above 50)
+    assert e["evidence"]["site_rows_without_date"] == "<50"
+    assert isinstance(e["evidence"]["before"]["n"], int) and e["evidence"]["before"]["n"] > 50
+    log = shareable_document({"log": {"rows_without_date": {"r006": 7, "r007": 80}}}, min_cell=10)["log"]
+    assert log["rows_without_date"] == {"r006": "<10", "r007": 80}

@@ -66,7 +66,7 @@ def suppress_count(n: Any, min_cell: int) -> Any:
 
 #: Keys whose integer values are counts of patients or rows.
 COUNT_KEYS = frozenset({"n", "count", "rows", "rows_used", "n_missing", "unparsed_count", "n_rows", "n_pos", "n_neg",
-                        "cells", "cells_total", "count_elsewhere",
+                        "cells", "cells_total", "count_elsewhere", "site_rows_without_date",
                         "positives", "negatives", "tp", "fp", "tn", "fn", "k", "cases", "n_events"})
 
 #: Keys whose string values are names from the data or fixed labels, never free text with counts.
@@ -137,7 +137,7 @@ def shareable_document(doc: Any, *, min_cell: int, small_sites: frozenset = froz
                     continue
                 child_counts = counts or k in ("sites", "missing_codes", "dropped_sites", "confusion_matrix",
                                                "site_counts", "counts", "legend_counts", "idioms", "units",
-                                               "cells_by_site")
+                                               "cells_by_site", "rows_without_date")
                 out[k] = walk(v, k, child_counts and not isinstance(v, str))
             return out
         if isinstance(obj, list):
