@@ -367,7 +367,7 @@ def test_applying_the_period_entry_puts_the_later_period_on_the_earlier(dated, t
     pot = changed[:, cols.index("potassium")]
     assert not pot[~later].any() and not pot[undated].any() and pot.sum() == e["cells"] == log["cells_total"]
     k0 = pd.to_numeric(given.potassium.str.replace(",", "."), errors="coerce")
-    k1 = pd.to_numeric(fixed.potassium, errors="coerce")
+    k1 = pd.to_numeric(fixed.potassium.str.replace(",", "."), errors="coerce")  # Cindervale keeps its 4,2
     early = ald & (t < e["period"]["from"]).to_numpy()
     # Before repair the later median sits a recording step (0.1 mmol/L) above the earlier one. Tolerance:
     # after repair the medians agree within half a recording step (both lie on the 0.1 grid, so they are
@@ -380,6 +380,15 @@ def test_applying_the_period_entry_puts_the_later_period_on_the_earlier(dated, t
     # the repaired values stay on the site's recording grid (one decimal): no new recording signature
     v = k1[later].dropna().to_numpy()
     assert np.allclose(v * 10, np.round(v * 10), atol=1e-9)
+    # applied in memory to the scanned table (its parsed dates), the same values and the same log
+    *_, res, _ = dated
+    table = res.objects["table"]
+    fixed_table, mem_log = apply_repairs(table, plan_from_dict(doc), safe_only=False)
+    assert mem_log.rows_without_date == {e["id"]: 40} and mem_log.applied == (e["id"],)
+    np.testing.assert_allclose(fixed_table.frame.potassium.to_numpy(float), k1.loc[table.frame.index].to_numpy(),
+                               equal_nan=True)
+    # with only the safe entries (the scan's in-memory repair) the period entry is not applied
+    assert e["id"] not in apply_repairs(table, plan_from_dict(doc), safe_only=True)[1].applied
 
 
 def test_checklist_line_of_the_change_links_to_its_period_entry(dated):

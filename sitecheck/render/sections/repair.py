@@ -15,6 +15,8 @@ from ..safety import suppress_count
 from ..templating import Cell, Col, Table, anchor
 from ..words import artefact
 
+#: plan entries listed in findings.md (the rest: report.html and repair_plan.json)
+MD_MAX = 12
 ID = "repair"
 TITLE = "What mechanical repairs would remove"
 
@@ -151,7 +153,8 @@ def model(doc: Dict[str, Any], min_cell: int) -> Optional[Dict[str, Any]]:
             "table": _plan_table(rep, min_cell),
             "md_lines": [{"id": e.get("id"), "site": e.get("site") or "all sites", "column": e.get("column"),
                           "action": action_text(e), "safe": bool(e.get("safe")), "enabled": bool(e.get("enabled"))}
-                         for e in entries],
+                         for e in entries[:MD_MAX]],
+            "md_more": max(0, len(entries) - MD_MAX),
             "not_repaired": Table([Col("finding"), Col("column"), Col("site"), Col("why not", wide=True)],
                                   [[_KIND_WORDS.get(f.get("kind"), artefact(f.get("kind"))), f.get("feature"),
                                     f.get("site"), f.get("reason")]
