@@ -338,6 +338,12 @@ def test_a_step_at_one_site_becomes_a_period_entry(dated, demo_truth):
         "properties"]["operation"]["enum"]
     assert validate(plan, schema) == []
     assert plan_from_dict(plan).entries[-1].period == e["period"]
+    # and report.json, which lists the entry with its period, validates against `sitecheck schema`
+    from sitecheck.report.schema import report_schema
+
+    doc = res.to_dict()
+    assert [x for x in doc["repair"]["entries"] if x["id"] == e["id"]][0]["period"] == e["period"]
+    assert validate(doc, report_schema()) == []
 
 
 def test_applying_the_period_entry_puts_the_later_period_on_the_earlier(dated, tmp_path):

@@ -27,6 +27,8 @@ def _obj(props: Dict[str, Any], required=None, **extra) -> Dict[str, Any]:
 
 def report_schema() -> Dict[str, Any]:
     """Return the JSON Schema of the report document."""
+    from sitecheck.table.repair import DRIFT_KINDS  # a plan entry may fix a step over time (plan 1.1)
+
     per_site_auc = {"type": "object", "additionalProperties": {
         "anyOf": [_obj({"auc": NUM, "auc_ci": CI, "n": COUNT}, ["auc", "auc_ci", "n"]), {"const": "withheld"}]}}
     probe = _obj({
@@ -164,10 +166,13 @@ def report_schema() -> Dict[str, Any]:
                             "n_entries": {"type": "integer"}, "n_safe": {"type": "integer"},
                             "values_for_maps_harmonisation_outcome": {"enum": ["after repair", "as given"]},
                             "entries": {"type": "array", "items": _obj({
-                                "id": {"type": "string"}, "kind": {"enum": list(FINGERPRINT_KINDS)},
+                                "id": {"type": "string"}, "kind": {"enum": list(FINGERPRINT_KINDS) + list(DRIFT_KINDS)},
                                 "column": {"type": "string"}, "site": {"type": ["string", "null"]},
                                 "operation": {"type": "string"}, "cells": COUNT, "safe": {"type": "boolean"},
-                                "enabled": {"type": "boolean"}},
+                                "enabled": {"type": "boolean"},
+                                "period": {"type": "object", "description": "an entry scoped to a period (a step "
+                                           "over time at one site): time_column, from, until (ISO dates, until "
+                                           "exclusive or null)"}},
                                 ["id", "kind", "column", "site", "operation", "cells", "safe", "enabled"])},
                             "applied_in_scan": {"type": "array"}, "log": {"type": "object"},
                             "not_repaired": {"type": "array"}},
