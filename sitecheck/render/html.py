@@ -46,15 +46,20 @@ def pval(value: Any, floor: Any = None) -> str:
     return _fmt.pval(value, floor)
 
 
-def table_html(headers: List[str], rows: List[List[Any]], *, numeric: tuple = ()) -> str:
-    """A sortable table from headers and rows, every cell escaped (for older-style sections)."""
+def table_html(headers: List[str], rows: List[List[Any]], *, numeric: tuple = (), nowrap: tuple = (),
+               wide: tuple = ()) -> str:
+    """A sortable table from headers and rows, every cell escaped (for older-style sections).
+
+    Columns in ``numeric`` are right-aligned and never wrap; in ``nowrap`` (dates, numbers with
+    their interval) never wrap; in ``wide`` (prose) keep a readable width."""
     out = ['<div class="tw"><table class="sortable"><thead><tr>']
     out += [("<th class=\"n\">" if j in numeric else "<th>") + esc(h) + "</th>" for j, h in enumerate(headers)]
     out.append("</tr></thead><tbody>")
     for row in rows:
         out.append("<tr>")
         for j, cell in enumerate(row):
-            cls = ' class="n"' if j in numeric else ""
+            cls = "n" if j in numeric else ("nw" if j in nowrap else ("w" if j in wide else ""))
+            cls = f' class="{cls}"' if cls else ""
             out.append(f"<td{cls}>{esc(cell)}</td>")
         out.append("</tr>")
     out.append("</tbody></table></div>")

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from typing import Any, Dict, List
 
-from ..html import embed_image, esc, num, pval, table_html
+from ..html import ci, embed_image, esc, num, pval, table_html
 from ..markdown import md_escape
 from ..safety import suppress_count
 
@@ -79,9 +79,9 @@ def _probe_rows(d: Dict[str, Any], min_cell: int) -> List[List[Any]]:
         verdict = ("the features tell the later half apart beyond case mix" if p.get("flagged")
                    else "not beyond case mix")
         rows.append([p.get("site"), suppress_count(p.get("n"), min_cell), p.get("split_date"),
-                     f"{num(p.get('auc'))} ({_ci(p.get('auc_ci'))})",
-                     f"{num(p.get('covariate_auc'))} ({_ci(p.get('covariate_auc_ci'))})",
-                     f"{num(p.get('increment'))} ({_ci(p.get('increment_ci'))})", verdict,
+                     f"{num(p.get('auc'))} ({ci(p.get('auc_ci'))})",
+                     f"{num(p.get('covariate_auc'))} ({ci(p.get('covariate_auc_ci'))})",
+                     f"{num(p.get('increment'))} ({ci(p.get('increment_ci'))})", verdict,
                      ", ".join(p.get("left_out") or []) or "–"])
     return rows
 
@@ -138,7 +138,7 @@ def html(doc: Dict[str, Any], min_cell: int) -> str:
     rows = _finding_rows(d, min_cell)
     if rows:
         parts.append("<h3>Changes at a site</h3>")
-        parts.append(table_html(_FINDING_HEAD, rows, numeric=(6, 7)))
+        parts.append(table_html(_FINDING_HEAD, rows, numeric=(6, 7), nowrap=(3, 5, 9), wide=(4,)))
         refs = _plan_refs_html(doc)
         if refs:
             parts.append(refs)
@@ -157,14 +157,14 @@ def html(doc: Dict[str, Any], min_cell: int) -> str:
     probes = _probe_rows(d, min_cell)
     if probes:
         parts.append("<h3>Period probe: can the period be told from the features?</h3>")
-        parts.append(table_html(_PROBE_HEAD, probes))
+        parts.append(table_html(_PROBE_HEAD, probes, nowrap=(2, 3, 4, 5)))
     others = [c for c in d.get("change_points") or [] if isinstance(c, dict) and not c.get("finding")]
     if others:
         parts.append(f"<p class='muted'>{len(others)} further change point(s) were found by the search but did not "
                      "pass the adjusted test, were too small to matter, or were network-wide; they are listed in "
                      "report.json under drift.change_points.</p>")
     parts.append("<h3>Periods by site</h3>")
-    parts.append(table_html(_SITE_HEAD, _site_rows(d, min_cell)))
+    parts.append(table_html(_SITE_HEAD, _site_rows(d, min_cell), nowrap=(3,)))
     return "".join(parts)
 
 
