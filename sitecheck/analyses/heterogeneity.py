@@ -45,6 +45,7 @@ import numpy as np
 from scipy import optimize as _opt
 from scipy import stats as _st
 
+from sitecheck._runtime import generator
 from sitecheck.errors import ParameterError
 
 Interval = Optional[Tuple[float, float]]
@@ -465,11 +466,6 @@ def rate_heterogeneity(x, n, labels: Sequence[str], *, min_count: int = MIN_COUN
         raise ParameterError(f"min_count must be a positive integer, got {min_count!r}")
     if not isinstance(n_permutations, (int, np.integer)) or isinstance(n_permutations, bool) or n_permutations < 0:
         raise ParameterError(f"n_permutations must be a non-negative integer, got {n_permutations!r}")
-    if isinstance(random_state, np.random.Generator):
-        rng = random_state
-    elif isinstance(random_state, (int, np.integer)) and not isinstance(random_state, bool):
-        rng = np.random.default_rng(int(random_state))
-    else:
-        raise ParameterError("random_state must be an integer seed or a numpy Generator")
+    rng = generator(random_state)
     return _heterogeneity(x.astype(np.int64), n.astype(np.int64), [str(s) for s in labels], int(min_count),
                           int(n_permutations), rng, float(alpha), True)

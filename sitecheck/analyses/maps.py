@@ -27,13 +27,12 @@ from sklearn.decomposition import PCA
 from sklearn.metrics import silhouette_samples
 from sklearn.neighbors import NearestNeighbors
 
+from sitecheck._runtime import derived_seed, generator, stream
 from sitecheck.errors import InputError
 from sitecheck.table.prepare import Prepared, stratified_subsample
 
 METHODS: Tuple[str, ...] = ("pca", "tsne", "umap")
 
-#: Stream of :meth:`Prepared.rng` used by this module (keeps analyses independent).
-_STREAM = 5
 #: Spaces whose mixing is scored, in report order: the preprocessed design, then each map.
 _SPACES: Tuple[str, ...] = ("features",) + METHODS
 
@@ -218,7 +217,7 @@ def summarise_lisi(values, site, site_labels: Sequence[str], *, n_boot: int = 20
     """
     values = np.asarray(values, dtype=float)
     site = np.asarray(site, dtype=np.int64)
-    rng = random_state if isinstance(random_state, np.random.Generator) else np.random.default_rng(random_state)
+    rng = generator(random_state)
     counts = np.bincount(site, minlength=len(site_labels))
     exp = expected_random(counts[counts > 0])
     q = [100 * alpha / 2, 100 * (1 - alpha / 2)]
@@ -246,7 +245,7 @@ def silhouette_by_site(X, site, site_labels: Sequence[str], *, max_rows: int = 3
     interval over rows and the mean by site. Near 0 or below: sites overlap;
     near 1: sites form separate, compact clusters."""
     site = np.asarray(site, dtype=np.int64)
-    rng = random_state if isinstance(random_state, np.random.Generator) else np.random.default_rng(random_state)
+    rng = generator(random_state)
     if len(np.unique(site)) < 2:
         return {"value": None, "ci": [None, None], "n": int(len(site)), "per_site": {}}
     idx = stratified_subsample(site, int(max_rows), rng)
@@ -650,13 +649,12 @@ def compute_maps(prep: Prepared, *, max_rows: int = 10_000, methods: Sequence[st
     if not isinstance(max_rows, (int, np.integer)) or max_rows < 50:
         raise InputError(f"map_rows must be an integer of at least 50, got {max_rows!r}")
     seed = prep.seed if random_state is None else int(random_state)
-    rng = np.random.default_rng([seed, _STREAM])
-    idx = stratified_subsample(prep.site, int(max_rows), rng)
+    idx = stratified_subsample(prep.site, int(max_rows), stream(seed, "maps"))
     site = prep.site[idx]
     Z = preprocess(prep.X[idx], prep.features.categorical)
     if Z.shape[1] == 0:
         raise InputError("no feature column is usable for the maps")
-    coords, settings = embed(Z, methods=methods, random_state=seed, tsne_max_iter=tsne_max_iter,
+    coords, settings = embed(Z, methods=methods, random_state=derived_seed(seed, "maps.embedding"), tsne_max_iter=tsne_max_iter,
                              umap_n_epochs=umap_n_epochs, perplexity=perplexity, tsne_threads=tsne_threads)
     n = len(idx)
     perp = float(min(perplexity, max(1.5, (n - 1) / 3.0)))
@@ -665,7 +663,7 @@ def compute_maps(prep: Prepared, *, max_rows: int = 10_000, methods: Sequence[st
     sil: Dict[str, Dict[str, Any]] = {}
     for space, M in spaces.items():
         # one generator per space, so that maps computed apart and merged give the same numbers
-        space_rng = np.random.default_rng([seed, _STREAM, _SPACES.index(space)])
+        space_rng = stream(seed, "maps", _SPACES.index(space))
         values = lisi(M, site, perplexity=perp)
         mixing[space] = summarise_lisi(values, site, prep.site_labels, n_boot=n_boot, random_state=space_rng)
         sil[space] = silhouette_by_site(M, site, prep.site_labels, n_boot=n_boot, random_state=space_rng)

@@ -59,20 +59,13 @@ from sklearn.base import clone
 from sklearn.metrics import roc_curve
 from sklearn.model_selection import StratifiedKFold
 
-from sitecheck._runtime import SINGLE_THREAD_BELOW as _SINGLE_THREAD_BELOW, derived_seed, stream, thread_limit
+from sitecheck._runtime import derived_seed, generator, native_threads, stream, thread_limit
 from sitecheck.errors import InputError
 from sitecheck.analyses.heterogeneity import MIN_COUNT, SCALE, RateHeterogeneity, rate_heterogeneity
 from sitecheck.analyses.leakage import LeakageResult, grouped_permutation_importance
 from sitecheck.analyses.models import fit_classifier, make_booster
 from sitecheck.table.prepare import Prepared
 from sitecheck.analyses.probe import cross_fit
-
-#: Generator stream of this analysis (keeps its bootstrap independent of others).
-RNG_STREAM = 7
-
-#: Below this many rows the models run on one OpenMP thread: thread start-up
-#: then costs more than it saves, and much more on a loaded machine.
-SINGLE_THREAD_BELOW = _SINGLE_THREAD_BELOW
 
 #: Bootstrap resamples handled per vectorised block (bounds memory at block x n floats).
 BOOT_BLOCK = 32
@@ -515,9 +508,7 @@ def rates_at(y: np.ndarray, pred: np.ndarray, unit: np.ndarray, labels: Sequence
     tci, fci = spread_ci if spread_ci is not None else (None, None)
     th = fh = None
     if n_permutations is not None:
-        if random_state is None:
-            raise InputError("rates_at needs random_state (an integer seed or a Generator) for the permutation null")
-        rng = random_state if isinstance(random_state, np.random.Generator) else np.random.default_rng(random_state)
+        rng = generator(random_state)  # a ParameterError for None: the permutation null is always seeded
         labs = [r.label for r in per]
         th = rate_heterogeneity([r.tp for r in per], [r.n_pos for r in per], labs, min_count=min_count,
                                 n_permutations=n_permutations, random_state=rng)
@@ -624,7 +615,7 @@ def outcome_risk(prep: Prepared, *, leakage: Optional[LeakageResult] = None, thr
     rows within each site. Whether the TPR and FPR differ across sites beyond
     sampling noise is read from their heterogeneity (tau^2, Q-profile interval,
     I^2) and its permutation null, computed on the fixed out-of-fold
-    predictions (no refitting). Tables with fewer than ``SINGLE_THREAD_BELOW`` rows
+    predictions (no refitting). Tables with fewer than ``sitecheck._runtime.SINGLE_THREAD_BELOW`` rows
     are modelled on one thread (results do not depend on it).
 
     References
@@ -637,16 +628,12 @@ def outcome_risk(prep: Prepared, *, leakage: Optional[LeakageResult] = None, thr
     Wilson, E. B. (1927). JASA 22, 209-212.
     Breiman, L. (2001). Random forests. Machine Learning 45, 5-32.
     """
-    if prep.outcome is not None and int(np.sum(~np.isnan(prep.outcome))) < SINGLE_THREAD_BELOW:
-        with thread_limit(1, user_api="openmp"):
-            return _outcome_risk(prep, leakage=leakage, threshold=threshold, n_boot=n_boot, n_repeats=n_repeats,
-                                 importance_rows=importance_rows, top_k=top_k, min_importance=min_importance,
-                                 max_iter=max_iter, min_rate_count=min_rate_count,
-                                 n_permutations=n_permutations, random_state=random_state)
-    return _outcome_risk(prep, leakage=leakage, threshold=threshold, n_boot=n_boot, n_repeats=n_repeats,
-                         importance_rows=importance_rows, top_k=top_k, min_importance=min_importance,
-                         max_iter=max_iter, min_rate_count=min_rate_count, n_permutations=n_permutations,
-                         random_state=random_state)
+    rows = 0 if prep.outcome is None else int(np.sum(~np.isnan(prep.outcome)))
+    with thread_limit(native_threads(rows) if prep.outcome is not None else None, user_api="openmp"):
+        return _outcome_risk(prep, leakage=leakage, threshold=threshold, n_boot=n_boot, n_repeats=n_repeats,
+                             importance_rows=importance_rows, top_k=top_k, min_importance=min_importance,
+                             max_iter=max_iter, min_rate_count=min_rate_count, n_permutations=n_permutations,
+                             random_state=random_state)
 
 
 def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_rows, top_k, min_importance,
@@ -693,7 +680,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
 
     # the shortcut ceiling: site label alone
     s_score = site_only_scores(y, site, folds)
-    so_auc, so_ci = _auc_ci(y, s_score, n_boot=n_boot, random_state=seed)
+    so_auc, so_ci = _auc_ci(y, s_score, n_boot=n_boot, random_state=derived_seed(seed, "outcome.site_only_ci"))
 
     # baseline model (the probe's family and settings), pooled cross-fit
     yi = y.astype(np.int64)
@@ -750,7 +737,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
                                             dtype=np.int64), levels)
 
     # joint site-stratified bootstrap of the held-out predictions: gap and rate spreads
-    rng = prep.rng(RNG_STREAM)
+    rng = stream(seed, "outcome")
     members = [np.flatnonzero(site == i) for i in range(len(labels))]
     s_oof = SortedScores(oof, y)
     s_site = {i: SortedScores(loso_pred[members[i]], y[members[i]]) for i in ok_sites}

@@ -15,18 +15,14 @@ from typing import List, Optional, Sequence, Tuple
 import numpy as np
 from scipy import stats as _st
 
+from sitecheck._runtime import generator
 from sitecheck.errors import ParameterError
 
 #: Resamples handled per vectorised block (bounds memory at block x n floats).
 _BLOCK = 64
 
 
-def _rng(random_state) -> np.random.Generator:
-    if isinstance(random_state, np.random.Generator):
-        return random_state
-    if random_state is None or isinstance(random_state, (bool, np.bool_)):
-        raise ParameterError("random_state must be an integer seed or a numpy Generator")
-    return np.random.default_rng(random_state)
+_rng = generator
 
 
 def _check_y_proba(y, proba) -> Tuple[np.ndarray, np.ndarray]:

@@ -10,6 +10,7 @@ from typing import Dict, List, Optional, Sequence, Tuple
 import numpy as np
 import pandas as pd
 
+from sitecheck._runtime import stream_key
 from sitecheck.errors import InputError
 from sitecheck.harmonise.methods import (HarmonisationFit, _prevalence_warning, apply_harmoniser, clip_to_range,
                                          fit_harmoniser, protected_design)
@@ -210,7 +211,7 @@ def harmonise_table(raw, *, site: Optional[str], method: Optional[str] = None, p
         _check_findings(raw, site_col, adjusted_cols, identifiers, excluded, outcome, despite_findings,
                         warnings)
         D, _ = protected_design(frame.loc[has], [s["name"] for s in fit.protect], spec=fit.protect)
-        Xh = apply_harmoniser(fit, X, codes, design=D, random_state=[int(seed), 2])
+        Xh = apply_harmoniser(fit, X, codes, design=D, random_state=stream_key(seed, "harmonise.apply"))
         Xh, clipped = clip_to_range(fit, Xh)
         left = dict(parameters.get("left_unchanged", {}))
     else:
@@ -229,8 +230,8 @@ def harmonise_table(raw, *, site: Optional[str], method: Optional[str] = None, p
         _check_findings(raw, site, adjust, identifiers, excluded, outcome, despite_findings, warnings)
         D, spec = protected_design(frame.loc[has], list(protect))
         fit = fit_harmoniser(X, codes, method=method, site_labels=labels, feature_names=adjust, design=D,
-                             protect_spec=spec, log_skewed=True, random_state=[int(seed), 1])
-        Xh = apply_harmoniser(fit, X, codes, design=D, random_state=[int(seed), 2])
+                             protect_spec=spec, log_skewed=True, random_state=stream_key(seed, "harmonise.fit"))
+        Xh = apply_harmoniser(fit, X, codes, design=D, random_state=stream_key(seed, "harmonise.apply"))
         Xh, clipped = clip_to_range(fit, Xh)
         if outcome and outcome not in protect:
             y = pd.to_numeric(frame.loc[has, outcome], errors="coerce").to_numpy(dtype=float, na_value=np.nan)

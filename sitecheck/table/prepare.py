@@ -208,9 +208,10 @@ class Prepared:
     def X(self) -> np.ndarray:
         return self.features.X
 
-    def rng(self, stream: int = 0) -> np.random.Generator:
-        """A fresh generator for one analysis; ``stream`` keeps analyses independent."""
-        return np.random.default_rng([self.seed, stream])
+    def rng(self, name: str, *sub: int) -> np.random.Generator:
+        """A fresh generator of the named stream ``name`` for this table's seed
+        (:func:`sitecheck._runtime.stream`); each analysis has streams of its own."""
+        return stream(self.seed, name, *sub)
 
 
 def stratified_subsample(labels: np.ndarray, cap: int, rng: np.random.Generator) -> np.ndarray:
