@@ -60,7 +60,7 @@ from sklearn.metrics import roc_curve
 from sklearn.model_selection import StratifiedKFold
 
 from sitecheck._runtime import derived_seed, generator, native_threads, stream, thread_limit
-from sitecheck.errors import InputError
+from sitecheck.errors import InputError, ParameterError
 from sitecheck.analyses.heterogeneity import MIN_COUNT, SCALE, RateHeterogeneity, rate_heterogeneity
 from sitecheck.analyses.leakage import LeakageResult, grouped_permutation_importance
 from sitecheck.analyses.models import fit_classifier, make_booster
@@ -640,14 +640,14 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
                   max_iter, min_rate_count, n_permutations, random_state) -> OutcomeRisk:
     name = prep.table.outcome or "outcome"
     if prep.outcome is None:
-        raise InputError("the outcome analysis needs an outcome column; none was given")
+        raise InputError("the outcome analysis needs an outcome column; none was given", option="outcome")
     if threshold is not None:
         if not isinstance(threshold, (int, float)) or not (0.0 < float(threshold) < 1.0):
-            raise InputError(f"threshold must be a number strictly between 0 and 1, got {threshold!r}")
+            raise ParameterError(f"threshold must be a number strictly between 0 and 1, got {threshold!r}")
     for opt, val, lo in (("n_boot", n_boot, 50), ("n_repeats", n_repeats, 1), ("importance_rows", importance_rows, 50),
                          ("min_rate_count", min_rate_count, 1), ("n_permutations", n_permutations, 0)):
         if not isinstance(val, (int, np.integer)) or isinstance(val, bool) or val < lo:
-            raise InputError(f"{opt} must be an integer of at least {lo}, got {val!r}")
+            raise ParameterError(f"{opt} must be an integer of at least {lo}, got {val!r}")
     seed = int(prep.seed if random_state is None else random_state)
 
     keep = ~np.isnan(prep.outcome)

@@ -100,7 +100,8 @@ def _check_findings(raw, site, features, identifiers, excluded, outcome, despite
         return
     if not despite:
         raise InputError(f"not harmonised: {_blocking_line(found)} would be spread over every value of the site; "
-                         "repair them first (see `sitecheck scan`) or pass --despite-findings")
+                         "repair them first (a scan's repair plan lists the fixes) or set despite_findings",
+                         option="despite_findings")
     warnings.append(f"harmonised despite {len(found)} finding(s) that harmonisation cannot repair: "
                     f"{_blocking_line(found, None)}")
 
