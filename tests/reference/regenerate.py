@@ -41,8 +41,8 @@ FULL = dict(n_jobs=1)
 
 #: Fields that belong to the run, not to the data and the seed: (section, key) of report.json ...
 RUN_SPECIFIC = (("run", "seconds"), ("run", "versions"), ("input", "path"))
-#: ... and keys of repair_plan.json ("sitecheck 0.1.0": the version that wrote it).
-RUN_SPECIFIC_PLAN = ("generated_by",)
+#: ... and of repair_plan.json (generated_by: "sitecheck 0.1.0", the version that wrote it; the input path).
+RUN_SPECIFIC_PLAN = ("generated_by", ("input", "path"))
 
 
 def strip(doc: dict, fields=RUN_SPECIFIC) -> dict:
