@@ -79,6 +79,11 @@ BLOCKING_KINDS = ("unit_ratio", "missing_code", "censored_below", "censored_abov
 #: Version tag written into saved parameter files.
 PARAMS_FORMAT = "sitecheck.harmonise/1"
 
+#: Keys of :meth:`HarmonisationFit.to_dict` (any other key of a saved file is kept in ``saved_with``).
+_PARAMETER_KEYS = ("format", "method", "features", "adjusted", "unchanged", "site_labels", "protect", "alpha",
+                   "sigma", "n_design", "beta", "gamma", "delta", "n", "combat", "grid", "lower", "upper",
+                   "site_grid", "log_offset", "quantiles", "pooled_quantiles")
+
 
 # ---------------------------------------------------------------------------
 # protected covariates -> design matrix
@@ -742,6 +747,10 @@ class HarmonisationFit:
     log_offset : ndarray (p,)
         ``c`` of the log scale ``log(x + c)`` the feature was fitted on; NaN:
         fitted on its own scale.
+    saved_with : dict
+        Keys saved beside the parameters (:meth:`save`'s ``extra``, such as the site column of
+        the table it was fitted on), as :meth:`load` and :meth:`from_dict` found them; not part of
+        :meth:`to_dict`.
 
     Examples
     --------
@@ -779,6 +788,7 @@ class HarmonisationFit:
     upper: Optional[np.ndarray] = None
     site_grid: Optional[np.ndarray] = None
     log_offset: Optional[np.ndarray] = None
+    saved_with: Dict[str, Any] = field(default_factory=dict, compare=False, repr=False)
 
     def __post_init__(self):
         p = len(self.features)
@@ -821,29 +831,24 @@ class HarmonisationFit:
         return d
 
     def save(self, path: str, **extra) -> str:
-        """Write the parameters (:meth:`to_dict`, plus ``extra`` keys) as JSON to ``path``, atomically
-        (a temporary file beside it, then a rename); return the path."""
+        """Write the parameters (:meth:`to_dict`, then :attr:`saved_with` and ``extra`` keys) as JSON
+        to ``path``, atomically (a temporary file beside it, then a rename); return the path."""
         import json
-        import os
-        import tempfile
 
-        doc = {**self.to_dict(), **extra}
-        folder = os.path.dirname(os.path.abspath(path))
-        fd, tmp = tempfile.mkstemp(dir=folder, prefix=".sitecheck-", suffix=".json.tmp")
-        try:
-            with os.fdopen(fd, "w", encoding="utf-8") as fh:
-                fh.write(json.dumps(doc, indent=1, allow_nan=False) + "\n")
-            os.replace(tmp, path)
-        except BaseException:
-            if os.path.exists(tmp):
-                os.unlink(tmp)
-            raise
+        from sitecheck._files import atomic_write_path
+
+        doc = {**self.to_dict(), **self.saved_with, **extra}
+        clash = sorted(set(extra) & set(_PARAMETER_KEYS))
+        if clash:
+            raise ParameterError(f"extra must not use the parameters' own keys, got {clash}")
+        atomic_write_path(path, json.dumps(doc, indent=1, allow_nan=False) + "\n")
         return path
 
     @classmethod
     def load(cls, path: str) -> "HarmonisationFit":
-        """Read parameters written by :meth:`save` (or ``sitecheck harmonise``); InputError naming
-        the file if it cannot be read or is not a parameters file."""
+        """Read parameters written by :meth:`save` (or ``sitecheck harmonise``), with the keys saved
+        beside them in :attr:`saved_with`; InputError naming the file if it cannot be read or is not
+        a parameters file."""
         import json
 
         try:
@@ -859,7 +864,8 @@ class HarmonisationFit:
 
     @classmethod
     def from_dict(cls, d: dict) -> "HarmonisationFit":
-        """Restore a fit from :meth:`to_dict` output; InputError if malformed."""
+        """Restore a fit from :meth:`to_dict` output (other keys go to :attr:`saved_with`);
+        InputError if malformed."""
         try:
             if d.get("format") != PARAMS_FORMAT:
                 raise InputError(f"parameters file: format {d.get('format')!r} is not {PARAMS_FORMAT!r}")
@@ -883,7 +889,8 @@ class HarmonisationFit:
                        lower=_unarr(d["lower"]) if "lower" in d else None,
                        upper=_unarr(d["upper"]) if "upper" in d else None,
                        site_grid=_unarr(d["site_grid"]).reshape(-1, p) if "site_grid" in d else None,
-                       log_offset=_unarr(d["log_offset"]) if "log_offset" in d else None)
+                       log_offset=_unarr(d["log_offset"]) if "log_offset" in d else None,
+                       saved_with={k: v for k, v in d.items() if k not in _PARAMETER_KEYS})
         except InputError:
             raise
         except (KeyError, TypeError, ValueError, AttributeError) as exc:

@@ -148,7 +148,7 @@ class HarmonisedTable:
 def harmonise_table(raw, *, site: Optional[str], method: Optional[str] = None, protect: Sequence[str] = (),
                     identifiers: Sequence[str] = (), excluded: Sequence[str] = (), outcome: Optional[str] = None,
                     despite_findings: bool = False, seed: int = 0,
-                    parameters: Optional[dict] = None) -> HarmonisedTable:
+                    parameters=None) -> HarmonisedTable:
     """Fit a harmonisation on a table (or apply saved ``parameters``) and return the harmonised frame.
 
     Refuses (InputError) when a column to harmonise carries a blocking fingerprint
@@ -177,9 +177,11 @@ def harmonise_table(raw, *, site: Optional[str], method: Optional[str] = None, p
     despite_findings : bool, default False
         Harmonise despite blocking findings (with a warning).
     seed : int, default 0
-    parameters : dict, optional
-        A saved parameters document (:meth:`HarmonisedTable.parameters`) to apply to new rows of the
-        same sites.
+    parameters : HarmonisationFit or dict, optional
+        Saved parameters to apply to new rows of the same sites: a fit from
+        :meth:`HarmonisationFit.load <sitecheck.harmonise.methods.HarmonisationFit.load>` (its
+        ``saved_with`` holds the site column and the columns left unchanged) or the saved document
+        (:meth:`HarmonisedTable.parameters`).
 
     Returns
     -------
@@ -197,8 +199,8 @@ def harmonise_table(raw, *, site: Optional[str], method: Optional[str] = None, p
         if method is not None or protect:
             raise InputError("applying saved parameters takes the method and protected columns from them; "
                              "give neither a method nor protected columns")
-        fit = HarmonisationFit.from_dict(parameters)
-        site_col = site or parameters.get("site_column")
+        fit = parameters if isinstance(parameters, HarmonisationFit) else HarmonisationFit.from_dict(parameters)
+        site_col = site or fit.saved_with.get("site_column")
         if not site_col:
             raise InputError("no site column: name the site column", option="site")
         if site_col not in frame.columns:
@@ -214,7 +216,7 @@ def harmonise_table(raw, *, site: Optional[str], method: Optional[str] = None, p
         D, _ = protected_design(frame.loc[has], [s["name"] for s in fit.protect], spec=fit.protect)
         Xh = apply_harmoniser(fit, X, codes, design=D, random_state=stream_key(seed, "harmonise.apply"))
         Xh, clipped = clip_to_range(fit, Xh)
-        left = dict(parameters.get("left_unchanged", {}))
+        left = dict(fit.saved_with.get("left_unchanged", {}))
     else:
         if not site:
             raise InputError("no site column: name the site column", option="site")
