@@ -66,6 +66,7 @@ from sitecheck.analyses.leakage import LeakageResult, grouped_permutation_import
 from sitecheck.analyses.models import fit_classifier, make_booster
 from sitecheck.table.prepare import Prepared
 from sitecheck.analyses.probe import cross_fit
+from sitecheck.analyses.stats import SortedScores
 
 #: Bootstrap resamples handled per vectorised block (bounds memory at block x n floats).
 BOOT_BLOCK = 32
@@ -110,35 +111,6 @@ def _auc_ci(y: np.ndarray, score: np.ndarray, *, n_boot: int, random_state: int)
         return None, None
     auc, (lo, hi) = binary_auc_ci(y, score, n_boot=n_boot, random_state=random_state)
     return _f(auc), (_f(lo), _f(hi))
-
-
-class SortedScores:
-    """Scores sorted once, for the weighted AUCs of many bootstrap resamples.
-
-    :meth:`aucs` gives, for each row of a weight matrix, the area under the
-    ROC curve with case weights and ties counted one half: the weighted
-    Mann-Whitney probability P(score+ > score-) + P(tie) / 2 (Hanley & McNeil
-    1982), O(n) per resample.
-    """
-
-    def __init__(self, score: np.ndarray, y: np.ndarray):
-        score = np.asarray(score, dtype=float)
-        self.order = np.argsort(score, kind="mergesort")
-        s = score[self.order]
-        self.starts = np.flatnonzero(np.r_[True, s[1:] != s[:-1]]) if len(s) else np.zeros(0, int)
-        self.y = np.asarray(y, dtype=float)[self.order]
-
-    def aucs(self, W: np.ndarray) -> np.ndarray:
-        """AUC for each row of ``W`` (B, n), weights in the original row order."""
-        W = np.atleast_2d(np.asarray(W, dtype=float))
-        Ws = W[:, self.order]
-        pos = np.add.reduceat(Ws * self.y, self.starts, axis=1)
-        neg = np.add.reduceat(Ws * (1.0 - self.y), self.starts, axis=1)
-        below = np.cumsum(neg, axis=1) - neg
-        num = np.sum(pos * (below + 0.5 * neg), axis=1)
-        den = pos.sum(axis=1) * neg.sum(axis=1)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            return np.where(den > 0, num / np.where(den > 0, den, 1.0), np.nan)
 
 
 def youden_threshold(y: np.ndarray, score: np.ndarray) -> float:
