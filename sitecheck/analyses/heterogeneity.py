@@ -45,6 +45,7 @@ import numpy as np
 from scipy import optimize as _opt
 from scipy import stats as _st
 
+from sitecheck._records import fields_dict
 from sitecheck._runtime import generator
 from sitecheck.errors import ParameterError
 
@@ -265,7 +266,7 @@ class NullSummary:
     q95: Optional[float]
 
     def to_dict(self) -> Dict[str, Any]:
-        return {"median": _f(self.median), "q95": _f(self.q95)}
+        return fields_dict(self, number=_f)
 
 
 @dataclass(frozen=True)
