@@ -47,6 +47,7 @@ from scipy import stats as _st
 
 from sitecheck._records import fields_dict
 from sitecheck._runtime import generator
+from sitecheck.analyses.stats import finite_or_none
 from sitecheck.errors import ParameterError
 
 Interval = Optional[Tuple[float, float]]
@@ -58,11 +59,7 @@ SCALE = ("Freeman-Tukey double arcsine t = (asin(sqrt(x/(n+1))) + asin(sqrt((x+1
          "sampling variance 1/(4n+2); defined at rates of 0 and 1, no continuity correction")
 
 
-def _f(x: Any) -> Optional[float]:
-    if x is None:
-        return None
-    x = float(x)
-    return None if math.isnan(x) or math.isinf(x) else x
+_f = finite_or_none
 
 
 def _ci(pair: Interval) -> Optional[list]:

@@ -66,7 +66,7 @@ from sitecheck.analyses.leakage import LeakageResult, grouped_permutation_import
 from sitecheck.analyses.models import fit_classifier, make_booster
 from sitecheck.table.prepare import Prepared
 from sitecheck.analyses.probe import cross_fit
-from sitecheck.analyses.stats import SortedScores
+from sitecheck.analyses.stats import SortedScores, finite_or_none
 
 #: Bootstrap resamples handled per vectorised block (bounds memory at block x n floats).
 BOOT_BLOCK = 32
@@ -74,11 +74,7 @@ BOOT_BLOCK = 32
 Interval = Optional[Tuple[float, float]]
 
 
-def _f(x: Any) -> Optional[float]:
-    if x is None:
-        return None
-    x = float(x)
-    return None if math.isnan(x) or math.isinf(x) else x
+_f = finite_or_none
 
 
 def _ci(pair: Any) -> Optional[List[Optional[float]]]:

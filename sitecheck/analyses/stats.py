@@ -10,6 +10,7 @@ seed or a :class:`numpy.random.Generator`).
 """
 from __future__ import annotations
 
+import math
 from typing import List, Optional, Sequence, Tuple
 
 import numpy as np
@@ -276,6 +277,21 @@ def wilson_ci(k, n, alpha: float = 0.05) -> Tuple[float, float]:
     centre = (p + z * z / (2 * n)) / den
     half = z * np.sqrt(p * (1 - p) / n + z * z / (4 * n * n)) / den
     return (float(max(0.0, centre - half)), float(min(1.0, centre + half)))
+
+
+def finite_or_none(x) -> Optional[float]:
+    """``x`` as a float; None for a missing, NaN or infinite value (what JSON can hold).
+
+    Examples
+    --------
+    >>> from sitecheck.analyses.stats import finite_or_none
+    >>> finite_or_none(0.25), finite_or_none(float("nan")), finite_or_none(None)
+    (0.25, None, None)
+    """
+    if x is None:
+        return None
+    x = float(x)
+    return None if math.isnan(x) or math.isinf(x) else x
 
 
 def round_sig(x, digits: int = 6) -> Optional[float]:
