@@ -185,3 +185,32 @@ def test_one_weighted_auc_for_integer_and_fractional_weights():
         assert got[b] == pytest.approx(roc_auc_score(y, score, sample_weight=frac[b]), rel=1e-12)
     assert np.isnan(s.aucs(np.where(y == 1, 1, 0)[None, :])[0])  # no negative weight left
     assert np.isnan(stats.SortedScores(np.zeros(0), np.zeros(0)).aucs(np.zeros((2, 0)))).all()
+
+
+def test_widened_interval_is_the_corrected_resampled_t_interval_when_folds_vary_more():
+    # Nadeau & Bengio (2003): half-width t(0.975, K-1) * sqrt((1/K + n_test/n_train) * s^2), with the
+    # t quantile from scipy.stats. A symmetric bootstrap interval of +-1.96 bootstrap SDs is stretched
+    # to exactly that half-width when the fold spread dominates.
+    from scipy import stats as st
+
+    folds = [0.61, 0.66, 0.58, 0.69, 0.63]
+    ratio = 0.25
+    sd_b = 0.004
+    boot = 0.63 + sd_b * np.r_[np.ones(100), -np.ones(100)] / np.sqrt(200 / 199)  # sample SD exactly sd_b
+    z = st.norm.ppf(0.975)
+    (lo, hi), r = stats.widened_ci(0.63, (0.63 - z * sd_b, 0.63 + z * sd_b), boot, folds, ratio)
+    half = st.t.ppf(0.975, 4) * np.sqrt((1 / 5 + ratio) * np.var(folds, ddof=1))
+    assert hi - 0.63 == pytest.approx(half, rel=1e-9) and 0.63 - lo == pytest.approx(half, rel=1e-9)
+    assert r == pytest.approx(half / (z * sd_b), rel=1e-9)
+    # a bootstrap interval already wider than the t interval is kept as it is
+    (lo2, hi2), r2 = stats.widened_ci(0.63, (0.4, 0.8), np.tile([0.4, 0.8], 100), folds, ratio)
+    assert (lo2, hi2, r2) == (0.4, 0.8, 1.0)
+
+
+def test_interval_below_chance_reaches_chance_and_others_are_unchanged():
+    assert stats.reach_chance((0.44, 0.49)) == (0.44, 0.5)
+    assert stats.reach_chance((0.47, 0.52)) == (0.47, 0.52)
+    assert stats.reach_chance((0.6, 0.7)) == (0.6, 0.7)
+    nan = float("nan")
+    lo, hi = stats.reach_chance((nan, nan))
+    assert np.isnan(lo) and np.isnan(hi)

@@ -282,12 +282,14 @@ def score_crossfit(y, fit: CrossFit, *, n_boot: int = 500, n_permutations: int =
     fold_cls = stats.fold_class_aucs(y, fit.proba, fit.folds)
     ratio = _test_train_ratio(fit.folds)
     ci, widen = stats.widened_ci(auc, stats.percentile_ci(boot_macro), boot_macro, stats.fold_macro(fold_cls), ratio)
+    ci = stats.reach_chance(ci)
     p = None
     if n_permutations:
         p, _ = stats.fold_permutation_pvalue(y, fit.proba, fit.folds, n_permutations=n_permutations,
                                              random_state=rng)
     per = stats.ovr_aucs(y, fit.proba)
-    per_ci = tuple(stats.widened_ci(per[c], stats.percentile_ci(cls[:, c]), cls[:, c], fold_cls[:, c], ratio)[0]
+    per_ci = tuple(stats.reach_chance(stats.widened_ci(per[c], stats.percentile_ci(cls[:, c]), cls[:, c],
+                                                       fold_cls[:, c], ratio)[0])
                    for c in range(cls.shape[1]))
     return ProbeScore(auc=float(auc), auc_ci=ci, p_value=p, n=int(len(y)), model=fit.model,
                       n_boot=int(n_boot), n_permutations=int(n_permutations),
@@ -511,7 +513,9 @@ class ProbeResult:
             "n_boot": s.n_boot,
             "n_permutations": s.n_permutations,
             "interval_method": ("95% percentile interval, stratified (by site) bootstrap of out-of-fold predictions, "
-                                "stretched when the fold-to-fold spread (Nadeau-Bengio corrected) is larger"),
+                                "stretched when the fold-to-fold spread is larger (Nadeau-Bengio corrected resampled t, "
+                                "K - 1 degrees of freedom); an interval wholly below 0.5 (cross-fitting's bias on data "
+                                "with no signal) is extended up to 0.5"),
             "ci_widening": s.ci_widening,
             "fold_auc": list(s.fold_auc),
             "p_value_method": ("label permutation within each held-out fold against that fold's predictions "
