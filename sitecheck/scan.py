@@ -152,7 +152,8 @@ def debug_enabled() -> bool:
 
 def _run_specs(preps, options: ScanOptions, names, objects: Dict[str, Any],
                say: Progress, timings: Dict[str, float], threads: Optional[int] = 1,
-               failures: Optional[Dict[str, Any]] = None, process: str = "main") -> Dict[str, Any]:
+               failures: Optional[Dict[str, Any]] = None, process: str = "main",
+               wait_for: Optional[Callable[[str], None]] = None) -> Dict[str, Any]:
     """Run the named analyses in turn with native thread pools limited to ``threads``
     (None: no limit); fill ``objects``. ``preps`` is one Prepared or {"given", "repaired",
     "residual"}: each analysis reads the one its ``on`` names.
@@ -161,6 +162,8 @@ def _run_specs(preps, options: ScanOptions, names, objects: Dict[str, Any],
     user can fix, which stops the scan) is recorded in ``failures`` as an
     :class:`~sitecheck.analyses.registry.AnalysisFailure` and the next one runs; an analysis that
     needs a failed one is recorded as not run. With ``SITECHECK_DEBUG`` set the exception is raised.
+    ``wait_for(name)``, when given, is called for each analysis a spec needs before it runs (the
+    scan's way to collect a result computed in its second process).
     """
     from sitecheck.analyses import registry as analyses
 
@@ -168,6 +171,9 @@ def _run_specs(preps, options: ScanOptions, names, objects: Dict[str, Any],
     for spec in analyses.REGISTRY:
         if spec.name not in names:
             continue
+        if wait_for is not None:
+            for d in spec.needs:
+                wait_for(d)
         blocked = [d for d in spec.needs if d in failures and d not in spec.falls_back_without]
         if blocked:
             failures[spec.name] = analyses.AnalysisFailure.blocked(spec, blocked[0], process=process)
@@ -240,12 +246,13 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
     failures: Dict[str, Any] = dict(failed or {})
     preps = {"given": prep, "repaired": repaired if (repaired is not None and options.repair) else prep,
              "residual": repaired if repaired is not None else prep}
-    todo = [a for a in analyses.REGISTRY if options.wants(a.part_of or a.name) and a.applies(_prep_for(preps, a))
+    todo = [a for a in analyses.REGISTRY if options.wants(a.part_of or a.serves or a.name)
+            and a.applies(_prep_for(preps, a))
             and (a.on != "residual" or repaired is not None)]
     names = {a.name for a in todo} - set(done) - set(failures)
     needed = {d for a in todo for d in a.needs}
     side = [a.name for a in sorted(todo, key=lambda a: -a.cost(_prep_for(preps, a)))
-            if not a.needs and a.name not in needed and a.name in names]
+            if not a.needs and (a.name not in needed or a.serves) and a.name in names]
     spec_of = {a.name: a for a in todo}
     objects: Dict[str, Any] = dict(done)
     if int(options.n_jobs) > 1 and side and len(side) < len(todo) and prep.n_total <= PARALLEL_MAX_ROWS:
@@ -273,7 +280,47 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
                         future.add_done_callback(submit_next)
 
             submit_next()
-            _run_specs(preps, options, names - set(side), objects, say, timings, failures=failures)
+            collected, lost = set(), []
+
+            def collect(name):
+                """Fold in the second process's result for ``name`` (waiting for it); once."""
+                if name in collected or name not in futures:
+                    return
+                collected.add(name)
+                try:
+                    side_objects, side_timings, side_failures = futures[name].result()
+                except BrokenProcessPool:
+                    lost.append(name)
+                    return
+                except InputError:
+                    raise
+                except Exception as exc:  # raised outside the analysis (e.g. its result would not pickle)
+                    if debug_enabled():
+                        raise
+                    failures[name] = analyses.AnalysisFailure.from_exception(by_name[name], exc, process="second")
+                    return
+                objects.update(side_objects)
+                timings.update(side_timings)
+                failures.update(side_failures)
+
+            def wait_for(name):
+                """An analysis about to run here needs ``name``: take it from the queue, or wait for it."""
+                with lock:
+                    queued = name in queue
+                    if queued:
+                        queue.remove(name)
+                if queued:
+                    _run_specs(preps, options, {name}, objects, say, timings, failures=failures)
+                    return
+                if name in futures and not futures[name].done():
+                    say(f"waiting for {name}")
+                collect(name)
+                if name in lost:  # the second process died with it: run it here
+                    lost.remove(name)
+                    _run_specs(preps, options, {name}, objects, say, timings, failures=failures)
+
+            _run_specs(preps, options, names - set(side), objects, say, timings, failures=failures,
+                       wait_for=wait_for)
             while True:  # list scheduling: both processes take the next queued task when free
                 with lock:
                     if not queue:
@@ -281,25 +328,10 @@ def run_analyses(prep: Prepared, options: ScanOptions, *, progress: Optional[Pro
                     name = queue.pop(0)
                 _run_specs(preps, options, {name}, objects, say, timings, failures=failures)
             remote = [name for name in side if name in futures]
-            if any(not futures[name].done() for name in remote):
-                say(f"waiting for {', '.join(remote)}")
-            lost = []
+            if any(not futures[name].done() for name in remote if name not in collected):
+                say(f"waiting for {', '.join(n for n in remote if n not in collected)}")
             for name in remote:
-                try:
-                    side_objects, side_timings, side_failures = futures[name].result()
-                except BrokenProcessPool:
-                    lost.append(name)
-                    continue
-                except InputError:
-                    raise
-                except Exception as exc:  # raised outside the analysis (e.g. its result would not pickle)
-                    if debug_enabled():
-                        raise
-                    failures[name] = analyses.AnalysisFailure.from_exception(by_name[name], exc, process="second")
-                    continue
-                objects.update(side_objects)
-                timings.update(side_timings)
-                failures.update(side_failures)
+                collect(name)
         if lost:
             # The second process could not start or died (for instance a script that calls the
             # scan at import time, without an ``if __name__ == "__main__":`` guard, is run again

@@ -6,8 +6,9 @@ os.environ.setdefault("MPLBACKEND", "Agg")
 # One native thread per process for the whole suite (and for the command lines it starts): the test
 # tables are small, where OpenMP's fork-join and spinning threads cost more than they gain, and CI runs
 # the suite on 2 shared cores. Measured on this machine under load: two tests with plain scikit-learn
-# boosters took 75.6 CPU s with the default threads and 44.4 with one. Results do not depend on it
-# (HistGradientBoosting sums its histograms per feature; a scan already limits small tables to one).
+# boosters took 75.6 CPU s with the default threads and 44.4 with one. A scan's numbers do not depend on it
+# (a scan already runs tables of up to 200,000 rows on one thread per analysis); reference fits in the tests
+# are compared within stated tolerances.
 for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_var, "1")
 

@@ -757,9 +757,35 @@ class ResidualSignal:
         })
 
 
+def residual_probe(prep_repaired, *, n_boot: int = 500, n_permutations: int = 199,
+                   random_state: Optional[int] = None):
+    """The scan's boosting probe refitted on the repaired values (same rows, folds and seed).
+
+    The part of :func:`residual_signal` that needs neither the scan's probe nor its leak
+    ranking, so that a scan can run it at the same time as those (in its second process).
+
+    Parameters
+    ----------
+    prep_repaired : Prepared
+    n_boot : int, default 500
+    n_permutations : int, default 199
+    random_state : int, optional (default: the scan seed)
+
+    Returns
+    -------
+    ProbeResult
+        Boosting only: no linear second opinion, case-mix, within-outcome or group probes.
+    """
+    from sitecheck.analyses.probe import site_probe
+
+    seed = int(prep_repaired.seed if random_state is None else random_state)
+    return site_probe(prep_repaired, n_boot=n_boot, n_permutations=n_permutations, linear=False, case_mix=False,
+                      within_outcome=False, groups=False, random_state=seed)
+
+
 def residual_signal(prep_repaired, probe, leakage, applied: Sequence[Dict[str, Any]], *, top: int = 10,
                     n_boot: int = 500, n_permutations: int = 199, max_rows_per_fold: int = 4000,
-                    random_state: Optional[int] = None) -> ResidualSignal:
+                    random_state: Optional[int] = None, refit=None) -> ResidualSignal:
     """Probe the repaired values again and compare with the scan's probe.
 
     Parameters
@@ -779,6 +805,9 @@ def residual_signal(prep_repaired, probe, leakage, applied: Sequence[Dict[str, A
         Label permutations per fold for the repaired probe's p-value.
     max_rows_per_fold : int, default 4000
     random_state : int, optional (default: the scan seed)
+    refit : ProbeResult, optional
+        :func:`residual_probe` of ``prep_repaired`` with the same ``n_boot``,
+        ``n_permutations`` and ``random_state``, when computed apart; else it is computed here.
 
     Returns
     -------
@@ -788,15 +817,14 @@ def residual_signal(prep_repaired, probe, leakage, applied: Sequence[Dict[str, A
     from sitecheck.analyses import stats
     from sitecheck.analyses.leakage import grouped_permutation_importance
     from sitecheck.table.prepare import stratified_subsample
-    from sitecheck.analyses.probe import site_probe, verdict
 
     seed = int(prep_repaired.seed if random_state is None else random_state)
     given = probe.score
     if not applied:
         return ResidualSignal(given.auc, tuple(given.auc_ci), None, None, None, None, None, None, int(given.n), 0,
                               (), (), None, "no safe repair applied: the site signal is that of the values as given")
-    res = site_probe(prep_repaired, n_boot=n_boot, n_permutations=n_permutations, linear=False, case_mix=False,
-                     within_outcome=False, groups=False, random_state=seed)
+    res = refit if refit is not None else residual_probe(prep_repaired, n_boot=n_boot, n_permutations=n_permutations,
+                                                         random_state=seed)
     y = prep_repaired.site
     paired = len(probe.crossfit.proba) == len(y)
     diff, diff_ci = None, None
