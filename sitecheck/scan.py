@@ -95,10 +95,15 @@ class ScanOptions:
     harmonise_methods: Optional[tuple] = None
 
     def __post_init__(self):
+        from sitecheck.reading.config import SCAN_OPTION_KEYS, check_option
+
+        for name in SCAN_OPTION_KEYS:  # the checks of the config file's [options] (one place)
+            if getattr(self, name) is not None:
+                check_option(name, getattr(self, name))
         for name, low in (("n_boot", 50), ("n_permutations", 19)):
             v = getattr(self, name)
             if v is not None and (isinstance(v, bool) or not isinstance(v, (int, np.integer)) or v < low):
-                raise InputError(f"{name} must be an integer of at least {low} (or None), got {v!r}")
+                raise InputError(f"{name} must be an integer of at least {low} (or None), got {v!r}", option=name)
         if self.harmonise_methods is not None:
             from sitecheck.harmonise.methods import METHODS
 

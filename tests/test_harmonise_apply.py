@@ -150,3 +150,30 @@ def test_apply_flag_conflicts_and_bad_parameter_files(fitted, tmp_path):
     _one_line_error(_cli(["harmonise", str(p), "--apply", params, "--out", o]),
                     "site 'Thornbury' is not one of the fitted sites")
     assert not (tmp_path / "o.csv").exists()
+
+
+def test_load_keeps_the_keys_saved_beside_the_parameters(fitted, tmp_path):
+    # the command writes the table's keys beside the fit; load gives them back in saved_with (not in to_dict),
+    # and harmonise_table applies a loaded fit exactly as it applies the saved document
+    from sitecheck.errors import ParameterError
+    from sitecheck.harmonise.methods import HarmonisationFit
+    from sitecheck.harmonise.table import harmonise_table
+    from sitecheck.reading.intake import read_table
+
+    _, data, out = fitted
+    path = str(out["combat"][1])
+    doc = json.loads(open(path, encoding="utf-8").read())
+    fit = HarmonisationFit.load(path)
+    assert fit.saved_with["site_column"] == "hospital" == doc["site_column"]
+    assert set(fit.saved_with) == {"site_column", "input_sha256", "rows_fitted", "left_unchanged"}
+    assert not set(fit.saved_with) & set(fit.to_dict())
+    again = str(tmp_path / "again.json")
+    fit.save(again)
+    assert json.loads(open(again, encoding="utf-8").read()) == doc  # a loaded fit saves the same file
+    raw = read_table(str(data))
+    a = harmonise_table(raw, site=None, parameters=fit, despite_findings=True)
+    b = harmonise_table(raw, site=None, parameters=doc, despite_findings=True)
+    pd.testing.assert_frame_equal(a.frame, b.frame, check_exact=True)
+    assert a.left_unchanged == b.left_unchanged == doc["left_unchanged"]
+    with pytest.raises(ParameterError, match=r"extra must not use the parameters' own keys, got \['method'\]"):
+        fit.save(again, method="centre")

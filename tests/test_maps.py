@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy.optimize import brentq
 
-from sitecheck.errors import InputError
+from sitecheck.errors import InputError, ParameterError
 from sitecheck.analyses.maps import compute_maps, embed, expected_random, kernel_weights, lisi, summarise_lisi
 
 
@@ -92,11 +92,32 @@ def test_expected_random_unequal_sites():
     assert expected_random([50, 30, 20]) == pytest.approx(1 / 0.38)
 
 
-def test_lisi_rejects_bad_input():
-    with pytest.raises(InputError):
-        lisi(np.zeros((5, 2)), [0, 1], perplexity=3)
-    with pytest.raises(InputError):
-        lisi(np.zeros((5, 2)), [0, 1, 0, 1, 0], perplexity=1)
+def _parameter_error(call, text):
+    """A wrong parameter is a programming error (exit 3), not an InputError (exit 2), and says which."""
+    with pytest.raises(ParameterError) as info:
+        call()
+    assert not isinstance(info.value, InputError) and text in str(info.value), str(info.value)
+
+
+def test_lisi_rejects_bad_parameters():
+    _parameter_error(lambda: lisi(np.zeros((5, 2)), [0, 1], perplexity=3), "2 labels for 5 rows")
+    _parameter_error(lambda: lisi(np.zeros((5, 2)), [0, 1, 0, 1, 0], perplexity=1),
+                     "perplexity must be greater than 1, got 1")
+    _parameter_error(lambda: lisi(np.zeros(5), [0, 1, 0, 1, 0], perplexity=3), "X must be a 2-D matrix, got shape (5,)")
+    _parameter_error(lambda: lisi(np.zeros((2, 2)), [0, 1], perplexity=3), "X must have at least 3 rows, got 2")
+
+
+def test_embed_and_tsne_reject_bad_parameters():
+    from sitecheck.analyses.maps import tsne_map
+
+    Z = np.random.default_rng(0).normal(size=(30, 3))
+    _parameter_error(lambda: embed(Z, methods=("pca", "mds")), "methods must be some of ['pca', 'tsne', 'umap'], "
+                                                               "got unknown ['mds']")
+    _parameter_error(lambda: tsne_map(Z, gradient="exact"), "gradient must be 'fft' or 'bh', got 'exact'")
+    _parameter_error(lambda: tsne_map(Z, max_iter=100), "max_iter must be at least the 250 early-exaggeration "
+                                                         "iterations, got 100")
+    with pytest.raises(InputError, match="at least 5 rows, got 4"):  # too small a table: the user's data
+        embed(Z[:4], methods=("pca",))
 
 
 # ----------------------------------------------------------------- embeddings and the analysis
@@ -145,8 +166,9 @@ def test_compute_maps_contract_and_determinism(maps_demo, demo_prepared):
 
 
 def test_compute_maps_validates_cap(demo_prepared):
-    with pytest.raises(InputError, match="map_rows"):
-        compute_maps(demo_prepared, max_rows=3)
+    # the library names its own parameter (the scan's option map_rows is checked by ScanOptions)
+    _parameter_error(lambda: compute_maps(demo_prepared, max_rows=3), "max_rows must be an integer of at least 50, got 3")
+    _parameter_error(lambda: compute_maps(demo_prepared, max_rows=2.5e3), "got 2500.0")
 
 
 # ----------------------------------------------------------------- figures and section
@@ -271,8 +293,8 @@ def test_maps_computed_apart_and_merged_equal_maps_computed_together(demo_prepar
     assert json.dumps(merged.to_dict(), sort_keys=False) == json.dumps(together.to_dict(), sort_keys=False)
     for m in ("pca", "tsne", "umap"):
         assert np.array_equal(merged.coords[m], together.coords[m])
-    with pytest.raises(InputError):
-        merge_maps(together, together)  # the same map twice
+    _parameter_error(lambda: merge_maps(together, together),  # the same map twice
+                     "first and second must hold different maps; both hold ['pca', 'tsne', 'umap']")
 
 
 # ----------------------------------------------------------------- t-SNE: FFT interpolation against today's map

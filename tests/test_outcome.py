@@ -5,7 +5,7 @@ import pandas as pd
 import pytest
 from sklearn.metrics import confusion_matrix, roc_auc_score, roc_curve
 
-from sitecheck.errors import InputError
+from sitecheck.errors import InputError, ParameterError
 from sitecheck.reading.intake import frame_to_raw
 from sitecheck.analyses.outcome import (outcome_folds, outcome_risk, prevalence_by_site, rates_at, site_association,
                                site_only_scores, SortedScores, youden_threshold)
@@ -294,14 +294,34 @@ def test_given_threshold_and_invalid_options():
     pred = res.pooled_scores >= 0.3
     y = prep.outcome[res.rows]
     assert sum(r["tpr"] * r["n_pos"] for r in eo["per_site"].values()) == pytest.approx(np.sum(pred & (y == 1)))
-    with pytest.raises(InputError, match="threshold"):
-        outcome_risk(prep, threshold=1.5)
-    with pytest.raises(InputError, match="n_boot"):
-        outcome_risk(prep, n_boot=3)
-    with pytest.raises(InputError, match="min_rate_count"):
-        outcome_risk(prep, min_rate_count=0)
-    with pytest.raises(InputError, match="n_permutations"):
-        outcome_risk(prep, n_permutations=-1)
+    # wrong parameters are programming errors (ParameterError, exit 3), not input errors (exit 2)
+    for kw, text in ((dict(threshold=1.5), "threshold must be a number strictly between 0 and 1, got 1.5"),
+                     (dict(n_boot=3), "n_boot must be an integer of at least 50, got 3"),
+                     (dict(n_repeats=0), "n_repeats must be an integer of at least 1, got 0"),
+                     (dict(importance_rows=10), "importance_rows must be an integer of at least 50, got 10"),
+                     (dict(min_rate_count=0), "min_rate_count must be an integer of at least 1, got 0"),
+                     (dict(n_permutations=-1), "n_permutations must be an integer of at least 0, got -1")):
+        with pytest.raises(ParameterError) as info:
+            outcome_risk(prep, **kw)
+        assert not isinstance(info.value, InputError) and str(info.value) == text
+
+
+def test_rates_at_needs_a_seed_for_its_permutation_null():
+    y = np.array([1, 0, 1, 0, 1, 0, 1, 0])
+    unit = np.array([0, 0, 0, 0, 1, 1, 1, 1])
+    with pytest.raises(ParameterError, match="random_state must be .* got None") as info:
+        rates_at(y, y, unit, ["A", "B"], threshold=0.5, rule="given", n_permutations=19, random_state=None)
+    assert not isinstance(info.value, InputError)
+    seeded = rates_at(y, y, unit, ["A", "B"], threshold=0.5, rule="given", n_permutations=19, random_state=0)
+    assert [(r.label, r.tpr, r.fpr) for r in seeded.per_unit] == [("A", 1.0, 0.0), ("B", 1.0, 0.0)]
+
+
+def test_outcome_analysis_without_an_outcome_is_an_input_error():
+    frame = synth(300, seed=5).drop(columns="y")
+    table = assign_roles(frame_to_raw(frame), RoleSpec(site="site"))
+    with pytest.raises(InputError, match="needs an outcome column") as info:
+        outcome_risk(prepare(table, random_state=0), n_boot=50)
+    assert info.value.option == "outcome"  # the command line names its flag
 
 
 def test_leak_scores_from_leakage_result_are_used():

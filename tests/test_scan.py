@@ -163,3 +163,21 @@ def test_cli_writes_report_and_exits_3_with_one_line(tmp_path):
     assert "&lt;b&gt;fault&lt;/b&gt;" in html
     md = (out / "findings.md").read_text(encoding="utf-8")
     assert "## Analyses that failed" in md and "The leakage analysis did not run" in md
+
+
+def test_scan_options_are_checked_as_the_config_file_checks_them():
+    # one check for the config file, the command line and the Python API: an InputError naming the
+    # option and the value, whose `option` lets the command line name the flag
+    from sitecheck.errors import InputError
+
+    for kw, text in ((dict(map_rows=20), "map_rows must be at least 100, got 20"),
+                     (dict(folds=1), "folds must be between 2 and 20, got 1"),
+                     (dict(threshold=1.5), "threshold must lie in (0, 1), got 1.5"),
+                     (dict(max_rows=50.5), "max_rows must be a whole number, got 50.5"),
+                     (dict(censor_policy="halve"), "censor_policy must be one of"),
+                     (dict(n_boot=10), "n_boot must be an integer of at least 50 (or None), got 10")):
+        with pytest.raises(InputError) as info:
+            ScanOptions(**kw)
+        assert str(info.value).startswith(text) and info.value.option == next(iter(kw)), str(info.value)
+    ok = ScanOptions(map_rows=100, folds=20, threshold=0.5, censor_policy=None)
+    assert (ok.map_rows, ok.folds, ok.threshold) == (100, 20, 0.5)

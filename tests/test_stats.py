@@ -37,7 +37,7 @@ def test_bootstrap_weights_give_exact_resample_aucs():
     assert np.array_equal(W[:, y == 0].sum(axis=1), np.full(4, (y == 0).sum()))  # stratified: class totals kept
     for c in range(3):
         for tie_free in (P[:, c], P[:, c] + np.linspace(0, 1e-6, len(y))):
-            got = stats._SortedClass(y == c, tie_free).aucs(W)
+            got = stats.SortedScores(tie_free, y == c).aucs(W)
             ref = [roc_auc_score(np.repeat(y == c, w), np.repeat(tie_free, w)) for w in W]
             np.testing.assert_allclose(got, ref, atol=1e-12)
 
@@ -168,6 +168,23 @@ def test_bh_keeps_missing_pvalues_missing():
     assert np.isnan(got[[1, 4]]).all()
     ok = ~np.isnan(p)
     np.testing.assert_allclose(got[ok], multipletests(p[ok], method="fdr_bh")[1], atol=1e-12)
+
+
+def test_one_weighted_auc_for_integer_and_fractional_weights():
+    # the bootstrap's integer multiplicities and the outcome analysis's float weights go through one class
+    rng = np.random.default_rng(8)
+    score = np.round(rng.normal(size=300), 1)  # ties
+    y = (rng.random(300) < 1 / (1 + np.exp(-score))).astype(int)
+    W = rng.integers(0, 4, (6, 300))
+    s = stats.SortedScores(score, y)
+    assert np.array_equal(s.aucs(W), s.aucs(W.astype(float)))  # exact either way
+    frac = rng.random((3, 300))
+    got = s.aucs(frac)
+    for b in range(3):
+        # Reference: sklearn.metrics.roc_auc_score with sample_weight (ties count one half).
+        assert got[b] == pytest.approx(roc_auc_score(y, score, sample_weight=frac[b]), rel=1e-12)
+    assert np.isnan(s.aucs(np.where(y == 1, 1, 0)[None, :])[0])  # no negative weight left
+    assert np.isnan(stats.SortedScores(np.zeros(0), np.zeros(0)).aucs(np.zeros((2, 0)))).all()
 
 
 def test_widened_interval_is_the_corrected_resampled_t_interval_when_folds_vary_more():

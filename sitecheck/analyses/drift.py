@@ -100,6 +100,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats as _st
 
+from sitecheck._records import fields_dict
 from sitecheck._runtime import stream
 from sitecheck.errors import ParameterError
 
@@ -468,12 +469,7 @@ class PeriodProbe:
     left_out: Tuple[str, ...] = ()
 
     def to_dict(self) -> dict:
-        return {"site": self.site, "n": int(self.n), "split_date": self.split_date, "auc": _r(self.auc),
-                "auc_ci": [_r(v) for v in self.auc_ci], "covariate_auc": _r(self.covariate_auc),
-                "covariate_auc_ci": [_r(v) for v in self.covariate_auc_ci], "increment": _r(self.increment),
-                "increment_ci": [_r(v) for v in self.increment_ci],
-                "increment_ci_adjusted": [_r(v) for v in self.increment_ci_adjusted], "flagged": bool(self.flagged),
-                "left_out": list(self.left_out)}
+        return fields_dict(self, number=_r)
 
 
 @dataclass(frozen=True)

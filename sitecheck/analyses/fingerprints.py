@@ -48,6 +48,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats as _st
 
+from sitecheck._records import fields_dict
 from sitecheck.report.result import to_jsonable as _jsonable
 from sitecheck.errors import InputError, ParameterError
 from sitecheck.table.units import TEMPERATURE, candidate_factors, conversions_for, is_temperature
@@ -93,9 +94,7 @@ class Fingerprint:
     suggested_fix: str = ""
 
     def to_dict(self) -> dict:
-        return {"feature": self.feature, "site": self.site, "kind": self.kind, "detail": self.detail,
-                "evidence": _jsonable(self.evidence), "severity": self.severity,
-                "explanation": self.explanation, "suggested_fix": self.suggested_fix}
+        return fields_dict(self, convert=_jsonable)
 
 
 @dataclass(frozen=True)
@@ -130,11 +129,7 @@ class FingerprintResult:
         return [f for f in self.findings if f.kind == kind]
 
     def to_dict(self) -> dict:
-        return {"findings": [f.to_dict() for f in self.findings], "tests": _jsonable(self.tests),
-                "n_rows": int(self.n_rows), "features": list(self.features),
-                "covariates": list(self.covariates), "params": _jsonable(self.params),
-                "skipped": dict(self.skipped),
-                "unit_columns": _jsonable(self.unit_columns)}
+        return fields_dict(self, convert=_jsonable)
 
 
 

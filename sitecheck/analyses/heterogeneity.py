@@ -45,6 +45,9 @@ import numpy as np
 from scipy import optimize as _opt
 from scipy import stats as _st
 
+from sitecheck._records import fields_dict
+from sitecheck._runtime import generator
+from sitecheck.analyses.stats import finite_or_none
 from sitecheck.errors import ParameterError
 from sitecheck.analyses.stats import plain_permutation_pvalue_floor
 
@@ -57,11 +60,7 @@ SCALE = ("Freeman-Tukey double arcsine t = (asin(sqrt(x/(n+1))) + asin(sqrt((x+1
          "sampling variance 1/(4n+2); defined at rates of 0 and 1, no continuity correction")
 
 
-def _f(x: Any) -> Optional[float]:
-    if x is None:
-        return None
-    x = float(x)
-    return None if math.isnan(x) or math.isinf(x) else x
+_f = finite_or_none
 
 
 def _ci(pair: Interval) -> Optional[list]:
@@ -265,7 +264,7 @@ class NullSummary:
     q95: Optional[float]
 
     def to_dict(self) -> Dict[str, Any]:
-        return {"median": _f(self.median), "q95": _f(self.q95)}
+        return fields_dict(self, number=_f)
 
 
 @dataclass(frozen=True)
@@ -468,11 +467,6 @@ def rate_heterogeneity(x, n, labels: Sequence[str], *, min_count: int = MIN_COUN
         raise ParameterError(f"min_count must be a positive integer, got {min_count!r}")
     if not isinstance(n_permutations, (int, np.integer)) or isinstance(n_permutations, bool) or n_permutations < 0:
         raise ParameterError(f"n_permutations must be a non-negative integer, got {n_permutations!r}")
-    if isinstance(random_state, np.random.Generator):
-        rng = random_state
-    elif isinstance(random_state, (int, np.integer)) and not isinstance(random_state, bool):
-        rng = np.random.default_rng(int(random_state))
-    else:
-        raise ParameterError("random_state must be an integer seed or a numpy Generator")
+    rng = generator(random_state)
     return _heterogeneity(x.astype(np.int64), n.astype(np.int64), [str(s) for s in labels], int(min_count),
                           int(n_permutations), rng, float(alpha), True)

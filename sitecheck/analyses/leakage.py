@@ -24,6 +24,7 @@ from scipy import stats as sps
 from scipy.cluster import hierarchy
 from scipy.spatial.distance import squareform
 
+from sitecheck._records import fields_dict
 from sitecheck._runtime import derived_seed, native_threads, stream, thread_limit
 from sitecheck.errors import InputError
 from sitecheck.table.prepare import Prepared
@@ -277,8 +278,7 @@ class LeakEntry:
     missing_by_site: dict
 
     def to_dict(self) -> dict:
-        return {"feature": self.feature, "score": self.score, "score_ci": list(self.score_ci), "rank": self.rank,
-                "cluster": self.cluster, "univariate": self.univariate, "missing_by_site": self.missing_by_site}
+        return fields_dict(self)
 
 
 @dataclass(frozen=True)
@@ -290,8 +290,7 @@ class ClusterEntry:
     source: str
 
     def to_dict(self) -> dict:
-        return {"id": self.id, "members": list(self.members), "score": self.score, "score_ci": list(self.score_ci),
-                "source": self.source}
+        return fields_dict(self)
 
 
 @dataclass(frozen=True)

@@ -27,13 +27,12 @@ from sklearn.decomposition import PCA
 from sklearn.metrics import silhouette_samples
 from sklearn.neighbors import NearestNeighbors
 
-from sitecheck.errors import InputError
+from sitecheck._runtime import derived_seed, generator, stream
+from sitecheck.errors import InputError, ParameterError
 from sitecheck.table.prepare import Prepared, stratified_subsample
 
 METHODS: Tuple[str, ...] = ("pca", "tsne", "umap")
 
-#: Stream of :meth:`Prepared.rng` used by this module (keeps analyses independent).
-_STREAM = 5
 #: Spaces whose mixing is scored, in report order: the preprocessed design, then each map.
 _SPACES: Tuple[str, ...] = ("features",) + METHODS
 
@@ -129,16 +128,16 @@ def lisi(X, labels, *, perplexity: float = 30.0, n_neighbors: Optional[int] = No
     """
     X = np.asarray(X, dtype=float)
     if X.ndim != 2:
-        raise InputError(f"lisi needs a 2-D matrix, got shape {X.shape}")
+        raise ParameterError(f"X must be a 2-D matrix, got shape {X.shape}")
     n = X.shape[0]
     _, codes = np.unique(np.asarray(labels), return_inverse=True)
     codes = codes.ravel()
     if len(codes) != n:
-        raise InputError(f"lisi: {len(codes)} labels for {n} rows")
+        raise ParameterError(f"labels must have one entry per row of X: {len(codes)} labels for {n} rows")
     if n < 3:
-        raise InputError("lisi needs at least 3 rows")
+        raise ParameterError(f"X must have at least 3 rows, got {n}")
     if not perplexity > 1:
-        raise InputError(f"perplexity must be greater than 1, got {perplexity!r}")
+        raise ParameterError(f"perplexity must be greater than 1, got {perplexity!r}")
     idx, P = kernel_weights(X, perplexity=perplexity, n_neighbors=n_neighbors)
     L = int(codes.max()) + 1
     flat = (np.arange(n)[:, None] * L + codes[idx]).ravel()
@@ -218,7 +217,7 @@ def summarise_lisi(values, site, site_labels: Sequence[str], *, n_boot: int = 20
     """
     values = np.asarray(values, dtype=float)
     site = np.asarray(site, dtype=np.int64)
-    rng = random_state if isinstance(random_state, np.random.Generator) else np.random.default_rng(random_state)
+    rng = generator(random_state)
     counts = np.bincount(site, minlength=len(site_labels))
     exp = expected_random(counts[counts > 0])
     q = [100 * alpha / 2, 100 * (1 - alpha / 2)]
@@ -246,7 +245,7 @@ def silhouette_by_site(X, site, site_labels: Sequence[str], *, max_rows: int = 3
     interval over rows and the mean by site. Near 0 or below: sites overlap;
     near 1: sites form separate, compact clusters."""
     site = np.asarray(site, dtype=np.int64)
-    rng = random_state if isinstance(random_state, np.random.Generator) else np.random.default_rng(random_state)
+    rng = generator(random_state)
     if len(np.unique(site)) < 2:
         return {"value": None, "ci": [None, None], "n": int(len(site)), "per_site": {}}
     idx = stratified_subsample(site, int(max_rows), rng)
@@ -428,9 +427,9 @@ def tsne_map(Z, *, perplexity: float = 30.0, max_iter: int = 350, random_state: 
         raise InputError(f"maps need at least 5 rows, got {n}")
     max_iter = int(max_iter)
     if gradient not in ("fft", "bh"):
-        raise ValueError(f"gradient must be 'fft' or 'bh', got {gradient!r}")
+        raise ParameterError(f"gradient must be 'fft' or 'bh', got {gradient!r}")
     if max_iter < TSNE_EARLY_ITER:
-        raise ValueError(f"max_iter must be at least the {TSNE_EARLY_ITER} early-exaggeration iterations, "
+        raise ParameterError(f"max_iter must be at least the {TSNE_EARLY_ITER} early-exaggeration iterations, "
                          f"got {max_iter}")
     seed = int(random_state)
     jobs = 1 if threads is None else max(1, int(threads))
@@ -512,7 +511,7 @@ def embed(Z, *, methods: Sequence[str] = METHODS, random_state: int = 0, tsne_ma
     n, d = Z.shape
     unknown = [m for m in methods if m not in METHODS]
     if unknown:
-        raise InputError(f"unknown map method(s) {unknown}; choose from {list(METHODS)}")
+        raise ParameterError(f"methods must be some of {list(METHODS)}, got unknown {unknown}")
     if n < 5:
         raise InputError(f"maps need at least 5 rows, got {n}")
     seed = int(random_state)
@@ -648,15 +647,14 @@ def compute_maps(prep: Prepared, *, max_rows: int = 10_000, methods: Sequence[st
     and validation of cluster analysis. J. Comput. Appl. Math. 20, 53-65.
     """
     if not isinstance(max_rows, (int, np.integer)) or max_rows < 50:
-        raise InputError(f"map_rows must be an integer of at least 50, got {max_rows!r}")
+        raise ParameterError(f"max_rows must be an integer of at least 50, got {max_rows!r}")
     seed = prep.seed if random_state is None else int(random_state)
-    rng = np.random.default_rng([seed, _STREAM])
-    idx = stratified_subsample(prep.site, int(max_rows), rng)
+    idx = stratified_subsample(prep.site, int(max_rows), stream(seed, "maps"))
     site = prep.site[idx]
     Z = preprocess(prep.X[idx], prep.features.categorical)
     if Z.shape[1] == 0:
         raise InputError("no feature column is usable for the maps")
-    coords, settings = embed(Z, methods=methods, random_state=seed, tsne_max_iter=tsne_max_iter,
+    coords, settings = embed(Z, methods=methods, random_state=derived_seed(seed, "maps.embedding"), tsne_max_iter=tsne_max_iter,
                              umap_n_epochs=umap_n_epochs, perplexity=perplexity, tsne_threads=tsne_threads)
     n = len(idx)
     perp = float(min(perplexity, max(1.5, (n - 1) / 3.0)))
@@ -665,7 +663,7 @@ def compute_maps(prep: Prepared, *, max_rows: int = 10_000, methods: Sequence[st
     sil: Dict[str, Dict[str, Any]] = {}
     for space, M in spaces.items():
         # one generator per space, so that maps computed apart and merged give the same numbers
-        space_rng = np.random.default_rng([seed, _STREAM, _SPACES.index(space)])
+        space_rng = stream(seed, "maps", _SPACES.index(space))
         values = lisi(M, site, perplexity=perp)
         mixing[space] = summarise_lisi(values, site, prep.site_labels, n_boot=n_boot, random_state=space_rng)
         sil[space] = silhouette_by_site(M, site, prep.site_labels, n_boot=n_boot, random_state=space_rng)
@@ -699,13 +697,14 @@ def merge_maps(first: MapsResult, second: MapsResult) -> MapsResult:
 
     Raises
     ------
-    InputError
+    ParameterError
         When the two were drawn from different rows or share a map.
     """
     if not np.array_equal(first.rows, second.rows) or first.cap != second.cap:
-        raise InputError("maps computed on different rows cannot be merged")
+        raise ParameterError("first and second must be maps of the same rows (and cap) to be merged")
     if set(first.methods) & set(second.methods):
-        raise InputError(f"both results hold the map(s) {sorted(set(first.methods) & set(second.methods))}")
+        raise ParameterError(f"first and second must hold different maps; both hold "
+                             f"{sorted(set(first.methods) & set(second.methods))}")
 
     def ordered(a: Dict[str, Any], b: Dict[str, Any]) -> Dict[str, Any]:
         both = {**a, **b}

@@ -59,20 +59,14 @@ from sklearn.base import clone
 from sklearn.metrics import roc_curve
 from sklearn.model_selection import StratifiedKFold
 
-from sitecheck._runtime import SINGLE_THREAD_BELOW as _SINGLE_THREAD_BELOW, derived_seed, stream, thread_limit
-from sitecheck.errors import InputError
+from sitecheck._runtime import derived_seed, generator, native_threads, stream, thread_limit
+from sitecheck.errors import InputError, ParameterError
 from sitecheck.analyses.heterogeneity import MIN_COUNT, SCALE, RateHeterogeneity, rate_heterogeneity
 from sitecheck.analyses.leakage import LeakageResult, grouped_permutation_importance
 from sitecheck.analyses.models import fit_classifier, make_booster
 from sitecheck.table.prepare import Prepared
 from sitecheck.analyses.probe import cross_fit
-
-#: Generator stream of this analysis (keeps its bootstrap independent of others).
-RNG_STREAM = 7
-
-#: Below this many rows the models run on one OpenMP thread: thread start-up
-#: then costs more than it saves, and much more on a loaded machine.
-SINGLE_THREAD_BELOW = _SINGLE_THREAD_BELOW
+from sitecheck.analyses.stats import SortedScores, finite_or_none
 
 #: Bootstrap resamples handled per vectorised block (bounds memory at block x n floats).
 BOOT_BLOCK = 32
@@ -80,11 +74,7 @@ BOOT_BLOCK = 32
 Interval = Optional[Tuple[float, float]]
 
 
-def _f(x: Any) -> Optional[float]:
-    if x is None:
-        return None
-    x = float(x)
-    return None if math.isnan(x) or math.isinf(x) else x
+_f = finite_or_none
 
 
 def _ci(pair: Any) -> Optional[List[Optional[float]]]:
@@ -117,35 +107,6 @@ def _auc_ci(y: np.ndarray, score: np.ndarray, *, n_boot: int, random_state: int)
         return None, None
     auc, (lo, hi) = binary_auc_ci(y, score, n_boot=n_boot, random_state=random_state)
     return _f(auc), (_f(lo), _f(hi))
-
-
-class SortedScores:
-    """Scores sorted once, for the weighted AUCs of many bootstrap resamples.
-
-    :meth:`aucs` gives, for each row of a weight matrix, the area under the
-    ROC curve with case weights and ties counted one half: the weighted
-    Mann-Whitney probability P(score+ > score-) + P(tie) / 2 (Hanley & McNeil
-    1982), O(n) per resample.
-    """
-
-    def __init__(self, score: np.ndarray, y: np.ndarray):
-        score = np.asarray(score, dtype=float)
-        self.order = np.argsort(score, kind="mergesort")
-        s = score[self.order]
-        self.starts = np.flatnonzero(np.r_[True, s[1:] != s[:-1]]) if len(s) else np.zeros(0, int)
-        self.y = np.asarray(y, dtype=float)[self.order]
-
-    def aucs(self, W: np.ndarray) -> np.ndarray:
-        """AUC for each row of ``W`` (B, n), weights in the original row order."""
-        W = np.atleast_2d(np.asarray(W, dtype=float))
-        Ws = W[:, self.order]
-        pos = np.add.reduceat(Ws * self.y, self.starts, axis=1)
-        neg = np.add.reduceat(Ws * (1.0 - self.y), self.starts, axis=1)
-        below = np.cumsum(neg, axis=1) - neg
-        num = np.sum(pos * (below + 0.5 * neg), axis=1)
-        den = pos.sum(axis=1) * neg.sum(axis=1)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            return np.where(den > 0, num / np.where(den > 0, den, 1.0), np.nan)
 
 
 def youden_threshold(y: np.ndarray, score: np.ndarray) -> float:
@@ -515,9 +476,7 @@ def rates_at(y: np.ndarray, pred: np.ndarray, unit: np.ndarray, labels: Sequence
     tci, fci = spread_ci if spread_ci is not None else (None, None)
     th = fh = None
     if n_permutations is not None:
-        if random_state is None:
-            raise InputError("rates_at needs random_state (an integer seed or a Generator) for the permutation null")
-        rng = random_state if isinstance(random_state, np.random.Generator) else np.random.default_rng(random_state)
+        rng = generator(random_state)  # a ParameterError for None: the permutation null is always seeded
         labs = [r.label for r in per]
         th = rate_heterogeneity([r.tp for r in per], [r.n_pos for r in per], labs, min_count=min_count,
                                 n_permutations=n_permutations, random_state=rng)
@@ -624,7 +583,7 @@ def outcome_risk(prep: Prepared, *, leakage: Optional[LeakageResult] = None, thr
     rows within each site. Whether the TPR and FPR differ across sites beyond
     sampling noise is read from their heterogeneity (tau^2, Q-profile interval,
     I^2) and its permutation null, computed on the fixed out-of-fold
-    predictions (no refitting). Tables with fewer than ``SINGLE_THREAD_BELOW`` rows
+    predictions (no refitting). Tables with fewer than ``sitecheck._runtime.SINGLE_THREAD_BELOW`` rows
     are modelled on one thread (results do not depend on it).
 
     References
@@ -637,30 +596,26 @@ def outcome_risk(prep: Prepared, *, leakage: Optional[LeakageResult] = None, thr
     Wilson, E. B. (1927). JASA 22, 209-212.
     Breiman, L. (2001). Random forests. Machine Learning 45, 5-32.
     """
-    if prep.outcome is not None and int(np.sum(~np.isnan(prep.outcome))) < SINGLE_THREAD_BELOW:
-        with thread_limit(1, user_api="openmp"):
-            return _outcome_risk(prep, leakage=leakage, threshold=threshold, n_boot=n_boot, n_repeats=n_repeats,
-                                 importance_rows=importance_rows, top_k=top_k, min_importance=min_importance,
-                                 max_iter=max_iter, min_rate_count=min_rate_count,
-                                 n_permutations=n_permutations, random_state=random_state)
-    return _outcome_risk(prep, leakage=leakage, threshold=threshold, n_boot=n_boot, n_repeats=n_repeats,
-                         importance_rows=importance_rows, top_k=top_k, min_importance=min_importance,
-                         max_iter=max_iter, min_rate_count=min_rate_count, n_permutations=n_permutations,
-                         random_state=random_state)
+    rows = 0 if prep.outcome is None else int(np.sum(~np.isnan(prep.outcome)))
+    with thread_limit(native_threads(rows) if prep.outcome is not None else None, user_api="openmp"):
+        return _outcome_risk(prep, leakage=leakage, threshold=threshold, n_boot=n_boot, n_repeats=n_repeats,
+                             importance_rows=importance_rows, top_k=top_k, min_importance=min_importance,
+                             max_iter=max_iter, min_rate_count=min_rate_count, n_permutations=n_permutations,
+                             random_state=random_state)
 
 
 def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_rows, top_k, min_importance,
                   max_iter, min_rate_count, n_permutations, random_state) -> OutcomeRisk:
     name = prep.table.outcome or "outcome"
     if prep.outcome is None:
-        raise InputError("the outcome analysis needs an outcome column; none was given")
+        raise InputError("the outcome analysis needs an outcome column; none was given", option="outcome")
     if threshold is not None:
         if not isinstance(threshold, (int, float)) or not (0.0 < float(threshold) < 1.0):
-            raise InputError(f"threshold must be a number strictly between 0 and 1, got {threshold!r}")
+            raise ParameterError(f"threshold must be a number strictly between 0 and 1, got {threshold!r}")
     for opt, val, lo in (("n_boot", n_boot, 50), ("n_repeats", n_repeats, 1), ("importance_rows", importance_rows, 50),
                          ("min_rate_count", min_rate_count, 1), ("n_permutations", n_permutations, 0)):
         if not isinstance(val, (int, np.integer)) or isinstance(val, bool) or val < lo:
-            raise InputError(f"{opt} must be an integer of at least {lo}, got {val!r}")
+            raise ParameterError(f"{opt} must be an integer of at least {lo}, got {val!r}")
     seed = int(prep.seed if random_state is None else random_state)
 
     keep = ~np.isnan(prep.outcome)
@@ -693,7 +648,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
 
     # the shortcut ceiling: site label alone
     s_score = site_only_scores(y, site, folds)
-    so_auc, so_ci = _auc_ci(y, s_score, n_boot=n_boot, random_state=seed)
+    so_auc, so_ci = _auc_ci(y, s_score, n_boot=n_boot, random_state=derived_seed(seed, "outcome.site_only_ci"))
 
     # baseline model (the probe's family and settings), pooled cross-fit
     yi = y.astype(np.int64)
@@ -750,7 +705,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
                                             dtype=np.int64), levels)
 
     # joint site-stratified bootstrap of the held-out predictions: gap and rate spreads
-    rng = prep.rng(RNG_STREAM)
+    rng = stream(seed, "outcome")
     members = [np.flatnonzero(site == i) for i in range(len(labels))]
     s_oof = SortedScores(oof, y)
     s_site = {i: SortedScores(loso_pred[members[i]], y[members[i]]) for i in ok_sites}

@@ -177,17 +177,11 @@ def cross_fit(X, y, categorical, folds, *, model: str = "boosting", random_state
 
         maps, pooled = level_maps_for(X, cat, booster_max_bins(k))
         X = apply_level_maps(X, maps)
-    with thread_limit(_threads(len(y))):
+    with thread_limit(native_threads(len(y))):
         fit = _cross_fit(X, y, cat, folds, model, seed, k)
     if pooled:
         fit = replace(fit, pooled=pooled, level_maps=maps)
     return fit
-
-
-#: Below this many rows (sitecheck._runtime.SINGLE_THREAD_BELOW) boosting runs single-threaded: OpenMP start-up and spin-waiting cost
-#: far more than they save on small fits, and badly so when other processes share the cores
-#: (measured: 1,000 rows x 20 features, 4 classes: 1.5 s with 2 threads, 0.16 s with 1).
-_threads = native_threads
 
 
 def _cross_fit(X, y, cat, folds, model, seed, k) -> CrossFit:

@@ -23,6 +23,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any, Dict, List, Optional, Tuple
 
+from sitecheck._records import fields_dict
+
 RULE = ("a fingerprinted feature whose leak-ranking drop interval includes 0 is explained by, in order: "
         "the correlated group or panel it was permuted with, when the group's drop interval lies above 0; the highest-ranked leaking feature (interval "
         "above 0) fingerprinted at the same site; the leaking feature with the largest |SMD| of that site "
@@ -73,11 +75,7 @@ class Redundancy:
     via_smd: Optional[float] = None
 
     def to_dict(self) -> Dict[str, Any]:
-        return {"feature": self.feature, "site": self.site, "kind": self.kind, "rank": self.rank,
-                "score": self.score, "score_ci": list(self.score_ci), "reason": self.reason, "via": list(self.via),
-                "via_rank": self.via_rank, "via_score": self.via_score,
-                "via_score_ci": None if self.via_score_ci is None else list(self.via_score_ci),
-                "via_kind": self.via_kind, "via_smd": self.via_smd}
+        return fields_dict(self)
 
 
 @dataclass(frozen=True)

@@ -10,6 +10,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any, Callable, Dict, List, Optional, Union
 
+from sitecheck._records import fields_dict
+
 
 @dataclass(frozen=True)
 class Analysis:
@@ -100,8 +102,7 @@ class AnalysisFailure:
                    message=f"not run: it needs the {needed} analysis, which failed", process=process)
 
     def to_dict(self) -> Dict[str, Any]:
-        return {"analysis": self.analysis, "sections": list(self.sections), "status": self.status,
-                "error": self.error, "message": self.message, "process": self.process}
+        return fields_dict(self)
 
 
 def _resampling(options, **defaults):

@@ -10,23 +10,20 @@ seed or a :class:`numpy.random.Generator`).
 """
 from __future__ import annotations
 
+import math
 from typing import List, Optional, Sequence, Tuple
 
 import numpy as np
 from scipy import stats as _st
 
+from sitecheck._runtime import generator
 from sitecheck.errors import ParameterError
 
 #: Resamples handled per vectorised block (bounds memory at block x n floats).
 _BLOCK = 64
 
 
-def _rng(random_state) -> np.random.Generator:
-    if isinstance(random_state, np.random.Generator):
-        return random_state
-    if random_state is None or isinstance(random_state, (bool, np.bool_)):
-        raise ParameterError("random_state must be an integer seed or a numpy Generator")
-    return np.random.default_rng(random_state)
+_rng = generator
 
 
 def _check_y_proba(y, proba) -> Tuple[np.ndarray, np.ndarray]:
@@ -103,22 +100,39 @@ def macro_ovr_auc(y, proba) -> float:
     return float(np.mean([binary_auc(y == c, proba[:, c]) for c in cols]))
 
 
-class _SortedClass:
-    """Pre-sorted scores of one one-vs-rest problem, for weighted AUCs of many resamples.
+class SortedScores:
+    """Scores sorted once, for the weighted AUCs of many resamples (the one weighted AUC).
 
-    With integer multiplicities ``w`` (a stratified bootstrap keeps each class's total
-    fixed), ``U = sum_{i pos} w_i G_i - n_pos^2 / 2`` where ``G_i`` is the weight of all
-    rows scored below row i plus half the weight of its ties (positives' pairs among
-    themselves contribute exactly ``n_pos^2 / 2``). Everything is computed in integers
-    (twice G), so the result is exact.
+    :meth:`aucs` gives, for each row of a weight matrix, the area under the ROC curve with case
+    weights and ties counted one half: the weighted Mann-Whitney probability
+    P(score+ > score-) + P(tie) / 2 (Hanley & McNeil 1982), O(n) per resample after one sort.
+    With ``G_i`` the weight of all rows scored below row i plus half the weight of its ties and
+    ``P`` the positives' total weight, ``U = sum_{i pos} w_i G_i - P^2 / 2`` (the positives' pairs
+    among themselves contribute exactly ``P^2 / 2``) and the AUC is ``U / (P N)``. Integer weights
+    (bootstrap multiplicities) are summed in integers, so the result is exact; float weights in
+    floating point.
+
+    Parameters
+    ----------
+    score : array of shape (n,)
+    y : array of shape (n,)
+        1 (or True) for the positive class.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from sitecheck.analyses.stats import SortedScores
+    >>> s = SortedScores(np.array([0.1, 0.4, 0.4, 0.8]), np.array([0, 0, 1, 1]))
+    >>> s.aucs(np.array([[1, 1, 1, 1], [2, 0, 1, 1]])).tolist()
+    [0.875, 1.0]
     """
 
-    def __init__(self, pos: np.ndarray, score: np.ndarray):
+    def __init__(self, score: np.ndarray, y: np.ndarray):
+        score = np.asarray(score, dtype=float)
         order = np.argsort(score, kind="mergesort")
         s = score[order]
-        pos = np.asarray(pos, dtype=bool)
         self.order = order
-        self.pos_rows = np.flatnonzero(pos)
+        self.pos_rows = np.flatnonzero(np.asarray(y) == 1)
         where = np.empty(len(order), dtype=np.int64)
         where[order] = np.arange(len(order))
         self.pos_sorted = where[self.pos_rows]          # sorted position of each positive
@@ -128,23 +142,29 @@ class _SortedClass:
             gid = np.cumsum(new) - 1
             self.pos_gid = gid[self.pos_sorted]
             self.ends = np.r_[np.flatnonzero(new)[1:] - 1, len(s) - 1]
-        self.n_pos = len(self.pos_rows)
         self.n = len(order)
 
     def aucs(self, W: np.ndarray) -> np.ndarray:
-        """AUC for each row of integer weights ``W`` (B, n), original row order; the
-        positives' total weight must be ``n_pos`` in every row (stratified resampling)."""
+        """AUC for each row of the weights ``W`` (B, n), in the original row order; NaN where a
+        resample has no weight on one of the classes."""
+        W = np.atleast_2d(np.asarray(W))
+        if self.n == 0:
+            return np.full(W.shape[0], np.nan)
+        acc = np.int64 if np.issubdtype(W.dtype, np.integer) else np.float64
         Ws = np.take(W, self.order, axis=1)
-        cum = np.cumsum(Ws, axis=1, dtype=np.int64)
+        cum = np.cumsum(Ws, axis=1, dtype=acc)
         if self.ties:
             at_end = cum[:, self.ends]
-            below = np.concatenate([np.zeros((W.shape[0], 1), dtype=np.int64), at_end[:, :-1]], axis=1)
+            below = np.concatenate([np.zeros((W.shape[0], 1), dtype=acc), at_end[:, :-1]], axis=1)
             two_g = (below + at_end)[:, self.pos_gid]
         else:
             two_g = 2 * cum[:, self.pos_sorted] - Ws[:, self.pos_sorted]
-        num2 = np.einsum("bi,bi->b", W[:, self.pos_rows].astype(np.int64), two_g)
-        n1 = float(self.n_pos)
-        return (num2 / 2.0 - n1 * n1 / 2.0) / (n1 * (self.n - n1))
+        w_pos = W[:, self.pos_rows].astype(acc)
+        num2 = np.einsum("bi,bi->b", w_pos, two_g)
+        n1 = w_pos.sum(axis=1)
+        den = n1 * (cum[:, -1] - n1)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where(den > 0, (num2 / 2.0 - n1 * n1 / 2.0) / np.where(den > 0, den, 1), np.nan)
 
 
 def stratified_bootstrap_weights(y, n_boot: int, rng: np.random.Generator) -> np.ndarray:
@@ -180,7 +200,7 @@ def bootstrap_class_aucs(y, probas: Sequence[np.ndarray], *, n_boot: int = 1000,
     probas = [_check_y_proba(y, p)[1] for p in probas]
     y = np.asarray(y).astype(np.int64)
     rng = _rng(random_state)
-    sorted_ = [[_SortedClass(y == c, p[:, c]) for c in range(p.shape[1])] for p in probas]
+    sorted_ = [[SortedScores(p[:, c], y == c) for c in range(p.shape[1])] for p in probas]
     out = [np.empty((n_boot, p.shape[1])) for p in probas]
     for start in range(0, n_boot, _BLOCK):
         b = min(_BLOCK, n_boot - start)
@@ -257,6 +277,21 @@ def wilson_ci(k, n, alpha: float = 0.05) -> Tuple[float, float]:
     centre = (p + z * z / (2 * n)) / den
     half = z * np.sqrt(p * (1 - p) / n + z * z / (4 * n * n)) / den
     return (float(max(0.0, centre - half)), float(min(1.0, centre + half)))
+
+
+def finite_or_none(x) -> Optional[float]:
+    """``x`` as a float; None for a missing, NaN or infinite value (what JSON can hold).
+
+    Examples
+    --------
+    >>> from sitecheck.analyses.stats import finite_or_none
+    >>> finite_or_none(0.25), finite_or_none(float("nan")), finite_or_none(None)
+    (0.25, None, None)
+    """
+    if x is None:
+        return None
+    x = float(x)
+    return None if math.isnan(x) or math.isinf(x) else x
 
 
 def round_sig(x, digits: int = 6) -> Optional[float]:

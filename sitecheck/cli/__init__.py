@@ -21,7 +21,8 @@ EXIT_ANALYSIS_FAILED = EXIT_INTERNAL
 #: The flag of each library setting that an InputError may name (``InputError.option``).
 OPTION_FLAGS = {"encoding": "--encoding", "sep": "--sep", "min_site_rows": "--min-site-rows", "site": "--site",
                 "min_cell": "--min-cell", "folds": "--folds", "seed": "--seed", "max_rows": "--max-rows",
-                "map_rows": "--map-rows", "outcome": "--outcome"}
+                "map_rows": "--map-rows", "outcome": "--outcome", "despite_findings": "--despite-findings",
+                "out": "--out"}
 
 
 class _Group(click.Group):

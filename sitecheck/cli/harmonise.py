@@ -8,7 +8,6 @@ raise :class:`~sitecheck.errors.InputError` (exit code 2, one line).
 from __future__ import annotations
 
 import io
-import json
 import os
 from typing import Dict, List, Optional, Sequence, Tuple
 
@@ -16,6 +15,7 @@ import click
 import numpy as np
 import pandas as pd
 
+from sitecheck._files import atomic_write_path, publish
 from sitecheck.errors import InputError
 
 def _original_frame(path: str, fmt: str, sep: Optional[str], encoding: str) -> pd.DataFrame:
@@ -28,17 +28,7 @@ def _original_frame(path: str, fmt: str, sep: Optional[str], encoding: str) -> p
                        compression="gzip" if fmt.endswith(".gz") else None)
 
 
-def _publish(path: str) -> str:
-    # atomic_write's temporary file is private (0600); give the table the usual permissions.
-    umask = os.umask(0)
-    os.umask(umask)
-    os.chmod(path, 0o666 & ~umask)
-    return path
-
-
 def _write_table(frame: pd.DataFrame, path: str, fmt: str, sep: Optional[str]) -> str:
-    from sitecheck.render.safety import atomic_write
-
     if fmt == "parquet":
         buf = io.BytesIO()
         frame.to_parquet(buf, index=False)
@@ -51,8 +41,7 @@ def _write_table(frame: pd.DataFrame, path: str, fmt: str, sep: Optional[str]) -
             import gzip
 
             data = gzip.compress(data, mtime=0)
-    out_dir = os.path.dirname(os.path.abspath(path))
-    return _publish(atomic_write(out_dir, os.path.basename(path), data))
+    return publish(atomic_write_path(path, data))
 
 
 def _same_file(a: str, b: str) -> bool:
@@ -66,7 +55,7 @@ def run_harmonise(data: str, *, site: Optional[str], method: Optional[str], prot
     """The command's work: read, call :func:`sitecheck.harmonise.table.harmonise_table`, write the table
     (each harmonised feature at the precision its recording grid needs) and the parameters; return a
     summary dict (paths, counts, warnings)."""
-    from sitecheck.harmonise.methods import grid_decimals
+    from sitecheck.harmonise.methods import HarmonisationFit, grid_decimals
     from sitecheck.harmonise.table import harmonise_table
     from sitecheck.reading.intake import detect_format, read_table
 
@@ -76,25 +65,20 @@ def run_harmonise(data: str, *, site: Optional[str], method: Optional[str], prot
     raw = read_table(data, sep=sep, encoding=encoding)
     if fmt_out != raw.format:
         raise InputError(f"--out {out}: write the table in the input's format ({raw.format})")
-    doc = None
+    saved = None
     if apply_path is not None:
         if method is not None or protect:
             raise InputError("--apply takes the method and protected columns from the parameters file; "
                              "drop --method and --protect")
         if params_path is not None:
             raise InputError("--params names the file to write when fitting; with --apply it is not used")
-        try:
-            with open(apply_path, encoding="utf-8") as fh:
-                doc = json.load(fh)
-        except OSError as exc:
-            raise InputError(f"--apply {apply_path}: cannot be read ({exc.strerror})") from None
-        except json.JSONDecodeError as exc:
-            raise InputError(f"--apply {apply_path}: not JSON ({exc.msg} at line {exc.lineno})") from None
-        if not isinstance(doc, dict):
-            raise InputError(f"--apply {apply_path}: not a parameters file")
         if _same_file(apply_path, out):
             raise InputError("--out must not be the parameters file")
-        if not (site or doc.get("site_column")):
+        try:
+            saved = HarmonisationFit.load(apply_path)
+        except InputError as exc:
+            raise InputError(f"--apply: {exc}") from None
+        if not (site or saved.saved_with.get("site_column")):
             raise InputError("no site column: pass --site COL")
     else:
         if not site:
@@ -106,15 +90,11 @@ def run_harmonise(data: str, *, site: Optional[str], method: Optional[str], prot
             raise InputError("--params must differ from the input and the --out file")
     res = harmonise_table(raw, site=site, method=method, protect=protect, identifiers=identifiers,
                           excluded=excluded, outcome=outcome, despite_findings=despite_findings, seed=seed,
-                          parameters=doc)
+                          parameters=saved)
     fit = res.fit
     written_params = None
-    if doc is None:
-        from sitecheck.render.safety import atomic_write
-
-        written_params = _publish(atomic_write(
-            os.path.dirname(os.path.abspath(params_path)), os.path.basename(params_path),
-            json.dumps(res.parameters(), indent=1, allow_nan=False, sort_keys=False) + "\n"))
+    if saved is None:
+        written_params = publish(fit.save(params_path, **res.file_keys))
     frame = raw.frame
     out_frame = _original_frame(data, raw.format, sep, encoding)
     if list(out_frame.columns) != list(frame.columns) or len(out_frame) != len(frame):

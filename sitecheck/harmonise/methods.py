@@ -62,6 +62,7 @@ from typing import Any, Dict, List, Optional, Sequence, Tuple
 import numpy as np
 import pandas as pd
 
+from sitecheck._runtime import derived_seed, native_threads, stream, stream_key, thread_limit
 from sitecheck.errors import InputError, ParameterError
 
 METHODS = ("centre", "scale", "quantile", "combat")
@@ -77,6 +78,11 @@ BLOCKING_KINDS = ("unit_ratio", "missing_code", "censored_below", "censored_abov
 
 #: Version tag written into saved parameter files.
 PARAMS_FORMAT = "sitecheck.harmonise/1"
+
+#: Keys of :meth:`HarmonisationFit.to_dict` (any other key of a saved file is kept in ``saved_with``).
+_PARAMETER_KEYS = ("format", "method", "features", "adjusted", "unchanged", "site_labels", "protect", "alpha",
+                   "sigma", "n_design", "beta", "gamma", "delta", "n", "combat", "grid", "lower", "upper",
+                   "site_grid", "log_offset", "quantiles", "pooled_quantiles")
 
 
 # ---------------------------------------------------------------------------
@@ -741,6 +747,10 @@ class HarmonisationFit:
     log_offset : ndarray (p,)
         ``c`` of the log scale ``log(x + c)`` the feature was fitted on; NaN:
         fitted on its own scale.
+    saved_with : dict
+        Keys saved beside the parameters (:meth:`save`'s ``extra``, such as the site column of
+        the table it was fitted on), as :meth:`load` and :meth:`from_dict` found them; not part of
+        :meth:`to_dict`.
 
     Examples
     --------
@@ -778,6 +788,7 @@ class HarmonisationFit:
     upper: Optional[np.ndarray] = None
     site_grid: Optional[np.ndarray] = None
     log_offset: Optional[np.ndarray] = None
+    saved_with: Dict[str, Any] = field(default_factory=dict, compare=False, repr=False)
 
     def __post_init__(self):
         p = len(self.features)
@@ -820,29 +831,24 @@ class HarmonisationFit:
         return d
 
     def save(self, path: str, **extra) -> str:
-        """Write the parameters (:meth:`to_dict`, plus ``extra`` keys) as JSON to ``path``, atomically
-        (a temporary file beside it, then a rename); return the path."""
+        """Write the parameters (:meth:`to_dict`, then :attr:`saved_with` and ``extra`` keys) as JSON
+        to ``path``, atomically (a temporary file beside it, then a rename); return the path."""
         import json
-        import os
-        import tempfile
 
-        doc = {**self.to_dict(), **extra}
-        folder = os.path.dirname(os.path.abspath(path))
-        fd, tmp = tempfile.mkstemp(dir=folder, prefix=".sitecheck-", suffix=".json.tmp")
-        try:
-            with os.fdopen(fd, "w", encoding="utf-8") as fh:
-                fh.write(json.dumps(doc, indent=1, allow_nan=False) + "\n")
-            os.replace(tmp, path)
-        except BaseException:
-            if os.path.exists(tmp):
-                os.unlink(tmp)
-            raise
+        from sitecheck._files import atomic_write_path
+
+        doc = {**self.to_dict(), **self.saved_with, **extra}
+        clash = sorted(set(extra) & set(_PARAMETER_KEYS))
+        if clash:
+            raise ParameterError(f"extra must not use the parameters' own keys, got {clash}")
+        atomic_write_path(path, json.dumps(doc, indent=1, allow_nan=False) + "\n")
         return path
 
     @classmethod
     def load(cls, path: str) -> "HarmonisationFit":
-        """Read parameters written by :meth:`save` (or ``sitecheck harmonise``); InputError naming
-        the file if it cannot be read or is not a parameters file."""
+        """Read parameters written by :meth:`save` (or ``sitecheck harmonise``), with the keys saved
+        beside them in :attr:`saved_with`; InputError naming the file if it cannot be read or is not
+        a parameters file."""
         import json
 
         try:
@@ -858,7 +864,8 @@ class HarmonisationFit:
 
     @classmethod
     def from_dict(cls, d: dict) -> "HarmonisationFit":
-        """Restore a fit from :meth:`to_dict` output; InputError if malformed."""
+        """Restore a fit from :meth:`to_dict` output (other keys go to :attr:`saved_with`);
+        InputError if malformed."""
         try:
             if d.get("format") != PARAMS_FORMAT:
                 raise InputError(f"parameters file: format {d.get('format')!r} is not {PARAMS_FORMAT!r}")
@@ -882,7 +889,8 @@ class HarmonisationFit:
                        lower=_unarr(d["lower"]) if "lower" in d else None,
                        upper=_unarr(d["upper"]) if "upper" in d else None,
                        site_grid=_unarr(d["site_grid"]).reshape(-1, p) if "site_grid" in d else None,
-                       log_offset=_unarr(d["log_offset"]) if "log_offset" in d else None)
+                       log_offset=_unarr(d["log_offset"]) if "log_offset" in d else None,
+                       saved_with={k: v for k, v in d.items() if k not in _PARAMETER_KEYS})
         except InputError:
             raise
         except (KeyError, TypeError, ValueError, AttributeError) as exc:
@@ -1670,10 +1678,6 @@ def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, n
 # the scan's harmonisation check
 # ---------------------------------------------------------------------------
 
-#: Generator stream of this analysis.
-RNG_STREAM = 11
-
-
 @dataclass(frozen=True)
 class MethodCheck:
     """One method's result: site signal left, surviving gaps, outcome signal kept.
@@ -1820,34 +1824,32 @@ def outcome_auc_cv(X: np.ndarray, y: np.ndarray, site: np.ndarray, cat: np.ndarr
     is the probe's (:mod:`sitecheck.analyses.probe`), fitted per fold with the same
     seeds. Returns ``(auc, (lo, hi), n)`` with a stratified-bootstrap interval.
     """
-    from threadpoolctl import threadpool_limits
-
     from sitecheck.analyses import stats
-    from sitecheck.analyses.probe import _estimator, _threads
+    from sitecheck.analyses.probe import _estimator
     from sitecheck.analyses.models import fit_classifier
 
     y = np.asarray(y).astype(np.int64)
     score = np.full(len(y), np.nan)
     D = np.zeros((len(y), 0)) if design is None else design
-    with threadpool_limits(limits=_threads(len(y))):
+    with thread_limit(native_threads(len(y))):
         for f, (tr, te) in enumerate(folds):
             Xtr, Xte = X[tr], X[te]
             if method is not None:
-                stream = [int(seed), RNG_STREAM, METHODS.index(method), f, 7]
+                key = stream_key(seed, "harmonise", METHODS.index(method), f, 7)
                 fit = fit_harmoniser(Xtr, site[tr], method=method, site_labels=site_labels, feature_names=names,
                                      design=D[tr], protect_spec=protect_spec, categorical=leave,
-                                     unchanged_reason=reasons, log_skewed=True, random_state=stream + [1])
+                                     unchanged_reason=reasons, log_skewed=True, random_state=key + [1])
                 Dte = D[te].copy()
                 for c in outcome_cols:
                     Dte[:, c] = D[tr, c].mean()
-                Xtr = apply_harmoniser(fit, Xtr, site[tr], design=D[tr], clip=True, random_state=stream + [2])
-                Xte = apply_harmoniser(fit, Xte, site[te], design=Dte, clip=True, random_state=stream + [3])
-            est = _estimator(model, cat, 2, len(tr), random_state=seed + 1000 * f)
+                Xtr = apply_harmoniser(fit, Xtr, site[tr], design=D[tr], clip=True, random_state=key + [2])
+                Xte = apply_harmoniser(fit, Xte, site[te], design=Dte, clip=True, random_state=key + [3])
+            est = _estimator(model, cat, 2, len(tr), random_state=derived_seed(seed, "probe.fold_model", f))
             fit_classifier(est, Xtr, y[tr])
             proba = est.predict_proba(Xte)
             cls = list(np.asarray(est.classes_))
             score[te] = proba[:, cls.index(1)] if 1 in cls else 0.0
-    auc, ci = stats.binary_auc_ci(y, score, n_boot=n_boot, random_state=np.random.default_rng([seed, 78]))
+    auc, ci = stats.binary_auc_ci(y, score, n_boot=n_boot, random_state=stream(seed, "harmonise.outcome_ci"))
     return float(auc), (float(ci[0]), float(ci[1])), int(len(y))
 
 
@@ -1872,11 +1874,8 @@ def site_reprobe_cv(X: np.ndarray, site: np.ndarray, cat: np.ndarray, folds, *, 
     -------
     ProbeScore
     """
-    from threadpoolctl import threadpool_limits
-
-    from sitecheck._runtime import derived_seed
     from sitecheck.analyses.models import fit_classifier
-    from sitecheck.analyses.probe import CrossFit, _estimator, _threads, score_crossfit
+    from sitecheck.analyses.probe import CrossFit, _estimator, score_crossfit
 
     site = np.asarray(site).astype(np.int64)
     k = len(site_labels)
@@ -1884,14 +1883,14 @@ def site_reprobe_cv(X: np.ndarray, site: np.ndarray, cat: np.ndarray, folds, *, 
     D = np.zeros((len(site), 0)) if design is None else design
     fitted = []
     n_iter = []
-    with threadpool_limits(limits=_threads(len(site))):
+    with thread_limit(native_threads(len(site))):
         for f, (tr, te) in enumerate(folds):
-            stream = [int(seed), RNG_STREAM, METHODS.index(method), f]
+            key = stream_key(seed, "harmonise", METHODS.index(method), f)
             fit = fit_harmoniser(X[tr], site[tr], method=method, site_labels=site_labels, feature_names=names,
                                  design=D[tr], protect_spec=protect_spec, categorical=leave,
-                                 unchanged_reason=reasons, log_skewed=True, random_state=stream + [1])
-            Xtr = apply_harmoniser(fit, X[tr], site[tr], design=D[tr], clip=True, random_state=stream + [2])
-            Xte = apply_harmoniser(fit, X[te], site[te], design=D[te], clip=True, random_state=stream + [3])
+                                 unchanged_reason=reasons, log_skewed=True, random_state=key + [1])
+            Xtr = apply_harmoniser(fit, X[tr], site[tr], design=D[tr], clip=True, random_state=key + [2])
+            Xte = apply_harmoniser(fit, X[te], site[te], design=D[te], clip=True, random_state=key + [3])
             est = _estimator(model, cat, k, len(tr), random_state=derived_seed(seed, "probe.fold_model", f))
             fit_classifier(est, Xtr, site[tr])
             block = np.zeros((len(te), k))
@@ -1903,7 +1902,7 @@ def site_reprobe_cv(X: np.ndarray, site: np.ndarray, cat: np.ndarray, folds, *, 
     cf = CrossFit(proba=proba, models=tuple(fitted), folds=tuple(folds), classes=np.arange(k), model=model,
                   n_iter=tuple(n_iter))
     return score_crossfit(site, cf, n_boot=n_boot, n_permutations=n_permutations,
-                          random_state=np.random.default_rng([int(seed), 77]))
+                          random_state=stream(seed, "harmonise.reprobe"))
 
 
 def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Optional[Sequence[str]] = None,
@@ -1997,7 +1996,7 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
     X = prep.X
     y_out = prep.outcome
     # Rows and folds of the re-probes (harmonisation itself uses every row).
-    sub = stratified_subsample(prep.site, int(probe_rows), np.random.default_rng([seed, RNG_STREAM]))
+    sub = stratified_subsample(prep.site, int(probe_rows), stream(seed, "harmonise"))
     site_sub = prep.site[sub]
     folds = make_folds(site_sub, int(n_splits), random_state=seed)
     y_sub = None if y_out is None else y_out[sub]
@@ -2024,7 +2023,7 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
     for method in methods:
         Xh, fit = harmonise(X, prep.site, method=method, site_labels=prep.site_labels, feature_names=names,
                             design=D, protect_spec=spec, categorical=leave, unchanged_reason=reasons, clip=True,
-                            log_skewed=True, random_state=[seed, RNG_STREAM, METHODS.index(method), 99])
+                            log_skewed=True, random_state=stream_key(seed, "harmonise", METHODS.index(method), 99))
         score = site_reprobe_cv(X[sub], site_sub, cat, folds, method=method, seed=seed, n_boot=n_boot,
                                 n_permutations=n_permutations, model=model, site_labels=prep.site_labels,
                                 design=D_sub, protect_spec=spec, leave=leave, reasons=reasons, names=names)

@@ -10,6 +10,7 @@ from typing import Dict, List, Optional, Sequence, Tuple
 import numpy as np
 import pandas as pd
 
+from sitecheck._runtime import stream_key
 from sitecheck.errors import InputError
 from sitecheck.harmonise.methods import (HarmonisationFit, _prevalence_warning, apply_harmoniser, clip_to_range,
                                          fit_harmoniser, protected_design)
@@ -99,7 +100,8 @@ def _check_findings(raw, site, features, identifiers, excluded, outcome, despite
         return
     if not despite:
         raise InputError(f"not harmonised: {_blocking_line(found)} would be spread over every value of the site; "
-                         "repair them first (see `sitecheck scan`) or pass --despite-findings")
+                         "repair them first (a scan's repair plan lists the fixes) or set despite_findings",
+                         option="despite_findings")
     warnings.append(f"harmonised despite {len(found)} finding(s) that harmonisation cannot repair: "
                     f"{_blocking_line(found, None)}")
 
@@ -146,7 +148,7 @@ class HarmonisedTable:
 def harmonise_table(raw, *, site: Optional[str], method: Optional[str] = None, protect: Sequence[str] = (),
                     identifiers: Sequence[str] = (), excluded: Sequence[str] = (), outcome: Optional[str] = None,
                     despite_findings: bool = False, seed: int = 0,
-                    parameters: Optional[dict] = None) -> HarmonisedTable:
+                    parameters=None) -> HarmonisedTable:
     """Fit a harmonisation on a table (or apply saved ``parameters``) and return the harmonised frame.
 
     Refuses (InputError) when a column to harmonise carries a blocking fingerprint
@@ -175,9 +177,11 @@ def harmonise_table(raw, *, site: Optional[str], method: Optional[str] = None, p
     despite_findings : bool, default False
         Harmonise despite blocking findings (with a warning).
     seed : int, default 0
-    parameters : dict, optional
-        A saved parameters document (:meth:`HarmonisedTable.parameters`) to apply to new rows of the
-        same sites.
+    parameters : HarmonisationFit or dict, optional
+        Saved parameters to apply to new rows of the same sites: a fit from
+        :meth:`HarmonisationFit.load <sitecheck.harmonise.methods.HarmonisationFit.load>` (its
+        ``saved_with`` holds the site column and the columns left unchanged) or the saved document
+        (:meth:`HarmonisedTable.parameters`).
 
     Returns
     -------
@@ -195,8 +199,8 @@ def harmonise_table(raw, *, site: Optional[str], method: Optional[str] = None, p
         if method is not None or protect:
             raise InputError("applying saved parameters takes the method and protected columns from them; "
                              "give neither a method nor protected columns")
-        fit = HarmonisationFit.from_dict(parameters)
-        site_col = site or parameters.get("site_column")
+        fit = parameters if isinstance(parameters, HarmonisationFit) else HarmonisationFit.from_dict(parameters)
+        site_col = site or fit.saved_with.get("site_column")
         if not site_col:
             raise InputError("no site column: name the site column", option="site")
         if site_col not in frame.columns:
@@ -210,9 +214,9 @@ def harmonise_table(raw, *, site: Optional[str], method: Optional[str] = None, p
         _check_findings(raw, site_col, adjusted_cols, identifiers, excluded, outcome, despite_findings,
                         warnings)
         D, _ = protected_design(frame.loc[has], [s["name"] for s in fit.protect], spec=fit.protect)
-        Xh = apply_harmoniser(fit, X, codes, design=D, random_state=[int(seed), 2])
+        Xh = apply_harmoniser(fit, X, codes, design=D, random_state=stream_key(seed, "harmonise.apply"))
         Xh, clipped = clip_to_range(fit, Xh)
-        left = dict(parameters.get("left_unchanged", {}))
+        left = dict(fit.saved_with.get("left_unchanged", {}))
     else:
         if not site:
             raise InputError("no site column: name the site column", option="site")
@@ -229,8 +233,8 @@ def harmonise_table(raw, *, site: Optional[str], method: Optional[str] = None, p
         _check_findings(raw, site, adjust, identifiers, excluded, outcome, despite_findings, warnings)
         D, spec = protected_design(frame.loc[has], list(protect))
         fit = fit_harmoniser(X, codes, method=method, site_labels=labels, feature_names=adjust, design=D,
-                             protect_spec=spec, log_skewed=True, random_state=[int(seed), 1])
-        Xh = apply_harmoniser(fit, X, codes, design=D, random_state=[int(seed), 2])
+                             protect_spec=spec, log_skewed=True, random_state=stream_key(seed, "harmonise.fit"))
+        Xh = apply_harmoniser(fit, X, codes, design=D, random_state=stream_key(seed, "harmonise.apply"))
         Xh, clipped = clip_to_range(fit, Xh)
         if outcome and outcome not in protect:
             y = pd.to_numeric(frame.loc[has, outcome], errors="coerce").to_numpy(dtype=float, na_value=np.nan)

@@ -182,13 +182,36 @@ def load_config(path: Optional[str]) -> FileConfig:
     typed: Dict[str, Any] = {}
     for key, value in options.items():
         try:
-            typed[key] = _OPTION_CHECKS[key](value)
-        except (TypeError, ValueError) as exc:
-            msg = str(exc)
-            if not msg.startswith(key):
-                msg = f"{key} {msg}"
-            raise InputError(f"{path}: [options] {msg}") from None
+            typed[key] = check_option(key, value)
+        except InputError as exc:
+            raise InputError(f"{path}: [options] {exc}") from None
     return FileConfig(roles=RoleSpec(**kw), options=typed, path=path)
+
+
+def check_option(key: str, value: Any) -> Any:
+    """An option's value typed and checked, the same for the config file's ``[options]``, the
+    command line and :class:`~sitecheck.scan.ScanOptions`.
+
+    Raises
+    ------
+    InputError
+        Naming the option and the value; its ``option`` is ``key`` (the command line names the flag).
+
+    Examples
+    --------
+    >>> from sitecheck.reading.config import check_option
+    >>> check_option("folds", 3)
+    3
+    >>> check_option("map_rows", 20)
+    Traceback (most recent call last):
+    ...
+    sitecheck.errors.InputError: map_rows must be at least 100, got 20
+    """
+    try:
+        return _OPTION_CHECKS[key](value)
+    except (TypeError, ValueError) as exc:
+        msg = str(exc)
+        raise InputError(msg if msg.startswith(key) else f"{key} {msg}", option=key) from None
 
 
 @dataclass(frozen=True)

@@ -2,10 +2,10 @@
 CSV formula neutralisation and small-cell suppression (in one place)."""
 from __future__ import annotations
 
-import os
 import re
-import tempfile
 from typing import Any
+
+from sitecheck._files import atomic_write, confined  # noqa: F401  (the one atomic write; re-exported)
 
 _FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
 
@@ -14,32 +14,6 @@ def safe_name(text: str, *, max_len: int = 60) -> str:
     """A file-name fragment from data text: no separators, no dots at the start."""
     s = re.sub(r"[^0-9A-Za-z_-]+", "_", str(text)).strip("_.")
     return (s or "x")[:max_len]
-
-
-def confined(out_dir: str, rel: str) -> str:
-    """Absolute path of ``rel`` inside ``out_dir``; refuses anything outside."""
-    base = os.path.realpath(out_dir)
-    path = os.path.realpath(os.path.join(base, rel))
-    if os.path.commonpath([base, path]) != base:
-        raise ValueError(f"refusing to write outside the output directory: {rel!r}")
-    return path
-
-
-def atomic_write(out_dir: str, rel: str, data: Any) -> str:
-    """Write text or bytes to ``out_dir/rel`` via a temporary file and rename."""
-    path = confined(out_dir, rel)
-    os.makedirs(os.path.dirname(path), exist_ok=True)
-    mode = "wb" if isinstance(data, (bytes, bytearray)) else "w"
-    fd, tmp = tempfile.mkstemp(prefix=".tmp-", dir=os.path.dirname(path))
-    try:
-        with os.fdopen(fd, mode, **({} if mode == "wb" else {"encoding": "utf-8", "newline": ""})) as fh:
-            fh.write(data)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-    return path
 
 
 def csv_cell(value: Any) -> Any:

@@ -23,6 +23,8 @@ import numbers
 from dataclasses import dataclass
 from typing import Any, Mapping, Optional, Tuple
 
+from sitecheck._records import fields_dict
+
 #: The kinds of fingerprint (the one list: the detectors in :mod:`sitecheck.analyses.fingerprints`, the gates and
 #: the command line read it). Kept here, free of heavy imports, so the command line starts fast.
 #: Names are a contract; new kinds are appended (the repair plan's schema reads this list too).
@@ -124,7 +126,7 @@ class GateFailure:
     count: int = 1
 
     def to_dict(self) -> dict:
-        return {"gate": self.gate, "setting": self.setting, "message": self.message, "count": self.count}
+        return fields_dict(self)
 
 
 def check_gates(result: Any, gates: Gates) -> Tuple[GateFailure, ...]:

@@ -208,9 +208,10 @@ class Prepared:
     def X(self) -> np.ndarray:
         return self.features.X
 
-    def rng(self, stream: int = 0) -> np.random.Generator:
-        """A fresh generator for one analysis; ``stream`` keeps analyses independent."""
-        return np.random.default_rng([self.seed, stream])
+    def rng(self, name: str, *sub: int) -> np.random.Generator:
+        """A fresh generator of the named stream ``name`` for this table's seed
+        (:func:`sitecheck._runtime.stream`); each analysis has streams of its own."""
+        return stream(self.seed, name, *sub)
 
 
 def stratified_subsample(labels: np.ndarray, cap: int, rng: np.random.Generator) -> np.ndarray:
@@ -274,7 +275,8 @@ def prepare(table: Table, *, n_splits: int = 5, max_rows: int = 100_000, random_
     if min_count < 2:
         lab = labels[int(np.argmin(counts))]
         raise InputError(f"site {lab!r} has {min_count} row{'s' if min_count != 1 else ''} to model; cross-validated "
-                         "probing needs at least 2 rows per site (raise --min-site-rows to leave it out)")
+                         "probing needs at least 2 rows per site (raise min_site_rows to leave it out)",
+                         option="min_site_rows")
     k = int(max(2, min(n_splits, min_count)))
     skf = StratifiedKFold(n_splits=k, shuffle=True, random_state=seed)
     folds = tuple((tr, te) for tr, te in skf.split(np.zeros(len(site)), site))

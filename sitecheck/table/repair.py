@@ -1155,11 +1155,11 @@ def repair_file(data: str, plan_path: str, out: str, *, sep: Optional[str] = Non
     from sitecheck.reading.intake import _read_parquet, _read_text_columns, detect_format, read_table
 
     if os.path.exists(out) and os.path.exists(data) and os.path.samefile(out, data):
-        raise InputError("--out must not be the input file; the input is never overwritten")
+        raise InputError(f"the output {out!r} must not be the input file; the input is never overwritten", option="out")
     plan = read_plan(plan_path)
     fmt_in, fmt_out = detect_format(data), detect_format(out)
     if fmt_in != fmt_out:
-        raise InputError(f"--out {out}: write the repaired table in the input's format ({fmt_in})")
+        raise InputError(f"the output {out!r} must be in the input's format ({fmt_in})", option="out")
     raw = read_table(data, sep=sep, encoding=encoding, site=plan.site_column)
     if plan.site_column not in raw.frame.columns:
         raise InputError(f"repair plan: site column {plan.site_column!r} is not in {data}")

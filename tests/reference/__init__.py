@@ -1,0 +1,1 @@
+"""Stored reference documents and the script that writes them (see regenerate.py)."""
