@@ -406,7 +406,7 @@ def test_second_process_queue_follows_measured_stage_costs():
     # (bench_maps.py, run.py; contributor guide): on the 6,000-row demo with an outcome, harmonisation
     # (10.3 s) before PCA/UMAP (6.9 s) and t-SNE (5.4 s); on 9,000 rows x 20 features x 30 sites,
     # PCA/UMAP (8.3 s) and t-SNE (6.1 s) before harmonisation (4.6 s); at 100,000 x 50 x 4,
-    # harmonisation (18.4 s) first.
+    # harmonisation (23.9 s with its re-probes on 20,000 rows) first.
     from sitecheck.analyses.registry import REGISTRY
 
     def shape(n, p, sites, outcome):

@@ -66,6 +66,7 @@ from sitecheck.analyses.leakage import LeakageResult, grouped_permutation_import
 from sitecheck.analyses.models import fit_classifier, make_booster
 from sitecheck.table.prepare import Prepared
 from sitecheck.analyses.probe import cross_fit
+from sitecheck.analyses import stats
 from sitecheck.analyses.stats import SortedScores, finite_or_none
 
 #: Bootstrap resamples handled per vectorised block (bounds memory at block x n floats).
@@ -718,7 +719,7 @@ def _outcome_risk(prep, *, leakage, threshold, n_boot, n_repeats, importance_row
         W = np.zeros((nb, n))
         for mem in members:
             if len(mem):
-                W[:, mem] = rng.multinomial(len(mem), np.full(len(mem), 1.0 / len(mem)), size=nb)
+                W[:, mem] = stats.resample_counts(len(mem), nb, rng)
         sp_site[blk] = _spreads(y, pred, site, len(labels), W)
         for g, (unit, levels) in group_units.items():
             sel = unit >= 0

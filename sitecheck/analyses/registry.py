@@ -259,8 +259,10 @@ def estimated_seconds(name: str, prep) -> float:
     mapped rows only (capped); harmonisation 2.2 s (10,000 x 20, 4 sites), 14.8 s (10,000 x 200),
     4.6 s (9,000 x 20, 30 sites), 18.4 s (100,000 x 50) and 10.3 s on the 6,000-row demo, whose
     outcome adds five cross-fits to the four re-probes; it grows with the re-probed rows (capped at
-    50,000), the numeric features and the sites. The order these give: harmonisation first on the
-    demo and on wide or long tables, the two maps first on the 30-site table.
+    20,000 since 2026-12-02, 50,000 before), the numeric features and the sites, and with rows x
+    features for harmonising and testing every row (23.9 s at 100,000 x 50 with the 20,000-row cap,
+    measured 2026-12-02). The order these give: harmonisation first on the demo and on wide or long
+    tables, the two maps first on the 30-site table.
     """
     n = float(prep.n_used)
     m = min(n, _MAP_ROWS)
@@ -272,7 +274,8 @@ def estimated_seconds(name: str, prep) -> float:
         p = sum(k == "numeric" for k in prep.features.kinds)
         sites = len(prep.site_labels)
         outcome = 6.0 if prep.outcome is not None else 1.0
-        return 0.3 + 4.3e-4 * min(n, 50_000) ** 0.65 * p ** 0.8 * (1 + 0.04 * sites) * outcome
+        # the re-probes grow with the re-probed rows (capped); harmonising and testing every row with n x p
+        return 0.3 + 4.3e-4 * min(n, 20_000) ** 0.65 * p ** 0.8 * (1 + 0.04 * sites) * outcome + 3.3e-6 * n * p
     if name == "residual_probe":
         # the boosting probe alone: 25 s at 100,000 x 50, about 3 s on the demo
         p = prep.features.n_features

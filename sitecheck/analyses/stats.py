@@ -173,8 +173,31 @@ def stratified_bootstrap_weights(y, n_boot: int, rng: np.random.Generator) -> np
     W = np.zeros((n_boot, len(y)), dtype=np.int64)
     for c in np.unique(y):
         idx = np.flatnonzero(y == c)
-        W[:, idx] = rng.multinomial(len(idx), np.full(len(idx), 1.0 / len(idx)), size=n_boot)
+        W[:, idx] = resample_counts(len(idx), n_boot, rng)
     return W
+
+
+def resample_counts(m: int, n_boot: int, rng: np.random.Generator) -> np.ndarray:
+    """Multiplicities (n_boot, m) of ``n_boot`` bootstrap resamples of ``m`` rows.
+
+    Each row of the result counts how often each of the ``m`` rows was drawn in ``m`` draws with
+    replacement (a Multinomial(m, 1/m, ..., 1/m) vector), from ``m`` uniform integer draws and one
+    bincount per resample: O(m) per resample.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from sitecheck.analyses.stats import resample_counts
+    >>> W = resample_counts(5, 3, np.random.default_rng(0))
+    >>> W.shape, W.sum(axis=1).tolist()
+    ((3, 5), [5, 5, 5])
+    """
+    m, n_boot = int(m), int(n_boot)
+    if m == 0 or n_boot == 0:
+        return np.zeros((n_boot, m), dtype=np.int64)
+    draws = rng.integers(0, m, size=(n_boot, m))
+    draws += (np.arange(n_boot, dtype=np.int64) * m)[:, None]
+    return np.bincount(draws.ravel(), minlength=n_boot * m).reshape(n_boot, m)
 
 
 def bootstrap_class_aucs(y, probas: Sequence[np.ndarray], *, n_boot: int = 1000,
@@ -447,13 +470,15 @@ def fold_permutation_pvalue(y, proba, folds, *, n_permutations: int = 999,
         obs = _macro_from_rank_sums(np.einsum("ic,ic->c", R, onehot), counts, n, cols)
         hits = 0
         done = 0
+        rows = np.arange(n)[None, :]
+        offsets = (np.arange(_BLOCK, dtype=np.int64) * k)[:, None]
         while done < n_permutations:
             b = min(_BLOCK, n_permutations - done)
-            perm = np.argsort(rng.random((b, n)), axis=1)
-            yp = yt[perm]                                   # (b, n) permuted labels
-            S = np.empty((b, k))
-            for c in cols:
-                S[:, c] = (R[:, c][None, :] * (yp == c)).sum(axis=1)
+            yp = rng.permuted(np.tile(yt, (b, 1)), axis=1)  # (b, n) permuted labels
+            # rank sum of each class's permuted rows: one gather and one bincount for all classes
+            picked = R[rows, yp]                            # rank of row i under its permuted label's column
+            S = np.bincount((yp + offsets[:b]).ravel(), weights=picked.ravel(),
+                            minlength=b * k).reshape(b, k)
             null = _macro_from_rank_sums(S, counts, n, cols)
             hits += int(np.sum(null >= obs - 1e-12))
             done += b
