@@ -253,33 +253,38 @@ def estimated_seconds(name: str, prep) -> float:
     """Seconds one core spends on an analysis of the second process's queue, estimated from the
     table's shape; used only to order that queue (longest first), never reported.
 
-    Fitted by hand to stage costs measured with ``tests/benchmarks/bench_maps.py`` and ``run.py``
-    (2026-12-02, 2 cores): the maps (PCA, UMAP with cached kernels, mixing scores of three spaces)
-    6.9-8.3 CPU s and the t-SNE map 5.4-6.1 CPU s at 6,000-9,000 mapped rows, both growing with the
-    mapped rows only (capped); harmonisation 2.2 s (10,000 x 20, 4 sites), 14.8 s (10,000 x 200),
-    4.6 s (9,000 x 20, 30 sites), 18.4 s (100,000 x 50) and 10.3 s on the 6,000-row demo, whose
-    outcome adds five cross-fits to the four re-probes; it grows with the re-probed rows (capped at
-    20,000 since 2026-12-02, 50,000 before), the numeric features and the sites, and with rows x
-    features for harmonising and testing every row (23.9 s at 100,000 x 50 with the 20,000-row cap,
-    measured 2026-12-02). The order these give: harmonisation first on the demo and on wide or long
-    tables, the two maps first on the 30-site table.
+    Fitted by hand to stage seconds measured with ``tests/benchmarks/run.py`` and ``sitecheck demo`` on an
+    idle 2-core machine (2026-12-02, after the harmonisation re-probes were capped at 20,000 rows):
+
+    ============================  ======  ==========  =====  =======  ==============
+    table                         maps    t-SNE map   harm.  outcome  residual probe
+    ============================  ======  ==========  =====  =======  ==============
+    demo, 6,000 x 19 numeric, 4   4.2     2.9         5.2    yes      1.3
+    9,000 x 20 x 30 sites         5.9     4.1         8.8    no       (no repair)
+    100,000 x 50 x 4              7.6     5.4         23.9   no       18.1
+    ============================  ======  ==========  =====  =======  ==============
+
+    The maps grow with the mapped rows only (capped at 10,000); harmonisation's four leak-free
+    re-probes with the re-probed rows (capped at 20,000), the numeric features and the sites (one
+    booster output per site), times three with an outcome (its cross-fits before and after), plus
+    harmonising and testing every row (rows x features); the residual probe as the boosting probe.
+    The order these give: harmonisation first on all three.
     """
     n = float(prep.n_used)
     m = min(n, _MAP_ROWS)
     if name == "maps":
-        return 1.5 + 0.75e-3 * m
+        return 0.3 + 0.63e-3 * m
     if name == "maps_tsne":
-        return 3.0 + 0.33e-3 * m
+        return 0.3 + 0.43e-3 * m
     if name == "harmonise":
         p = sum(k == "numeric" for k in prep.features.kinds)
         sites = len(prep.site_labels)
-        outcome = 6.0 if prep.outcome is not None else 1.0
-        # the re-probes grow with the re-probed rows (capped); harmonising and testing every row with n x p
-        return 0.3 + 4.3e-4 * min(n, 20_000) ** 0.65 * p ** 0.8 * (1 + 0.04 * sites) * outcome + 3.3e-6 * n * p
+        outcome = 3.0 if prep.outcome is not None else 1.0
+        return (0.3 + 2.89e-4 * min(n, 20_000) ** 0.65 * p ** 0.8 * (1 + 0.198 * sites) * outcome
+                + 3.3e-6 * n * p)
     if name == "residual_probe":
-        # the boosting probe alone: 25 s at 100,000 x 50, about 3 s on the demo
         p = prep.features.n_features
-        return 1.0 + 3.5e-4 * n ** 0.8 * max(p, 1) ** 0.5
+        return 0.5 + 2.5e-4 * n ** 0.8 * max(p, 1) ** 0.5
     return 0.0
 
 
