@@ -360,7 +360,8 @@ def _missing_heatmap(doc: dict, out_dir: str, sites: Sequence[str]) -> List[dict
     ax.set_xticklabels(feats, rotation=45, ha="right", fontsize=FONT["tick"])
     ax.set_yticks(range(len(sites)))
     ax.set_yticklabels(list(sites), fontsize=FONT["tick"])
-    if len(feats) <= 20:
+    numbers = len(feats) <= 20 and rates.size <= 200  # hundreds of cell labels cost seconds and are unreadable
+    if numbers:
         for i in range(rates.shape[0]):
             for j in range(rates.shape[1]):
                 v = rates[i, j]
@@ -373,7 +374,7 @@ def _missing_heatmap(doc: dict, out_dir: str, sites: Sequence[str]) -> List[dict
     _tight(fig)
     item = _save_png(fig, out_dir, "missing_by_site")
     item.update(id="fig-missing", caption="Share of each site's rows missing, for the features with any missing "
-                "value (numbers in %).")
+                "value" + (" (numbers in %)." if numbers else " (colour scale in %)."))
     return [item]
 
 
