@@ -214,3 +214,25 @@ def test_interval_below_chance_reaches_chance_and_others_are_unchanged():
     nan = float("nan")
     lo, hi = stats.reach_chance((nan, nan))
     assert np.isnan(lo) and np.isnan(hi)
+
+
+def test_resample_counts_follow_the_multinomial_law():
+    # Each row must be a Multinomial(m, 1/m, ..., 1/m) vector, the law of one bootstrap resample's
+    # multiplicities. Moments against scipy.stats.multinomial (mean 1, variance 1 - 1/m, covariance -1/m),
+    # and P(count = 0) against its marginal Binomial(m, 1/m) (scipy.stats.binom), over 20,000 resamples.
+    from scipy.stats import binom, multinomial
+
+    m, B = 8, 20_000
+    W = stats.resample_counts(m, B, np.random.default_rng(5))
+    assert W.shape == (B, m) and W.dtype.kind == "i" and (W.sum(axis=1) == m).all()
+    law = multinomial(m, np.full(m, 1.0 / m))
+    se = np.sqrt(np.diag(law.cov()) / B)  # standard error of each column's mean
+    assert np.all(np.abs(W.mean(axis=0) - law.mean()) < 4 * se)
+    assert np.allclose(np.cov(W, rowvar=False), law.cov(), atol=0.03)
+    zero = binom.pmf(0, m, 1.0 / m)
+    assert abs((W == 0).mean() - zero) < 4 * np.sqrt(zero * (1 - zero) / (B * m)) * 3  # columns dependent: x3
+    # and the stratified weights keep every class's size in every resample
+    y = np.r_[np.zeros(5, int), np.ones(9, int), np.full(3, 2)]
+    S = stats.stratified_bootstrap_weights(y, 50, np.random.default_rng(0))
+    assert (S[:, y == 0].sum(axis=1) == 5).all() and (S[:, y == 1].sum(axis=1) == 9).all()
+    assert (S[:, y == 2].sum(axis=1) == 3).all()
