@@ -685,3 +685,32 @@ def test_null_tables_written_by_the_command_hide_the_site(null_runs):
     aucs = [r["written_auc"] for r in null_runs]
     assert sum(a <= 0.55 for a in aucs) >= 18, aucs
     assert max(aucs) < 0.62, aucs
+
+
+def test_shared_steps_and_raw_tests_change_nothing():
+    # The scan's check fits four methods on the same rows: each site's recording steps and the raw-value
+    # tests of surviving_gaps are computed once and shared. Shared or recomputed, the fits and the gaps
+    # must be the same (invented lab-shaped data: one site in whole units, one with a -99-free floor).
+    from sitecheck.errors import ParameterError
+    from sitecheck.harmonise.methods import fit_harmoniser, site_steps, surviving_gaps
+
+    rng = np.random.default_rng(8)
+    site = np.repeat([0, 1, 2], 150)
+    X = np.column_stack([np.round(rng.normal(140, 3, 450) + 2 * (site == 1), 0),
+                         np.round(np.maximum(rng.lognormal(1.2, 0.6, 450), np.where(site == 2, 5.0, 0.0)), 1)])
+    X[rng.random(X.shape) < 0.05] = np.nan
+    labels = ["Ashby", "Brill", "Corve"]
+    steps = site_steps(X, site, 3)
+    for method in METHODS:
+        a = fit_harmoniser(X, site, method=method, site_labels=labels, random_state=[3, 1])
+        b = fit_harmoniser(X, site, method=method, site_labels=labels, random_state=[3, 1], steps=steps)
+        assert json.dumps(a.to_dict(), sort_keys=True) == json.dumps(b.to_dict(), sort_keys=True)
+    with pytest.raises(ParameterError, match="steps must have shape"):
+        fit_harmoniser(X, site, method="centre", site_labels=labels, steps=steps[:, :1])
+    shared: dict = {}
+    for method in METHODS:
+        Xh = apply_harmoniser(fit_harmoniser(X, site, method=method, site_labels=labels), X, site)
+        alone = surviving_gaps(X, Xh, site, names=["sodium", "crp"], site_labels=labels)
+        reused = surviving_gaps(X, Xh, site, names=["sodium", "crp"], site_labels=labels, raw_tests=shared)
+        assert alone == reused
+    assert sorted(shared) == [0, 1]

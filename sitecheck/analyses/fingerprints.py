@@ -178,10 +178,14 @@ def grid_step(values: np.ndarray, *, share: float = 0.98) -> Optional[float]:
     uniq, cnt = np.unique(values, return_counts=True)
     if len(uniq) < 2:
         return None
-    for g in reversed(GRID_STEPS):
-        if grid_share(uniq, cnt, g) >= share:
-            return g
-    return None
+    tot = cnt.sum()
+    # every step at once, coarsest first: the same element-wise test as grid_share
+    steps = np.asarray(GRID_STEPS[::-1], dtype=float)
+    r = uniq[None, :] / steps[:, None]
+    on = np.abs(r - np.round(r)) < 1e-6 + 1e-9 * np.abs(r)
+    shares = (on * cnt[None, :]).sum(axis=1) / tot
+    hit = np.flatnonzero(shares >= share)
+    return float(steps[hit[0]]) if len(hit) else None
 
 
 def _sorted_median(a: np.ndarray) -> float:

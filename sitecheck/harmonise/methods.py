@@ -922,7 +922,7 @@ def fit_harmoniser(X: np.ndarray, site: np.ndarray, *, method: str, site_labels:
                    protect_spec: Sequence[dict] = (), categorical: Optional[np.ndarray] = None,
                    unchanged_reason: Optional[Dict[str, str]] = None, n_quantiles: int = 201,
                    tol: float = 1e-4, max_iter: int = 1000, on_grid: bool = True, log_skewed: bool = False,
-                   random_state=None) -> HarmonisationFit:
+                   random_state=None, steps: Optional[np.ndarray] = None) -> HarmonisationFit:
     """Fit one harmonisation method.
 
     Parameters
@@ -965,6 +965,10 @@ def fit_harmoniser(X: np.ndarray, site: np.ndarray, *, method: str, site_labels:
         With a seed, the fit reads each recorded value as a uniform draw from
         its site's recording cell (:func:`dither`); None fits the values as
         they are.
+    steps : ndarray (n_sites, p), optional
+        ``site_steps(X, site, n_sites)`` when already computed for these rows
+        (the scan's check fits four methods on the same rows); only the
+        numeric columns' steps are read.
 
     Returns
     -------
@@ -999,6 +1003,7 @@ def fit_harmoniser(X: np.ndarray, site: np.ndarray, *, method: str, site_labels:
     if not isinstance(n_quantiles, (int, np.integer)) or n_quantiles < 3:
         raise ParameterError(f"n_quantiles must be an integer of at least 3, got {n_quantiles!r}")
     k = len(site_labels)
+    given_steps = steps
     X, site, D = _check_inputs(X, site, design, k)
     n_rows, p = X.shape
     names = tuple(feature_names) if feature_names is not None else tuple(f"x{j}" for j in range(p))
@@ -1019,7 +1024,13 @@ def fit_harmoniser(X: np.ndarray, site: np.ndarray, *, method: str, site_labels:
     log_offset = np.full(p, np.nan)
     steps = np.full((k, p), np.nan)
     if len(num):
-        steps[:, num] = site_steps(X[:, num], site, k)
+        if given_steps is not None:
+            given_steps = np.asarray(given_steps, dtype=float)
+            if given_steps.shape != (k, p):
+                raise ParameterError(f"steps must have shape ({k}, {p}), got {given_steps.shape}")
+            steps[:, num] = given_steps[:, num]
+        else:
+            steps[:, num] = site_steps(X[:, num], site, k)
     for j in num:
         v = X[:, j]
         ok = ~np.isnan(v)
@@ -1550,7 +1561,8 @@ def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, n
                    site_labels: Sequence[str], categorical: Optional[np.ndarray] = None,
                    alpha: float = 0.05, min_effect: float = 0.05, min_rows: int = 10,
                    case_mix: Optional[np.ndarray] = None,
-                   grid: Optional[Sequence[float]] = None) -> Tuple[Tuple[SurvivingGap, ...], int]:
+                   grid: Optional[Sequence[float]] = None,
+                   raw_tests: Optional[Dict[int, tuple]] = None) -> Tuple[Tuple[SurvivingGap, ...], int]:
     """Features whose site gap survives harmonisation, with a reason.
 
     Numeric features: the two-sample Kolmogorov-Smirnov test of each site
@@ -1582,6 +1594,10 @@ def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, n
     the test on ``X_harm - case_mix`` finds no gap (Bonferroni p >= alpha or
     D below ``min_effect``), the reason is "case mix (protected)", a real
     difference kept on purpose.
+
+    ``raw_tests``, a dict shared by calls with the same ``X_raw`` and ``site``
+    (the check calls this once per method), keeps each feature's missingness
+    and point-mass tests, which read the raw values only, so that they run once.
 
     Returns
     -------
@@ -1622,11 +1638,22 @@ def surviving_gaps(X_raw: np.ndarray, X_harm: np.ndarray, site: np.ndarray, *, n
                          f"Cramer's V {V:.2f} across sites", worst))
             continue
         _, p_ks, D_sites = _ks_one_vs_rest(v, site, k, min_rows, steps[j])
-        p_m, diff_m, i_m = _missing_test(X_raw[:, j], site, k)
+        # the missingness and point-mass tests read the raw values only: shared by every method
+        if raw_tests is not None and j in raw_tests:
+            (p_m, diff_m, i_m), floor = raw_tests[j]
+        else:
+            p_m, diff_m, i_m = _missing_test(X_raw[:, j], site, k)
+            floor = None
         if not np.isfinite(p_ks) and i_m < 0:
+            if raw_tests is not None:
+                raw_tests[j] = ((p_m, diff_m, i_m), floor)
             continue
         has_miss = i_m >= 0
-        p_f, eff_f, i_f, det_f = _point_mass_test(X_raw[:, j], site, k, min_rows)
+        if floor is None:
+            floor = _point_mass_test(X_raw[:, j], site, k, min_rows)
+        if raw_tests is not None:
+            raw_tests[j] = ((p_m, diff_m, i_m), floor)
+        p_f, eff_f, i_f, det_f = floor
         has_floor = np.isfinite(p_f)
         p_ks_v = p_ks if np.isfinite(p_ks) else 1.0
         tests = [p_ks_v] + ([p_m] if has_miss else []) + ([p_f] if has_floor else [])
@@ -1857,7 +1884,7 @@ def site_reprobe_cv(X: np.ndarray, site: np.ndarray, cat: np.ndarray, folds, *, 
                     n_boot: int, n_permutations: int, model: str = "boosting", site_labels: Sequence[str] = (),
                     design: Optional[np.ndarray] = None, protect_spec: Sequence[dict] = (),
                     leave: Optional[np.ndarray] = None, reasons: Optional[Dict[str, str]] = None,
-                    names: Optional[Sequence[str]] = None):
+                    names: Optional[Sequence[str]] = None, steps_cache: Optional[Dict[int, np.ndarray]] = None):
     """The site probe on harmonised features, leak-free.
 
     In each fold the harmonisation (``method``, grid and range included) is
@@ -1886,7 +1913,13 @@ def site_reprobe_cv(X: np.ndarray, site: np.ndarray, cat: np.ndarray, folds, *, 
     with thread_limit(native_threads(len(site))):
         for f, (tr, te) in enumerate(folds):
             key = stream_key(seed, "harmonise", METHODS.index(method), f)
+            fold_steps = None
+            if steps_cache is not None:  # each site's recording step in the fold's rows: the same for every method
+                if f not in steps_cache:
+                    steps_cache[f] = site_steps(X[tr], site[tr], k)
+                fold_steps = steps_cache[f]
             fit = fit_harmoniser(X[tr], site[tr], method=method, site_labels=site_labels, feature_names=names,
+                                 steps=fold_steps,
                                  design=D[tr], protect_spec=protect_spec, categorical=leave,
                                  unchanged_reason=reasons, log_skewed=True, random_state=key + [1])
             Xtr = apply_harmoniser(fit, X[tr], site[tr], design=D[tr], clip=True, random_state=key + [2])
@@ -2023,18 +2056,24 @@ def harmonisation_check(prep, *, methods: Sequence[str] = METHODS, protect: Opti
         before = outcome_auc_cv(X[sub][o], y_sub[o], site_sub[o], cat, out_folds, seed=seed, n_boot=n_boot,
                                 model=model)
     results = []
+    raw_tests: Dict[int, tuple] = {}  # the raw-value tests of surviving_gaps, the same for every method
+    fold_steps: Dict[int, np.ndarray] = {}  # each re-probe fold's recording steps, the same for every method
+    all_steps = site_steps(X, prep.site, k)
     for method in methods:
         Xh, fit = harmonise(X, prep.site, method=method, site_labels=prep.site_labels, feature_names=names,
+                            steps=all_steps,
                             design=D, protect_spec=spec, categorical=leave, unchanged_reason=reasons, clip=True,
                             log_skewed=True, random_state=stream_key(seed, "harmonise", METHODS.index(method), 99))
         score = site_reprobe_cv(X[sub], site_sub, cat, folds, method=method, seed=seed, n_boot=n_boot,
                                 n_permutations=n_permutations, model=model, site_labels=prep.site_labels,
-                                design=D_sub, protect_spec=spec, leave=leave, reasons=reasons, names=names)
+                                design=D_sub, protect_spec=spec, leave=leave, reasons=reasons, names=names,
+                                steps_cache=fold_steps)
         case_mix = (D @ fit.beta) if D.shape[1] else None
         if case_mix is not None:
             case_mix[:, ~np.asarray(fit.adjusted, dtype=bool)] = 0.0
         gaps, n_tested = surviving_gaps(X, Xh, prep.site, names=names, site_labels=prep.site_labels,
                                         categorical=leave, alpha=alpha, min_effect=min_effect, case_mix=case_mix,
+                                        raw_tests=raw_tests,
                                         grid=np.where(np.asarray(fit.adjusted, dtype=bool), fit.grid,
                                                       recording_grids(X, prep.site, k,
                                                                       skip=leave | np.asarray(fit.adjusted))))
