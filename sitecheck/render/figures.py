@@ -58,10 +58,15 @@ def _new_figure(n_panels: int):
 
 
 def _save(fig, out_dir: str, stem: str) -> List[str]:
+    """PNG and SVG, both cropped to the figure's tight bounding box, computed once (``bbox_inches="tight"``
+    draws the whole figure once more for every file to find it)."""
+    import matplotlib
+
+    bbox = fig.get_tightbbox(fig.canvas.get_renderer()).padded(matplotlib.rcParams["savefig.pad_inches"])
     rels = []
     for ext, meta in (("png", {"Software": None}), ("svg", {"Date": None, "Creator": None})):
         buf = io.BytesIO()
-        fig.savefig(buf, format=ext, metadata=meta, bbox_inches="tight")
+        fig.savefig(buf, format=ext, metadata=meta, bbox_inches=bbox)
         rel = f"figures/{stem}.{ext}"
         atomic_write(out_dir, rel, buf.getvalue())
         rels.append(rel)
