@@ -714,3 +714,23 @@ def test_shared_steps_and_raw_tests_change_nothing():
         reused = surviving_gaps(X, Xh, site, names=["sodium", "crp"], site_labels=labels, raw_tests=shared)
         assert alone == reused
     assert sorted(shared) == [0, 1]
+
+
+def test_ks_statistic_and_pvalue_equal_scipy_asymptotic_ks_2samp():
+    # Reference: scipy.stats.ks_2samp(method="asymp"), on rounded lab-like samples with many ties
+    # (whole units, one decimal) and unequal sizes, as the check's one-site-against-the-rest tests see them.
+    from scipy.stats import ks_2samp
+
+    from sitecheck.harmonise.methods import ks_asymptotic_pvalue, ks_statistic
+
+    rng = np.random.default_rng(4)
+    ds, ens, ref = [], [], []
+    for t in range(300):
+        a = np.round(rng.normal(4.2 + 0.1 * (t % 3), 0.5, int(rng.integers(10, 300))), t % 2)
+        b = np.round(rng.normal(4.2, 0.5, int(rng.integers(20, 2000))), 1)
+        d, en = ks_statistic(a, b)
+        r = ks_2samp(a, b, method="asymp")
+        assert d == float(r.statistic)
+        ds.append(d), ens.append(en), ref.append(float(r.pvalue))
+    assert np.array_equal(ks_asymptotic_pvalue(ds, ens), np.asarray(ref))
+    assert min(ref) < 1e-3 < max(ref)  # both ends of the scale were exercised
