@@ -98,6 +98,7 @@ def child_recipe(path: str, maps: bool) -> dict:
     proba = cross_val_predict(clf, X, y, cv=5, method="predict_proba")
     auc = roc_auc_score(y, proba, multi_class="ovr") if proba.shape[1] > 2 else roc_auc_score(y, proba[:, 1])
     stages["probe"] = time.perf_counter() - t
+    print("recipe stages " + json.dumps(stages), file=sys.stderr, flush=True)
     t = time.perf_counter()
     clf.fit(X, y)
     pi = permutation_importance(clf, X, y, scoring="roc_auc_ovr" if proba.shape[1] > 2 else "roc_auc",
@@ -105,16 +106,19 @@ def child_recipe(path: str, maps: bool) -> dict:
     names = list(df.columns[1:])
     top = [names[j] for j in np.argsort(-pi.importances_mean)[:5]]
     stages["importance"] = time.perf_counter() - t
+    print("recipe stages " + json.dumps({**stages, "auc": float(auc), "top5": top}), file=sys.stderr, flush=True)
     if maps:
         Xi = np.where(np.isnan(X), np.nanmedian(X, axis=0), X)
         t = time.perf_counter()
         TSNE(random_state=0).fit_transform(Xi)
         stages["tsne"] = time.perf_counter() - t
+        print("recipe stages " + json.dumps(stages), file=sys.stderr, flush=True)
         import umap
 
         t = time.perf_counter()
         umap.UMAP(random_state=0).fit_transform(Xi)
         stages["umap"] = time.perf_counter() - t
+        print("recipe stages " + json.dumps(stages), file=sys.stderr, flush=True)
     return {"seconds": time.perf_counter() - t0, "stages": stages, "auc": float(auc), "top5": top,
             "peak_mb": _peak_mb()}
 
@@ -123,9 +127,11 @@ def run_child(kind: str, path: str, out: str, maps: bool) -> dict:
     cmd = [sys.executable, __file__, "--child", kind, "--path", path, "--outdir", out]
     if not maps:
         cmd.append("--no-recipe-maps")
-    res = subprocess.run(cmd, capture_output=True, text=True, check=False)
+    # the recipe's stage lines go straight to this process's stderr, so a stopped run keeps them
+    res = subprocess.run(cmd, stdout=subprocess.PIPE, stderr=None if kind == "recipe" else subprocess.PIPE,
+                         text=True, check=False)
     if res.returncode != 0:
-        raise RuntimeError(f"{kind} failed: {res.stderr[-2000:]}")
+        raise RuntimeError(f"{kind} failed: {(res.stderr or '')[-2000:]}")
     return json.loads(res.stdout.strip().splitlines()[-1])
 
 
@@ -164,6 +170,7 @@ def main(argv=None) -> int:
             (df.to_parquet if path.endswith(".parquet") else lambda f: df.to_csv(f, index=False))(path)
             del df
             sc = run_child("sitecheck", path, os.path.join(tmp, "out"), True)
+            print("sitecheck " + json.dumps(sc), flush=True)  # kept even if the recipe is stopped
             rc = None if a.no_recipe or n > a.recipe_max_rows else run_child("recipe", path, tmp,
                                                                              not a.no_recipe_maps)
         truth = {f"lab_{j:03d}" for j in range(LEAKERS)}
