@@ -57,7 +57,6 @@ SEED_RULES = {
     "leakage.fold_repeats": (0, 1),      # permutation repeats of fold f
     "probe.covariates_only": (1, 0),     # case-mix increment: covariates alone
     "probe.features_and_covariates": (2, 0),
-    "probe.stratum": (10, 1),            # probe within covariate level v
     "probe.group": (100, 1),             # probe of group column g
     "outcome.pooled": (1, 0),            # outcome model: pooled and leave-one-site-out fits
     "outcome.site_ci": (2, 1),           # outcome AUC interval of held-out site i

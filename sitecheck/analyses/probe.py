@@ -549,6 +549,52 @@ def _recode(labels: np.ndarray, min_rows: int):
     return y, kept, dropped, int(missing.sum())
 
 
+#: How the within-outcome-class probe is computed (``report.json``: ``probe.within_outcome[...].method``).
+WITHIN_OUTCOME_METHOD = ("the site probe's out-of-fold predictions scored on the rows of this outcome class "
+                         "(each row predicted by the fold model that did not see it; the probabilities of the "
+                         "sites kept in the class rescaled to sum to one)")
+
+
+def restrict_crossfit(fit: CrossFit, rows, columns) -> CrossFit:
+    """The out-of-fold predictions of ``fit`` on ``rows`` only, for the classes ``columns``.
+
+    Each kept row keeps the prediction of the fold model that did not see it, so the result is
+    scored as any cross-fit is (:func:`score_crossfit`): within the rows, labels are
+    exchangeable against their predictions when the features carry no class signal there,
+    whatever the models learnt elsewhere. The probabilities of the kept classes are rescaled
+    to sum to one (the probability of each class given that the row belongs to one of them);
+    folds are the original folds restricted to ``rows`` (positions in ``rows``).
+
+    Parameters
+    ----------
+    fit : CrossFit
+    rows : array of int
+        Row indices into ``fit.proba``, each at most once.
+    columns : sequence of int
+        Class codes of ``fit`` to keep; the i-th becomes class i.
+
+    Returns
+    -------
+    CrossFit
+        Without models (``models=()``): for scoring only.
+    """
+    rows = np.asarray(rows, dtype=np.int64)
+    cols = np.asarray(columns, dtype=np.int64)
+    if len(np.unique(rows)) != len(rows):
+        raise ParameterError("rows must not repeat")
+    pos = np.full(len(fit.proba), -1, dtype=np.int64)
+    pos[rows] = np.arange(len(rows))
+    folds = []
+    for tr, te in fit.folds:
+        tr_s, te_s = pos[np.asarray(tr)], pos[np.asarray(te)]
+        folds.append((tr_s[tr_s >= 0], te_s[te_s >= 0]))
+    p = fit.proba[np.ix_(rows, cols)]
+    total = p.sum(axis=1, keepdims=True)
+    p = np.divide(p, total, out=np.full_like(p, 1.0 / len(cols)), where=total > 0)
+    return CrossFit(proba=p, models=(), folds=tuple(folds), classes=np.arange(len(cols)), model=fit.model,
+                    n_iter=fit.n_iter)
+
+
 def _sub_probe(X, y, cat, n_splits, seed, rng, n_boot, n_permutations, pooled=None) -> ProbeScore:
     folds = make_folds(y, n_splits, random_state=seed)
     fit = cross_fit(X, y, cat, folds, model="boosting", random_state=seed)
@@ -574,7 +620,9 @@ def site_probe(prep, *, n_boot: int = 500, n_permutations: int = 999, linear: bo
     case_mix : bool, default True
         With covariates: probes on covariates alone and on features plus covariates.
     within_outcome : bool, default True
-        With an outcome: the probe within each outcome class.
+        With an outcome: the probe's out-of-fold predictions scored within each outcome class
+        (:func:`restrict_crossfit`; no model is refitted), so a site signal that is only the
+        outcome's prevalence differing by site does not show there.
     groups : bool, default True
         The same probe for each group column.
     min_rows : int, default 20
@@ -651,12 +699,14 @@ def site_probe(prep, *, n_boot: int = 500, n_permutations: int = 999, linear: bo
                 wo[key] = {"auc": None, "auc_ci": [None, None], "p_value": None, "n": int(ok.sum()),
                            "skipped": f"fewer than two sites with at least {min_rows} rows in this outcome class"}
                 continue
-            s = _sub_probe(X[rows[ok]], yy[ok], cat, prep.n_splits, derived_seed(seed, "probe.stratum", int(v)), rng(10 + int(v)),
-                           n_boot, n_permutations)
+            code_of = {str(lab): i for i, lab in enumerate(labels)}
+            cols = [code_of[lab] for lab in kept]  # kept is in the code order of yy
+            sub = restrict_crossfit(fit, rows[ok], cols)
+            s = _score_fit(yy[ok], sub, rng(10 + int(v)), n_boot, n_permutations)
             wo[key] = {"auc": s.auc, "auc_ci": list(s.auc_ci), "p_value": s.p_value,
                        "p_value_floor": s.p_value_floor, "n": s.n,
                        "verdict": verdict(s.auc_ci, s.p_value), "sites": kept, "dropped_sites": dropped,
-                       "outcome_value": int(v)}
+                       "outcome_value": int(v), "method": WITHIN_OUTCOME_METHOD}
     gprobes: Dict[str, GroupProbe] = {}
     skipped: Dict[str, str] = {}
     if groups:

@@ -1813,6 +1813,16 @@ class HarmonisationCheck:
         return {m.method: m.to_dict() for m in self.methods}
 
 
+def merge_checks(*checks: "HarmonisationCheck") -> "HarmonisationCheck":
+    """One check from checks of disjoint sets of methods (run apart, e.g. in two processes), in
+    :data:`METHODS` order. Each method's result does not depend on which others were checked with it."""
+    found = [m for c in checks if c is not None for m in c.methods]
+    names = [m.method for m in found]
+    if len(set(names)) != len(names):
+        raise ParameterError(f"a method was checked twice: {names}")
+    return HarmonisationCheck(methods=tuple(sorted(found, key=lambda m: METHODS.index(m.method))))
+
+
 def _sub_folds(folds, keep: np.ndarray):
     """Restrict (train, test) folds to the rows in boolean mask ``keep``, renumbered."""
     new = np.cumsum(keep) - 1
