@@ -180,7 +180,8 @@ def main(argv=None) -> int:
         if rc:
             lo, hi = sc["auc_ci"]
             no_maps = rc["seconds"] - rc["stages"].get("tsne", 0.0) - rc["stages"].get("umap", 0.0)
-            row.update({"recipe_s": rc["seconds"], "recipe_stages": rc["stages"], "ratio": rc["seconds"] / sc["seconds"],
+            row.update({"recipe_maps": not a.no_recipe_maps,  # False: recipe_s and ratio leave its maps out
+                        "recipe_s": rc["seconds"], "recipe_stages": rc["stages"], "ratio": rc["seconds"] / sc["seconds"],
                         "recipe_s_no_maps": no_maps, "ratio_no_maps": no_maps / sc["seconds"],
                         "recipe_auc": rc["auc"], "same_auc": lo <= rc["auc"] <= hi,
                         "same_top5": set(rc["top5"]) == set(sc["top5"]), "recipe_peak_mb": rc["peak_mb"],
@@ -204,7 +205,9 @@ def print_markdown(rows) -> None:
     na = "not run"
     for r in rows:
         rec = f"{r['recipe_auc']:.3f} ({r['same_auc']})" if "recipe_auc" in r else na
-        print(f"| {r['size']} | {r['sitecheck_s']:.1f} | {_f(r.get('recipe_s'))} | {_f(r.get('ratio'))} | "
+        full = r.get("recipe_maps", True)  # a run with --no-recipe-maps has no whole-recipe time
+        whole = (_f(r.get('recipe_s')), _f(r.get('ratio'))) if full else ("maps not run", "–")
+        print(f"| {r['size']} | {r['sitecheck_s']:.1f} | {whole[0]} | {whole[1]} | "
               f"{_f(r.get('recipe_s_no_maps'))} | {_f(r.get('ratio_no_maps'))} | "
               f"{r['sitecheck_peak_mb']:.0f} ({r['table_mb']:.0f}) | "
               f"{r['auc']:.3f} [{r['auc_ci'][0]:.3f}, {r['auc_ci'][1]:.3f}] | {rec} | {r.get('same_top5', na)} | "

@@ -118,8 +118,8 @@ def model(doc: Dict[str, Any], min_cell: int) -> Optional[Dict[str, Any]]:
             "per_site": _per_site(probe, min_cell),
             "case_mix": _case_mix(cm) if cm else None,
             "within": _within(wo, min_cell) if wo else None,
-            "within_note": ("Each row is the site probe's held-out prediction, scored only among the patients of "
-                            "one outcome class: a site signal that appears here is not the outcome being more "
+            "within_note": ("The site probe's held-out predictions, scored among the patients of one outcome "
+                            "class at a time: a site signal that appears here is not the outcome being more "
                             "common at some sites.") if wo else "",
             "interval_method": probe.get("interval_method", ""), "n_boot": probe.get("n_boot"),
             "p_method": probe.get("p_value_method", ""),
