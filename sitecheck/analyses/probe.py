@@ -690,6 +690,7 @@ def site_probe(prep, *, n_boot: int = 500, n_permutations: int = 999, linear: bo
         wo = {}
         out = np.asarray(prep.outcome, dtype=float)
         levels = _outcome_levels(prep)
+        code_of = {str(lab): i for i, lab in enumerate(labels)}
         for v in (0.0, 1.0):
             rows = np.flatnonzero(out == v)
             key = levels[int(v)]
@@ -699,7 +700,6 @@ def site_probe(prep, *, n_boot: int = 500, n_permutations: int = 999, linear: bo
                 wo[key] = {"auc": None, "auc_ci": [None, None], "p_value": None, "n": int(ok.sum()),
                            "skipped": f"fewer than two sites with at least {min_rows} rows in this outcome class"}
                 continue
-            code_of = {str(lab): i for i, lab in enumerate(labels)}
             cols = [code_of[lab] for lab in kept]  # kept is in the code order of yy
             sub = restrict_crossfit(fit, rows[ok], cols)
             s = _score_fit(yy[ok], sub, rng(10 + int(v)), n_boot, n_permutations)

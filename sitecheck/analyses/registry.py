@@ -219,7 +219,10 @@ def harmonise_parts(options) -> tuple:
     """The harmonisation methods of the scan, in two parts run as two analyses (``harmonise`` and
     ``harmonise_rest``) so that both processes can share the check: every other method, starting with
     the first (the four methods cost about the same, measured: 2.3-3.2 CPU s each on the demo). Each
-    method's result is the same whichever part computes it (its own seeded streams)."""
+    method's result is the same whichever part computes it (its own seeded streams). Both parts compute the
+    shared pieces (the outcome AUC before harmonisation, the recording steps, the raw-value tests), so that
+    neither waits for the other: measured on the demo, the four methods in one call 10.5 CPU s, one at a
+    time 11.1 s in all."""
     from sitecheck.harmonise.methods import METHODS
 
     methods = tuple(getattr(options, "harmonise_methods", None) or METHODS)

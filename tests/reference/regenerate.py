@@ -19,7 +19,7 @@ import json
 import math
 import os
 import sys
-from typing import Any, List, Optional
+from typing import Any, List
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 ROOT = os.path.dirname(os.path.dirname(HERE))
@@ -117,40 +117,20 @@ def environment() -> dict:
     return out
 
 
-#: Fields whose floats depend on the CPU's vector code paths, with the (relative, absolute) tolerance used
-#: when the reference was written on a CPU with another :func:`instruction_set`. Measured 2026-12-02: the
-#: same library versions on another machine (AVX2, numba target znver3, OpenBLAS Haswell kernels) moved
-#: UMAP's layout, whose stochastic optimisation amplifies last-bit differences of numba's vectorised
-#: kernels, by up to 0.07 in per-site LISI (2%) and 0.017 in silhouette, and the linear missingness probe,
-#: whose L-BFGS path follows BLAS rounding, by up to 5e-4 relative. Everything else, and these fields on
-#: the same code paths, compare at 1e-6.
-CPU_DEPENDENT = {"$.report.embedding.mixing.umap": (0.05, 0.05),
-                 "$.report.embedding.silhouette.umap": (0.0, 0.05),
-                 "$.report.missingness": (1e-3, 1e-6)}
-
-
-def compare(reference: dict, now: dict, *, same_cpu: bool = True) -> List[str]:
+def compare(reference: dict, now: dict) -> List[str]:
     """Differences between the stored reference and the document ``now``: every field, floats to a
-    relative 1e-6; with ``same_cpu=False`` (the reference was written on another :func:`instruction_set`)
-    the fields of :data:`CPU_DEPENDENT` to their stated tolerance. The reference also records
-    :func:`environment` (not compared), so that a failure can say whether the numerical libraries changed
-    since it was written (an unpinned install moves the last digits of fitted models and the t-SNE layout
-    with their releases)."""
+    relative 1e-6. The reference also records :func:`environment` (not compared), so that a failure can
+    say whether the numerical libraries or the CPU's code paths changed since it was written (an unpinned
+    install moves the last digits of fitted models and the t-SNE layout with their releases; another CPU
+    moved UMAP's layout and the linear missingness probe with the same releases)."""
     keys = ("report", "repair_plan")
-    loose = {} if same_cpu else CPU_DEPENDENT
-    return [d for k in keys for d in differences(reference[k], now[k], path=f"$.{k}", loose=loose)]
+    return [d for k in keys for d in differences(reference[k], now[k], path=f"$.{k}")]
 
 
-def differences(expected: Any, actual: Any, *, rel: float = 1e-6, path: str = "$",
-                loose: Optional[dict] = None, abs_tol: float = 1e-12) -> List[str]:
+def differences(expected: Any, actual: Any, *, rel: float = 1e-6, path: str = "$") -> List[str]:
     """Where ``actual`` differs from ``expected``: structure, strings, booleans, None and integers
-    exactly; floats within a relative tolerance ``rel`` (an integer-valued float compares as a float),
-    or, under a path prefix of ``loose`` ({prefix: (relative, absolute)}), within that tolerance.
+    exactly; floats within a relative tolerance ``rel`` (an integer-valued float compares as a float).
     Returns one line per difference, each with its JSON path."""
-    for prefix, (r, a) in (loose or {}).items():
-        if path == prefix or path.startswith(prefix + ".") or path.startswith(prefix + "["):
-            rel, abs_tol, loose = r, a, None
-            break
     if isinstance(expected, dict):
         if not isinstance(actual, dict):
             return [f"{path}: expected an object, got {type(actual).__name__}"]
@@ -158,18 +138,17 @@ def differences(expected: Any, actual: Any, *, rel: float = 1e-6, path: str = "$
             missing = [k for k in expected if k not in actual]
             extra = [k for k in actual if k not in expected]
             return [f"{path}: keys differ (missing {missing}, extra {extra}, or another order)"]
-        return [d for k in expected for d in differences(expected[k], actual[k], rel=rel, path=f"{path}.{k}",
-                                                         loose=loose, abs_tol=abs_tol)]
+        return [d for k in expected for d in differences(expected[k], actual[k], rel=rel, path=f"{path}.{k}")]
     if isinstance(expected, list):
         if not isinstance(actual, list) or len(expected) != len(actual):
             return [f"{path}: expected a list of {len(expected)}, got "
                     f"{len(actual) if isinstance(actual, list) else type(actual).__name__}"]
         return [d for i, (e, a) in enumerate(zip(expected, actual))
-                for d in differences(e, a, rel=rel, path=f"{path}[{i}]", loose=loose, abs_tol=abs_tol)]
+                for d in differences(e, a, rel=rel, path=f"{path}[{i}]")]
     if isinstance(expected, float) and not isinstance(actual, bool) and isinstance(actual, (int, float)):
         if isinstance(actual, int) and not float(expected).is_integer():
             return [f"{path}: expected {expected!r}, got {actual!r}"]
-        if math.isclose(expected, actual, rel_tol=rel, abs_tol=abs_tol):
+        if math.isclose(expected, actual, rel_tol=rel, abs_tol=1e-12):
             return []
         return [f"{path}: expected {expected!r}, got {actual!r}"]
     if type(expected) is not type(actual) or expected != actual:
@@ -189,8 +168,7 @@ def main(argv=None) -> int:
     doc = current(full=args.full)
     if args.check:
         with open(path, encoding="utf-8") as fh:
-            ref = json.load(fh)
-        found = compare(ref, doc, same_cpu=ref.get("environment", {}).get("instruction_set") == instruction_set())
+            found = compare(json.load(fh), doc)
         print("\n".join(found[:50]) if found else f"identical to {path}")
         return 1 if found else 0
     doc = {"environment": environment(), **doc}
