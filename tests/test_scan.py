@@ -181,3 +181,17 @@ def test_scan_options_are_checked_as_the_config_file_checks_them():
         assert str(info.value).startswith(text) and info.value.option == next(iter(kw)), str(info.value)
     ok = ScanOptions(map_rows=100, folds=20, threshold=0.5, censor_policy=None)
     assert (ok.map_rows, ok.folds, ok.threshold) == (100, 20, 0.5)
+
+
+def test_scan_result_survives_pickling(small_frame):
+    # A result is pickled by users' caches (joblib, multiprocessing); its labelled sections
+    # ("after repair" / "as given") used to raise KeyError while being unpickled.
+    import pickle
+
+    result = _scan(small_frame, n_jobs=1, analyses=LIGHT)
+    labelled = [k for k, v in result.sections.items() if type(v).__name__ == "Labelled"]
+    assert labelled, "the scan should label at least one section with the values it read"
+    back = pickle.loads(pickle.dumps(result))
+    assert json.dumps(back.to_dict(), sort_keys=True) == json.dumps(result.to_dict(), sort_keys=True)
+    name = labelled[0]
+    assert back.sections[name].to_dict() == result.sections[name].to_dict()
