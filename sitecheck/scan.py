@@ -469,10 +469,9 @@ class Labelled:
         self.__dict__["per_entry"] = per_entry
 
     def __getattr__(self, name: str) -> Any:
-        inner = self.__dict__.get("inner")
-        if inner is None:  # while unpickling, before __dict__ is restored
+        if "inner" not in self.__dict__:  # while unpickling, before __dict__ is restored
             raise AttributeError(name)
-        return getattr(inner, name)
+        return getattr(self.__dict__["inner"], name)
 
     def to_dict(self) -> Dict[str, Any]:
         from sitecheck.report.result import to_jsonable

@@ -55,8 +55,8 @@ def write(tmp_path, name, text, mode="w"):
 #: file under 10 s). With two workers (``-n 2 --dist loadfile --no-loadscope-reorder`` in ``setup.cfg``) the
 #: files are handed out in this order, longest first, so that one worker starts the fuzz file at once and
 #: the last files handed out are the short ones. pytest-xdist's own order (since 3.5: files with the most
-#: tests first) gave the fuzz file, a single test, last: one worker ran it alone for its last 260 s
-#: (suite 588 s on 2026-12-03 against 466 s, about half the summed test time, for a perfect split).
+#: tests first) handed out the fuzz file, a single test, last, and one worker ran it alone to the end:
+#: 588 s on 2026-12-03, against 441 s in this order on the same machine (both workers done at 438-441 s).
 LONG_FILES = ("test_fuzz.py", "test_corpus.py", "test_report.py", "test_harmonise.py", "test_leakage.py",
               "test_probe.py", "test_maps.py", "test_cli.py", "test_notebook.py", "test_render.py",
               "test_fingerprints.py", "test_outcome.py", "test_drift.py", "test_scan.py",

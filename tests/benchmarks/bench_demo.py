@@ -73,6 +73,8 @@ def main(argv=None) -> int:
     ap.add_argument("--log", default=os.path.join(HERE, "demo_runs.jsonl"))
     ap.add_argument("--no-warm-up", action="store_true", help="skip the first (kernel-compiling) run")
     args = ap.parse_args(argv)
+    if args.runs < 1:
+        ap.error("--runs must be at least 1")
     rows = []
     with tempfile.TemporaryDirectory() as tmp:
         if not args.no_warm_up:
